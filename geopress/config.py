@@ -1,0 +1,415 @@
+"""The TOML configuration: parsed with tomllib into frozen, typed objects.
+
+Every error is a :class:`~geopress.errors.ConfigError` that names the file,
+the key (``section.key``, or ``zones.source[2].zone`` for the third source)
+and, where it can be found, the line. Relative paths are resolved against the
+config file's folder. Lengths are feet, pressures psi.
+
+Loose input is normalised here once: paths become absolute, globs in
+``terrain.paths`` are expanded (sorted, so the order is stable), vertical
+units are checked, and inner code sees one form.
+"""
+
+from __future__ import annotations
+
+import glob
+import math
+import re
+import tomllib
+from dataclasses import asdict, dataclass, field, fields, is_dataclass
+from pathlib import Path
+from typing import Any, Mapping
+
+from .classify import Criteria
+from .errors import ConfigError
+from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
+from .terrain import METHODS
+
+
+@dataclass(frozen=True)
+class CustomersConfig:
+    """Where the customers are. ``floors_field`` holds stories above ground."""
+
+    path: Path
+    id_field: str
+    layer: str | None = None
+    mail_fields: tuple[str, ...] = ()
+    floors_field: str | None = None
+
+
+@dataclass(frozen=True)
+class TerrainConfig:
+    """DEM rasters, first listed wins where they overlap.
+
+    ``vertical_units`` is "m", "ft" or "us_ft", or None to take the unit the
+    raster states. ``memory_mb`` bounds how much raster is read at once.
+    """
+
+    paths: tuple[Path, ...]
+    vertical_units: str | None = None
+    method: str = "bilinear"
+    memory_mb: float = 1024.0
+
+
+@dataclass(frozen=True)
+class ZonesConfig:
+    """Pressure-zone polygons and one HGL source per zone id, in priority order."""
+
+    path: Path
+    id_field: str
+    sources: tuple[Source, ...]
+    layer: str | None = None
+
+    def source_for(self, zone: str) -> Source | None:
+        """The source of ``zone``, or None."""
+        for s in self.sources:
+            if s.zone == zone:
+                return s
+        return None
+
+
+@dataclass(frozen=True)
+class OutputConfig:
+    """Output GeoPackage path and the folder for the mailing lists."""
+
+    path: Path
+    mailing_dir: Path
+
+
+@dataclass(frozen=True)
+class Config:
+    """A whole, validated configuration."""
+
+    customers: CustomersConfig
+    terrain: TerrainConfig
+    zones: ZonesConfig
+    criteria: Criteria
+    output: OutputConfig
+    source_path: Path | None = field(default=None, compare=False)
+
+    def input_paths(self) -> list[Path]:
+        """Every input file the run reads."""
+        return [self.customers.path, *self.terrain.paths, self.zones.path]
+
+    def to_dict(self) -> dict[str, Any]:
+        """The resolved config as plain TOML-like data (paths as strings)."""
+        return {
+            "customers": _plain(self.customers),
+            "terrain": _plain(self.terrain),
+            "zones": {
+                "path": str(self.zones.path),
+                "layer": self.zones.layer,
+                "id_field": self.zones.id_field,
+                "source": [_plain(s) for s in self.zones.sources],
+            },
+            "criteria": _plain(self.criteria),
+            "output": _plain(self.output),
+        }
+
+
+def _plain(obj: Any) -> Any:
+    if is_dataclass(obj):
+        return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    return obj
+
+
+# --------------------------------------------------------------------------
+# loading
+
+
+def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None) -> Config:
+    """Read and validate a config file.
+
+    ``overrides`` maps dotted keys to values applied before validation, e.g.
+    ``{"criteria.max_static_psi": 90}``.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError("config file not found; check the path", path=path) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read config file ({exc}); check its permissions and encoding", path=path) from exc
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"TOML syntax error: {exc}; fix the file", path=path) from exc
+    return config_from_dict(data, base_dir=path.resolve().parent, source_path=path, text=text, overrides=overrides)
+
+
+def config_from_dict(
+    data: Mapping[str, Any],
+    *,
+    base_dir: str | Path = ".",
+    source_path: str | Path | None = None,
+    text: str | None = None,
+    overrides: Mapping[str, Any] | None = None,
+) -> Config:
+    """Validate already-parsed TOML data. ``text``, when given, lets errors name lines."""
+    reader = _Reader(Path(base_dir), None if source_path is None else Path(source_path), text)
+    data = dict(data)
+    if overrides:
+        data = apply_overrides(data, overrides, reader)
+    return reader.build(data)
+
+
+def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reader: "_Reader | None" = None) -> dict[str, Any]:
+    """Return a copy of ``data`` with dotted-key overrides applied.
+
+    ``zones.source.NAME.key`` addresses the source whose ``zone`` is NAME.
+    """
+    import copy
+
+    out = copy.deepcopy(dict(data))
+    for dotted, value in overrides.items():
+        parts = dotted.split(".")
+        if len(parts) >= 3 and parts[0] == "zones" and parts[1] == "source":
+            if len(parts) != 4:
+                raise ConfigError(f"override '{dotted}' must be zones.source.ZONE.key", key=dotted)
+            sources = out.get("zones", {}).get("source", [])
+            match = [s for s in sources if isinstance(s, dict) and s.get("zone") == parts[2]]
+            if not match:
+                raise ConfigError(f"override '{dotted}': no [[zones.source]] with zone = '{parts[2]}'", key=dotted)
+            match[0][parts[3]] = value
+            continue
+        node = out
+        for p in parts[:-1]:
+            nxt = node.setdefault(p, {})
+            if not isinstance(nxt, dict):
+                raise ConfigError(f"override '{dotted}': '{p}' is not a table", key=dotted)
+            node = nxt
+        node[parts[-1]] = value
+    return out
+
+
+_GLOB_CHARS = re.compile(r"[*?\[]")
+
+
+class _Reader:
+    """Validates sections key by key; knows the file and text to name lines."""
+
+    def __init__(self, base_dir: Path, source_path: Path | None, text: str | None):
+        self.base_dir = base_dir
+        self.source_path = source_path
+        self.lines = text.splitlines() if text is not None else None
+
+    # -- error helpers -------------------------------------------------
+    def line_of(self, key: str) -> int | None:
+        """Best-effort 1-based line of a dotted key such as ``zones.source[1].kind``."""
+        if self.lines is None:
+            return None
+        m = re.fullmatch(r"(.+?)\[(\d+)\]\.(.+)", key)
+        if m:
+            header, nth, leaf = m.group(1), int(m.group(2)), m.group(3)
+            pattern = re.compile(r"^\s*\[\[\s*" + re.escape(header) + r"\s*\]\]")
+        else:
+            header, _, leaf = key.rpartition(".")
+            nth = 0
+            pattern = re.compile(r"^\s*\[\s*" + re.escape(header) + r"\s*\]") if header else None
+        start = 0
+        if pattern is not None:
+            hits = [i for i, line in enumerate(self.lines) if pattern.match(line)]
+            if len(hits) <= nth:
+                return None
+            start = hits[nth]
+            if leaf == "":
+                return start + 1
+        key_re = re.compile(r"^\s*" + re.escape(leaf) + r"\s*=")
+        for i in range(start + (1 if pattern is not None else 0), len(self.lines)):
+            if i > start and self.lines[i].lstrip().startswith("["):
+                break
+            if key_re.match(self.lines[i]):
+                return i + 1
+        return start + 1 if pattern is not None else None
+
+    def error(self, key: str, message: str) -> ConfigError:
+        line = self.line_of(key)
+        where = f" (line {line})" if line else ""
+        return ConfigError(f"{key}{where}: {message}", path=self.source_path, key=key)
+
+    # -- typed getters ---------------------------------------------------
+    def table(self, data: Mapping[str, Any], key: str, *, required: bool = True) -> dict[str, Any]:
+        value = data.get(key.rpartition(".")[2])
+        if value is None:
+            if required:
+                raise self.error(key, "missing required table; add it")
+            return {}
+        if not isinstance(value, dict):
+            raise self.error(key, "must be a table")
+        return value
+
+    def get(self, table: Mapping[str, Any], section: str, name: str, kind: str, default: Any = ..., ) -> Any:
+        key = f"{section}.{name}"
+        if name not in table:
+            if default is ...:
+                raise self.error(key, "missing required key; add it")
+            return default
+        value = table[name]
+        if kind == "str":
+            if not isinstance(value, str) or not value.strip():
+                raise self.error(key, f"must be a non-empty string, not {value!r}")
+            return value
+        if kind == "number":
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+                raise self.error(key, f"must be a finite number, not {value!r}")
+            return float(value)
+        if kind == "str_list":
+            if isinstance(value, str):
+                value = [value]
+            if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
+                raise self.error(key, f"must be a list of strings, not {value!r}")
+            return tuple(value)
+        raise AssertionError(kind)
+
+    def no_unknown(self, table: Mapping[str, Any], section: str, allowed: set[str]) -> None:
+        for name in table:
+            if name not in allowed:
+                raise self.error(f"{section}.{name}", f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
+
+    def path(self, value: str) -> Path:
+        p = Path(value).expanduser()
+        return (p if p.is_absolute() else self.base_dir / p).resolve()
+
+    # -- sections ----------------------------------------------------------
+    def build(self, data: dict[str, Any]) -> Config:
+        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output"})
+        cfg = Config(
+            customers=self.customers(self.table(data, "customers")),
+            terrain=self.terrain(self.table(data, "terrain")),
+            zones=self.zones(self.table(data, "zones")),
+            criteria=self.criteria(self.table(data, "criteria", required=False)),
+            output=self.output(self.table(data, "output")),
+            source_path=self.source_path,
+        )
+        inputs = {p: name for name, p in [("customers.path", cfg.customers.path), ("zones.path", cfg.zones.path)]}
+        inputs.update({p: "terrain.paths" for p in cfg.terrain.paths})
+        if cfg.source_path is not None:
+            inputs[Path(cfg.source_path).resolve()] = "the config file"
+        for out_key, out_path in (("output.path", cfg.output.path),):
+            if out_path in inputs:
+                raise self.error(out_key, f"is the same file as {inputs[out_path]}; write the output elsewhere")
+        if cfg.output.mailing_dir in inputs:
+            raise self.error("output.mailing_dir", f"is the same path as {inputs[cfg.output.mailing_dir]}")
+        return cfg
+
+    def customers(self, t: dict[str, Any]) -> CustomersConfig:
+        s = "customers"
+        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
+        return CustomersConfig(
+            path=self.path(self.get(t, s, "path", "str")),
+            layer=self.get(t, s, "layer", "str", None),
+            id_field=self.get(t, s, "id_field", "str"),
+            mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
+            floors_field=self.get(t, s, "floors_field", "str", None),
+        )
+
+    def terrain(self, t: dict[str, Any]) -> TerrainConfig:
+        s = "terrain"
+        self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb"})
+        raw = self.get(t, s, "paths", "str_list")
+        if not raw:
+            raise self.error("terrain.paths", "must list at least one raster")
+        paths: list[Path] = []
+        for item in raw:
+            p = self.path(item)
+            if _GLOB_CHARS.search(item):
+                hits = sorted(Path(h) for h in glob.glob(str(p)))
+                if not hits:
+                    raise self.error("terrain.paths", f"the pattern '{item}' matches no file")
+                paths.extend(hits)
+            else:
+                paths.append(p)
+        units = self.get(t, s, "vertical_units", "str", None)
+        if units is not None and units not in VERTICAL_UNITS:
+            raise self.error("terrain.vertical_units", f"must be one of {', '.join(VERTICAL_UNITS)}, not {units!r}")
+        method = self.get(t, s, "method", "str", "bilinear")
+        if method not in METHODS:
+            raise self.error("terrain.method", f"must be one of {', '.join(METHODS)}, not {method!r}")
+        memory_mb = self.get(t, s, "memory_mb", "number", 1024.0)
+        if memory_mb <= 0:
+            raise self.error("terrain.memory_mb", "must be positive")
+        return TerrainConfig(paths=tuple(dict.fromkeys(paths)), vertical_units=units, method=method, memory_mb=memory_mb)
+
+    def zones(self, t: dict[str, Any]) -> ZonesConfig:
+        s = "zones"
+        self.no_unknown(t, s, {"path", "layer", "id_field", "source"})
+        raw = t.get("source")
+        if raw is None:
+            raise self.error("zones.source", "missing; add one [[zones.source]] table per zone")
+        if not isinstance(raw, list) or not all(isinstance(x, dict) for x in raw):
+            raise self.error("zones.source", "must be an array of tables ([[zones.source]])")
+        sources: list[Source] = []
+        seen: dict[str, int] = {}
+        for i, item in enumerate(raw):
+            src = self.source(item, i)
+            if src.zone in seen:
+                raise self.error(
+                    f"zones.source[{i}].zone",
+                    f"zone '{src.zone}' already has a source (zones.source[{seen[src.zone]}]); keep one",
+                )
+            seen[src.zone] = i
+            sources.append(src)
+        return ZonesConfig(
+            path=self.path(self.get(t, s, "path", "str")),
+            layer=self.get(t, s, "layer", "str", None),
+            id_field=self.get(t, s, "id_field", "str"),
+            sources=tuple(sources),
+        )
+
+    _KIND_KEYS = {
+        "tank": ("high_water_ft", "low_water_ft"),
+        "prv": ("valve_elevation_ft", "setting_psi"),
+        "pump": ("discharge_hgl_ft",),
+    }
+
+    def source(self, t: dict[str, Any], i: int) -> Source:
+        s = f"zones.source[{i}]"
+        zone = self.get(t, s, "zone", "str")
+        kind = self.get(t, s, "kind", "str")
+        if kind not in self._KIND_KEYS:
+            raise self.error(f"{s}.kind", f"must be one of {', '.join(self._KIND_KEYS)}, not {kind!r}")
+        keys = self._KIND_KEYS[kind]
+        self.no_unknown(t, s, {"zone", "kind", *keys})
+        v = {k: self.get(t, s, k, "number") for k in keys}
+        if kind == "tank":
+            if v["low_water_ft"] > v["high_water_ft"]:
+                raise self.error(
+                    f"{s}.low_water_ft",
+                    f"{v['low_water_ft']:g} ft is above high_water_ft {v['high_water_ft']:g} ft; swap them",
+                )
+            return TankSource(zone=zone, **v)
+        if kind == "prv":
+            if v["setting_psi"] <= 0:
+                raise self.error(f"{s}.setting_psi", "must be positive")
+            return PrvSource(zone=zone, **v)
+        return PumpSource(zone=zone, **v)
+
+    def criteria(self, t: dict[str, Any]) -> Criteria:
+        s = "criteria"
+        defaults = asdict(Criteria())
+        self.no_unknown(t, s, set(defaults))
+        v = {k: self.get(t, s, k, "number", d) for k, d in defaults.items()}
+        if v["psi_per_ft"] <= 0:
+            raise self.error("criteria.psi_per_ft", f"must be positive, not {v['psi_per_ft']:g}")
+        if v["floor_height_ft"] <= 0:
+            raise self.error("criteria.floor_height_ft", f"must be positive, not {v['floor_height_ft']:g}")
+        if v["min_static_psi"] < 0:
+            raise self.error("criteria.min_static_psi", "must not be negative")
+        if v["min_static_psi"] > v["max_static_psi"]:
+            raise self.error(
+                "criteria.min_static_psi",
+                f"{v['min_static_psi']:g} psi is above max_static_psi {v['max_static_psi']:g} psi; fix one of them",
+            )
+        return Criteria(**v)
+
+    def output(self, t: dict[str, Any]) -> OutputConfig:
+        s = "output"
+        self.no_unknown(t, s, {"path", "mailing_dir"})
+        path = self.path(self.get(t, s, "path", "str"))
+        if path.suffix.lower() != ".gpkg":
+            raise self.error("output.path", f"must end in .gpkg, not '{path.name}'")
+        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str")))

@@ -1,0 +1,1 @@
+"""Reading and writing at the edges: vector layers, rasters, GeoPackage and CSV outputs."""

@@ -1,0 +1,266 @@
+"""Reading the customers and zones layers with pyogrio.
+
+Errors name the file, the layer and the field, and say what to do.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyogrio
+import shapely
+from pyproj import CRS
+
+from ..config import CustomersConfig, ZonesConfig
+from ..errors import ConfigError, GeometryWarning, InputError
+from ..zones import repair
+
+log = logging.getLogger(__name__)
+
+_POINTLIKE = {"Point", "MultiPoint"}
+_POLYGONAL = {"Polygon", "MultiPolygon"}
+
+
+def _fmt_list(items, limit: int = 8) -> str:
+    items = [str(i) for i in items]
+    more = f" (+{len(items) - limit} more)" if len(items) > limit else ""
+    return ", ".join(items[:limit]) + more
+
+
+def resolve_layer(path: Path, layer: str | None, key: str) -> str:
+    """The layer to read: ``layer`` checked against the file, or its only layer."""
+    if not path.exists():
+        raise InputError(f"file not found (from {key}.path); check the path", path=path, key=f"{key}.path")
+    try:
+        layers = pyogrio.list_layers(path)
+    except Exception as exc:  # pyogrio raises DataSourceError and friends
+        raise InputError(
+            f"not a vector dataset GDAL can open ({str(exc).splitlines()[0]}); check {key}.path", path=path, key=f"{key}.path"
+        ) from exc
+    names = [str(n) for n in layers[:, 0]]
+    if layer is None:
+        if len(names) != 1:
+            raise InputError(
+                f"has {len(names)} layers ({_fmt_list(names)}); set {key}.layer to one of them", path=path, key=f"{key}.layer"
+            )
+        return names[0]
+    if layer not in names:
+        raise InputError(
+            f"no layer '{layer}' (from {key}.layer); layers there: {_fmt_list(names)}", path=path, key=f"{key}.layer"
+        )
+    return layer
+
+
+def layer_info(path: Path, layer: str) -> dict:
+    """pyogrio's layer info, errors translated."""
+    try:
+        return pyogrio.read_info(path, layer=layer)
+    except Exception as exc:
+        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+
+
+def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
+    """Every configured field (``{config key: field}``) exists in the layer."""
+    have = [str(f) for f in info["fields"]]
+    for key, name in wanted.items():
+        if name not in have:
+            raise InputError(
+                f"layer '{layer}' has no field '{name}' (from {key}); fields there: {_fmt_list(have, 20)}",
+                path=path,
+                key=key,
+            )
+
+
+def _crs(path: Path, layer: str, info_crs: str | None) -> CRS:
+    if not info_crs:
+        raise InputError(
+            f"layer '{layer}' has no CRS; assign one (e.g. with ogr2ogr -a_srs) and run again", path=path, key="crs"
+        )
+    return CRS.from_user_input(info_crs)
+
+
+@dataclass
+class Customers:
+    """The customers layer reduced to what a run needs.
+
+    ``frame`` has the id field, mail fields and floors (float, NaN unknown) and
+    a point geometry in the layer's CRS; rows without a usable geometry have a
+    None geometry and ``has_geometry`` False. ``x``/``y`` are the point
+    coordinates (NaN where there is none).
+    """
+
+    frame: gpd.GeoDataFrame
+    x: np.ndarray
+    y: np.ndarray
+    has_geometry: np.ndarray
+    crs: CRS
+    layer: str
+    from_polygons: int
+    no_geometry: int
+
+
+def read_customers(cfg: CustomersConfig) -> Customers:
+    """Read and check the customers layer; polygons become shapely's point_on_surface."""
+    path = cfg.path
+    layer = resolve_layer(path, cfg.layer, "customers")
+    info = layer_info(path, layer)
+    wanted = {"customers.id_field": cfg.id_field}
+    wanted.update({f"customers.mail_fields[{i}]": f for i, f in enumerate(cfg.mail_fields)})
+    if cfg.floors_field:
+        wanted["customers.floors_field"] = cfg.floors_field
+    check_fields(path, layer, info, wanted)
+    crs = _crs(path, layer, info["crs"])
+    if info["features"] == 0:
+        raise InputError(f"layer '{layer}' has no features; check the export that wrote it", path=path, key="customers.layer")
+    columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
+    try:
+        df = pyogrio.read_dataframe(path, layer=layer, columns=columns, use_arrow=True)
+    except Exception as exc:
+        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+    if len(df) == 0:
+        raise InputError(f"layer '{layer}' has no features; check the export that wrote it", path=path, key="customers.layer")
+
+    ids = df[cfg.id_field]
+    if ids.isna().any():
+        first = np.flatnonzero(ids.isna().to_numpy())[:5] + 1
+        raise InputError(
+            f"field '{cfg.id_field}' is empty in features {_fmt_list(first)}; give every customer an id",
+            path=path,
+            key="customers.id_field",
+        )
+    dup = ids[ids.duplicated(keep=False)]
+    if len(dup):
+        raise InputError(
+            f"field '{cfg.id_field}' has duplicate ids: {_fmt_list(pd.unique(dup))}; ids must be unique",
+            path=path,
+            key="customers.id_field",
+        )
+
+    floors = np.full(len(df), np.nan)
+    if cfg.floors_field:
+        raw = pd.to_numeric(df[cfg.floors_field], errors="coerce")
+        bad_text = raw.isna() & df[cfg.floors_field].notna()
+        vals = raw.to_numpy(dtype=np.float64)
+        bad = bad_text.to_numpy() | (~np.isnan(vals) & ((vals < 1) | (vals != np.round(vals))))
+        if bad.any():
+            sample = ids[bad].head(5).tolist()
+            raise InputError(
+                f"field '{cfg.floors_field}' must be a whole number of stories >= 1; customers {_fmt_list(sample)} "
+                f"have {_fmt_list(df[cfg.floors_field][bad].head(5).tolist())}",
+                path=path,
+                key="customers.floors_field",
+            )
+        floors = vals
+
+    geom = df.geometry.to_numpy()
+    types = np.asarray(shapely.get_type_id(geom))
+    missing = shapely.is_missing(geom) | shapely.is_empty(geom)
+    # type ids: 0 Point, 1 LineString, 2 LinearRing, 3 Polygon, 4 MultiPoint, 5 MultiLineString, 6 MultiPolygon, 7 Collection
+    linear = np.isin(types, [1, 2, 5, 7]) & ~missing
+    if linear.any():
+        kinds = sorted({shapely.get_type_id(g) for g in geom[linear]})
+        names = {1: "LineString", 2: "LinearRing", 5: "MultiLineString", 7: "GeometryCollection"}
+        raise InputError(
+            f"layer '{layer}' has {int(linear.sum())} {'/'.join(names[k] for k in kinds)} geometries "
+            f"(customers {_fmt_list(ids[linear].head(5).tolist())}); customers must be points or polygons",
+            path=path,
+            key="geometry",
+        )
+    areal = np.isin(types, [3, 4, 6]) & ~missing
+    points = geom.copy()
+    if areal.any():
+        points[areal] = shapely.point_on_surface(geom[areal])
+    points[missing] = None
+    if missing.any():
+        warnings.warn(
+            f"{path}: {int(missing.sum())} customers have no geometry (e.g. {_fmt_list(ids[missing].head(5).tolist())}); "
+            "they get status no_geometry",
+            GeometryWarning,
+            stacklevel=2,
+        )
+    x = np.full(len(df), np.nan)
+    y = np.full(len(df), np.nan)
+    has = ~missing
+    x[has] = shapely.get_x(points[has])
+    y[has] = shapely.get_y(points[has])
+    frame = gpd.GeoDataFrame(df.drop(columns="geometry"), geometry=gpd.GeoSeries(points, crs=crs), crs=crs)
+    if cfg.floors_field:
+        frame[cfg.floors_field] = floors
+    log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
+    return Customers(
+        frame=frame, x=x, y=y, has_geometry=has, crs=crs, layer=layer, from_polygons=int(areal.sum()), no_geometry=int(missing.sum())
+    )
+
+
+@dataclass
+class Zones:
+    """Zone polygons (one row per feature) with their zone ids and tie priority."""
+
+    polygons: np.ndarray
+    zone_ids: np.ndarray
+    priority: np.ndarray
+    crs: CRS
+    layer: str
+    repaired: list[str]
+
+
+def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
+    """Read the zones layer, repair invalid polygons, check sources, reproject to ``target_crs``."""
+    path = cfg.path
+    layer = resolve_layer(path, cfg.layer, "zones")
+    info = layer_info(path, layer)
+    check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
+    crs = _crs(path, layer, info["crs"])
+    try:
+        df = pyogrio.read_dataframe(path, layer=layer, columns=[cfg.id_field], use_arrow=True)
+    except Exception as exc:
+        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+    if len(df) == 0:
+        raise InputError(f"layer '{layer}' has no zone polygons", path=path, key="zones.layer")
+    ids = df[cfg.id_field]
+    if ids.isna().any():
+        raise InputError(f"field '{cfg.id_field}' is empty for {int(ids.isna().sum())} zone polygons; name every zone",
+                         path=path, key="zones.id_field")
+    ids = ids.astype(str).to_numpy(dtype=object)
+    geom = df.geometry.to_numpy()
+    missing = shapely.is_missing(geom) | shapely.is_empty(geom)
+    if missing.any():
+        warnings.warn(f"{path}: zone polygons of {_fmt_list(sorted(set(ids[missing])))} have no geometry and are ignored",
+                      GeometryWarning, stacklevel=2)
+        geom, ids = geom[~missing], ids[~missing]
+    kinds = set(shapely.get_type_id(geom).tolist()) - {3, 6}
+    if kinds:
+        bad = ids[~np.isin(shapely.get_type_id(geom), [3, 6])]
+        raise InputError(f"layer '{layer}' has non-polygon geometries for zones {_fmt_list(sorted(set(bad)))}; zones must be polygons",
+                         path=path, key="geometry")
+    geom, fixed = repair(geom)
+    repaired = sorted(set(ids[fixed].tolist()))
+    if repaired:
+        warnings.warn(f"{path}: invalid polygons of zones {_fmt_list(repaired)} were repaired with make_valid; check them",
+                      GeometryWarning, stacklevel=2)
+
+    present = sorted(set(ids.tolist()))
+    for i, src in enumerate(cfg.sources):
+        if src.zone not in present:
+            raise ConfigError(
+                f"zones.source[{i}].zone: zone '{src.zone}' is not in {path} layer '{layer}' (zones there: {_fmt_list(present)}); fix the name",
+                path=cfg.path, key=f"zones.source[{i}].zone",
+            )
+    no_source = [z for z in present if cfg.source_for(z) is None]
+    if no_source:
+        raise InputError(
+            f"zones {_fmt_list(no_source)} in layer '{layer}' have no [[zones.source]]; add one for each",
+            path=path, key="zones.source",
+        )
+    rank = {s.zone: i for i, s in enumerate(cfg.sources)}
+    priority = np.array([rank[z] for z in ids], dtype=np.int64)
+    if target_crs is not None and not crs.equals(target_crs):
+        geom = gpd.GeoSeries(geom, crs=crs).to_crs(target_crs).to_numpy()
+        crs = target_crs
+    return Zones(polygons=geom, zone_ids=ids, priority=priority, crs=crs, layer=layer, repaired=repaired)

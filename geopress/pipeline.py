@@ -1,0 +1,299 @@
+"""The one place that joins I/O and computation.
+
+:func:`run` reads the inputs, computes every customer's static pressure range
+and status, and (unless ``write=False``) writes the GeoPackage, the mailing
+lists and ``run.json`` atomically. :func:`check` validates the config and
+every input and says what a run would process, writing nothing.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import time
+import warnings
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable, Iterator
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyogrio
+import pyproj
+import rasterio
+
+from . import classify as cls
+from ._version import __version__
+from .config import Config, load_config
+from .errors import InputError, OutputError, ZoneOverlapWarning
+from .io import raster as raster_io
+from .io import vector as vector_io
+from .io import write as write_io
+from .pressure import customer_pressures
+from .tables import mailing_lists, zone_summary
+from .zones import assign, overlaps
+
+log = logging.getLogger(__name__)
+
+Progress = Callable[[str], None]
+
+#: per-customer result columns, in output order (after the id field).
+RESULT_COLUMNS = ("zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "status", "reason")
+
+
+@dataclass
+class Result:
+    """What a run computed.
+
+    ``customers``: every input customer with the result columns, point geometry
+    in the customers' CRS. ``zone_summary``: one row per zone. ``counts``:
+    customers per status. ``mailing``: the mailing lists by name. ``info``:
+    what run.json records. ``outputs``: the files written (empty when
+    ``write=False``).
+    """
+
+    config: Config
+    customers: gpd.GeoDataFrame
+    zone_summary: pd.DataFrame
+    counts: dict[str, int]
+    mailing: dict[str, pd.DataFrame]
+    info: dict[str, Any]
+    timings: dict[str, float] = field(default_factory=dict)
+    outputs: list[Path] = field(default_factory=list)
+
+    def flagged(self, status: str) -> gpd.GeoDataFrame:
+        """Customers with ``status``."""
+        return self.customers[self.customers["status"] == status]
+
+
+class _Clock:
+    def __init__(self, progress: Progress | None):
+        self.timings: dict[str, float] = {}
+        self.progress = progress
+
+    @contextmanager
+    def step(self, name: str) -> Iterator[None]:
+        if self.progress:
+            self.progress(name)
+        t0 = time.perf_counter()
+        yield
+        self.timings[name] = round(time.perf_counter() - t0, 4)
+        log.debug("step %s took %.3f s", name, self.timings[name])
+
+
+def _as_config(config: Config | str | os.PathLike) -> Config:
+    return config if isinstance(config, Config) else load_config(config)
+
+
+def check_writable(path: Path, key: str) -> None:
+    """The nearest existing ancestor of ``path`` is a writable folder; raise OutputError otherwise."""
+    probe = path
+    while not probe.exists():
+        if probe.parent == probe:
+            break
+        probe = probe.parent
+    if not probe.is_dir():
+        raise OutputError(f"{probe} is not a folder, so {key} cannot be created; choose another location", path=path, key=key)
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputError(f"{probe} is not writable, so {key} cannot be written; choose a writable location", path=path, key=key)
+
+
+def _input_record(path: Path) -> dict[str, Any]:
+    st = path.stat()
+    return {
+        "path": str(path),
+        "bytes": st.st_size,
+        "modified": datetime.fromtimestamp(st.st_mtime, timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
+    found = overlaps(zones.polygons, zones.zone_ids)
+    for ov in found:
+        warnings.warn(
+            f"zones '{ov.zone_a}' and '{ov.zone_b}' overlap ({ov.area:,.1f} square CRS units); customers there go to "
+            "the zone whose [[zones.source]] is listed first",
+            ZoneOverlapWarning, stacklevel=3,
+        )
+    return [{"zones": [o.zone_a, o.zone_b], "area": o.area} for o in found]
+
+
+def compute(config: Config, clock: _Clock) -> Result:
+    """Read inputs and compute results; writes nothing."""
+    cfg = config
+    crit = cfg.criteria
+    with clock.step("read customers"):
+        cust = vector_io.read_customers(cfg.customers)
+    with clock.step("read zones"):
+        zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
+        overlap_info = _warn_overlaps(zones)
+    with clock.step("assign zones"):
+        pts = cust.frame.geometry.to_numpy()
+        zi = assign(pts, zones.polygons, zones.priority)
+        zoned = zi >= 0
+        zone = np.where(zoned, zones.zone_ids[np.where(zoned, zi, 0)], None)
+        hgl = {s.zone: s.hgl_range(crit.psi_per_ft) for s in cfg.zones.sources}
+        zone_high = np.array([hgl[z][0] for z in zones.zone_ids] or [0.0])
+        zone_low = np.array([hgl[z][1] for z in zones.zone_ids] or [0.0])
+        safe = np.where(zoned, zi, 0)
+        hgl_high = np.where(zoned, zone_high[safe], np.nan)
+        hgl_low = np.where(zoned, zone_low[safe], np.nan)
+    with clock.step("sample terrain"):
+        terrain = raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs)
+        ground = terrain.ground_ft
+        sampled = int(np.count_nonzero(~np.isnan(ground)))
+        if sampled == 0:
+            paths = ", ".join(str(p) for p in cfg.terrain.paths)
+            if terrain.inside_any:
+                why = f"the terrain has only nodata where the {terrain.inside_any} customers inside it are"
+            else:
+                why = "no customer falls within the terrain's extent; check the CRS of the customers and of the rasters"
+            raise InputError(f"{why} (terrain.paths: {paths})", path=cfg.terrain.paths[0], key="terrain.paths")
+    with clock.step("compute pressure"):
+        floors = (cust.frame[cfg.customers.floors_field].to_numpy(dtype=np.float64)
+                  if cfg.customers.floors_field else np.full(len(ground), np.nan))
+        p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
+                               floor_height_ft=crit.floor_height_ft)
+        codes = cls.classify(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
+                             psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+        reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
+                             psi_top=p.psi_top, floors=floors, criteria=crit)
+        frame = cust.frame
+        id_field = cfg.customers.id_field
+        extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
+        data = {
+            id_field: frame[id_field].to_numpy(),
+            "zone": zone,
+            "ground_ft": ground,
+            "hgl_high_ft": hgl_high,
+            "hgl_low_ft": hgl_low,
+            "psi_max": p.psi_max,
+            "psi_min": p.psi_min,
+            "psi_top": p.psi_top,
+            "status": cls.status_names(codes),
+            "reason": reason,
+        }
+        for c in extra:
+            data[c] = frame[c].to_numpy()
+        customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
+        counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+    with clock.step("summarise"):
+        summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
+        mailing = mailing_lists(customers, id_field=id_field, mail_fields=cfg.customers.mail_fields)
+    info = {
+        "geopress_version": __version__,
+        "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
+        "config_file": str(cfg.source_path) if cfg.source_path else None,
+        "config": cfg.to_dict(),
+        "inputs": [_input_record(p) for p in cfg.input_paths()],
+        "customers": {
+            "total": int(len(customers)),
+            "layer": cust.layer,
+            "from_polygons": cust.from_polygons,
+            "no_geometry": cust.no_geometry,
+        },
+        "counts": counts,
+        "terrain": [vars(r) for r in terrain.rasters],
+        "zones": {"layer": zones.layer, "repaired": zones.repaired, "overlaps": overlap_info},
+    }
+    return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info)
+
+
+def output_layers(result: Result) -> dict[str, pd.DataFrame]:
+    """The GeoPackage's layers, in writing order."""
+    layers: dict[str, pd.DataFrame] = {"customers": result.customers}
+    for status, name in cls.FLAGGED_LAYERS.items():
+        layers[name] = result.flagged(status)
+    layers["zone_summary"] = result.zone_summary
+    return layers
+
+
+def run_json_path(config: Config) -> Path:
+    """run.json sits beside the GeoPackage."""
+    return config.output.path.parent / "run.json"
+
+
+def write_outputs(result: Result, clock: _Clock) -> list[Path]:
+    """Stage every output, then rename them all into place."""
+    out = result.config.output
+    with clock.step("write outputs"):
+        write_io.ensure_dir(out.path.parent, "output.path")
+        write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
+        with write_io.Staging() as stage:
+            stage.write(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)))
+            for name, df in result.mailing.items():
+                stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
+            info = dict(result.info)
+            info["timings_s"] = clock.timings
+            info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in result.mailing]]
+            info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+            stage.commit()
+            return list(stage.committed)
+
+
+def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None) -> Result:
+    """Run the screening for ``config`` (a :class:`Config` or a path to a TOML file).
+
+    With ``write=True`` (default) the outputs are written atomically: on any
+    error no output is changed. Raises :class:`~geopress.errors.GeopressError`
+    for bad config or input.
+    """
+    cfg = _as_config(config)
+    clock = _Clock(progress)
+    t0 = time.perf_counter()
+    started = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    if write:
+        check_writable(cfg.output.path.parent, "output.path")
+        check_writable(cfg.output.mailing_dir, "output.mailing_dir")
+    result = compute(cfg, clock)
+    result.info["started"] = started
+    if write:
+        result.outputs = write_outputs(result, clock)
+    result.timings = clock.timings
+    log.info("run finished in %.2f s: %s", time.perf_counter() - t0,
+             ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
+    return result
+
+
+@dataclass
+class CheckReport:
+    """What :func:`check` found; ``lines`` say what a run would process."""
+
+    config: Config
+    customers: int
+    no_geometry: int
+    zones: list[str]
+    rasters: list[raster_io.RasterReport]
+    overlaps: list[dict[str, Any]]
+    lines: list[str]
+
+
+def check(config: Config | str | os.PathLike) -> CheckReport:
+    """Validate the config and every input; write nothing."""
+    cfg = _as_config(config)
+    check_writable(cfg.output.path.parent, "output.path")
+    check_writable(cfg.output.mailing_dir, "output.mailing_dir")
+    cust = vector_io.read_customers(cfg.customers)
+    zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
+    ov = _warn_overlaps(zones)
+    rasters = [raster_io.describe(p, cfg.terrain.vertical_units) for p in cfg.terrain.paths]
+    zone_names = sorted(set(zones.zone_ids.tolist()))
+    lines = [
+        f"customers: {len(cust.frame)} from {cfg.customers.path} layer '{cust.layer}' ({cust.crs.name}); "
+        f"{cust.from_polygons} polygons, {cust.no_geometry} without geometry",
+        f"zones: {len(zone_names)} ({', '.join(zone_names)}) from {cfg.zones.path} layer '{zones.layer}'",
+    ]
+    for s in cfg.zones.sources:
+        hi, lo = s.hgl_range(cfg.criteria.psi_per_ft)
+        lines.append(f"  {s.zone}: {s.kind}, HGL {lo:.1f} to {hi:.1f} ft")
+    for r in rasters:
+        lines.append(f"terrain: {r.path} ({r.shape[1]} x {r.shape[0]} px, {r.crs}, vertical unit {r.vertical_unit})")
+    for o in ov:
+        lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
+    lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
+    return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=zone_names,
+                       rasters=rasters, overlaps=ov, lines=lines)
