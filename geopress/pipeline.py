@@ -254,7 +254,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         result.outputs = write_outputs(result, clock)
     result.timings = clock.timings
-    log.info("run finished in %.2f s: %s", time.perf_counter() - t0,
+    log.debug("run finished in %.2f s: %s", time.perf_counter() - t0,
              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
     return result
 

@@ -77,9 +77,9 @@ LOWFIELD_TOP_M = 312.0
 RIDGEWAY_TOP_M = 366.0
 
 # Hydraulic grade lines, feet.  Chosen so the demo shows every status.
-TANK = {"zone": "Ridgeway", "high_water_ft": 1218.0, "low_water_ft": 1196.0}
-PRV = {"zone": "Lowfield", "valve_elevation_ft": 1010.0, "setting_psi": 54.0}
-PUMP = {"zone": "Summit", "discharge_hgl_ft": 1392.0}
+TANK = {"zone": "Ridgeway", "high_water_ft": 1212.0, "low_water_ft": 1194.0}
+PRV = {"zone": "Lowfield", "valve_elevation_ft": 1010.0, "setting_psi": 51.0}
+PUMP = {"zone": "Summit", "discharge_hgl_ft": 1405.0}
 
 CRITERIA = {
     "max_static_psi": 80.0,
@@ -322,6 +322,26 @@ class Placer:
             shapely.prepare(g)
         for z in self.zones.values():
             shapely.prepare(z)
+        self.cells: dict[tuple[int, int], list[tuple[float, float]]] = {}
+
+    def claim(self, u, v, n):
+        """Accept candidates in order, at most ``n``, keeping every accepted
+        point at least MIN_SPACING_M from all points accepted before."""
+        cell = MIN_SPACING_M
+        got_u, got_v = [], []
+        for ui, vi in zip(u, v):
+            if len(got_u) == n:
+                break
+            ci, cj = int(np.floor(ui / cell)), int(np.floor(vi / cell))
+            near = (p for di in (-1, 0, 1) for dj in (-1, 0, 1)
+                    for p in self.cells.get((ci + di, cj + dj), ()))
+            if any(np.hypot(ui - pu, vi - pv) < MIN_SPACING_M
+                   for pu, pv in near):
+                continue
+            self.cells.setdefault((ci, cj), []).append((ui, vi))
+            got_u.append(ui)
+            got_v.append(vi)
+        return np.array(got_u), np.array(got_v)
 
     def zone_of(self, u, v):
         out = np.full(np.shape(u), None, dtype=object)
@@ -360,10 +380,11 @@ class Placer:
                 keep &= self.rng.uniform(0, 1, m) < slope_weight(u, v)
             if extra is not None:
                 keep &= extra(u, v)
-            got_u.append(u[keep])
-            got_v.append(v[keep])
-            have += int(keep.sum())
-        return np.concatenate(got_u)[:n], np.concatenate(got_v)[:n]
+            cu, cv = self.claim(u[keep], v[keep], n - have)
+            got_u.append(cu)
+            got_v.append(cv)
+            have += len(cu)
+        return np.concatenate(got_u), np.concatenate(got_v)
 
 
 # Neighbourhoods: (tag, centre u, v, sigma u, v, count, zone).
@@ -374,13 +395,15 @@ NEIGHBOURHOODS = [
     ("ridgeway_w", 700, 1550, 350, 220, 520, TANK["zone"]),
     ("ridgeway_e", 2250, 1600, 350, 220, 500, TANK["zone"]),
     ("ridgeway_mid", 1500, 1450, 420, 140, 380, TANK["zone"]),
-    ("summit", 1500, 2600, 650, 180, 430, PUMP["zone"]),
+    ("summit", 1500, 2480, 650, 200, 430, PUMP["zone"]),
 ]
 N_DOWNTOWN = 170
 N_BROW = 48
+N_ESCARP = 170
 N_UNZONED = 47
 N_PIT = 12
 N_OFFGRID = 12
+MIN_SPACING_M = 4.0  # no two meter points closer than this
 
 
 def place_points(zones_local, rng):
@@ -394,7 +417,7 @@ def place_points(zones_local, rng):
         tags.extend([tag] * len(u))
 
     n_fixed = sum(n[5] for n in NEIGHBOURHOODS)
-    n_special = N_DOWNTOWN + N_BROW + N_UNZONED + N_PIT + N_OFFGRID
+    n_special = N_DOWNTOWN + N_BROW + N_ESCARP + N_UNZONED + N_PIT + N_OFFGRID
     n_background = N_POINTS - n_fixed - n_special
     if n_background < 0:
         raise RuntimeError("neighbourhood counts exceed N_POINTS")
@@ -404,7 +427,7 @@ def place_points(zones_local, rng):
     add(*placer.sample(n_background, None, None), "scattered")
 
     # Downtown: a compact commercial core high in the tank zone.
-    add(*placer.sample(N_DOWNTOWN, (1380, 1930), (70, 45),
+    add(*placer.sample(N_DOWNTOWN, (1380, 1840), (70, 45),
                        zone=TANK["zone"], weight=False), "downtown")
 
     # Brow: houses at the very top of the tank zone, at or above the
@@ -415,14 +438,23 @@ def place_points(zones_local, rng):
                        extra=lambda u, v: ground_m(u, v) > lw_m + 0.3),
         "brow")
 
+    # Escarpment: houses on the upper slopes of the tank zone, well below
+    # the brow but high enough for low pressure at low water.
+    add(*placer.sample(N_ESCARP, (1000, 2150), (450, 90), zone=TANK["zone"],
+                       weight=False,
+                       extra=lambda u, v: (ground_m(u, v) > 340.5)
+                       & (ground_m(u, v) < lw_m - 1.0)),
+        "escarp")
+
     # Unzoned: rural homes outside the service area but on the DEM.
     add(*placer.sample(N_UNZONED, None, None, zone="unzoned", weight=False),
         "unzoned")
 
     # Quarry works on the nodata patch (10 m clear of its edge).
     umin, vmin, umax, vmax = pit_bounds_local()
-    add(rng.uniform(umin + 10, umax - 10, N_PIT),
-        rng.uniform(vmin + 10, vmax - 10, N_PIT), "pit")
+    add(*placer.claim(rng.uniform(umin + 10, umax - 10, 20 * N_PIT),
+                      rng.uniform(vmin + 10, vmax - 10, 20 * N_PIT), N_PIT),
+        "pit")
 
     # Off-grid: beyond the DEM extent on every side.
     side = np.arange(N_OFFGRID) % 4
@@ -463,6 +495,22 @@ def lot_block(rng, origin, angle, ncols, nrows, slot=(34.0, 40.0)):
     return lots
 
 
+EDGE_CASE_NOTES = {
+    "straddles_lowfield_ridgeway": "across the Lowfield / Ridgeway "
+                                   "boundary, interior point 4 m into Ridgeway",
+    "straddles_ridgeway_summit": "rotated, across the Ridgeway / Summit "
+                                 "boundary, interior point about 4 m into "
+                                 "Summit",
+    "half_on_quarry_pit": "interior point on valid ground, 8 m of the "
+                          "lot on the "
+                          "nodata quarry pit",
+    "inside_quarry_pit": "entirely on the nodata quarry pit",
+    "unzoned": "on the DEM but outside every zone (north-east notch)",
+    "off_dem_edge": "across the west edge of the DEM, interior point 5 m "
+                    "outside it; outside every zone",
+}
+
+
 def edge_lots():
     """Hand-placed lots that test polygon edge cases (local metres)."""
     umin, vmin, umax, vmax = pit_bounds_local()
@@ -472,28 +520,29 @@ def edge_lots():
     on_upper = upper.interpolate(0.60, normalized=True)
     return [
         ("straddles_lowfield_ridgeway",
-         box(on_lower.x - 12, on_lower.y - 15, on_lower.x + 12,
-             on_lower.y + 15)),
+         box(on_lower.x - 12, on_lower.y - 11, on_lower.x + 12,
+             on_lower.y + 19)),
         ("straddles_ridgeway_summit",
-         rotate(box(on_upper.x - 10, on_upper.y - 14, on_upper.x + 10,
-                    on_upper.y + 14), 30)),
+         rotate(box(on_upper.x - 10, on_upper.y - 9, on_upper.x + 10,
+                    on_upper.y + 19), 30, origin=(on_upper.x, on_upper.y))),
         ("half_on_quarry_pit",
-         box(umin - 12, vmin + 40, umin + 12, vmin + 65)),
+         box(umin - 18, vmin + 40, umin + 8, vmin + 65)),
         ("inside_quarry_pit",
          box(umin + 30, vmin + 30, umin + 55, vmin + 60)),
         ("unzoned", box(2750, 2100, 2775, 2130)),
-        ("off_dem_edge", box(-10, 1500, 15, 1530)),
+        ("off_dem_edge", box(-18, 1500, 8, 1530)),
     ]
 
 
 def place_lots(zones_local, rng):
-    """Polygon lots: two subdivisions plus the edge cases."""
+    """Polygon lots: three subdivisions plus the edge cases."""
     placer = Placer(zones_local, rng)
     edges = edge_lots()
     n_regular = N_LOTS - len(edges)
     candidates = []
-    candidates += lot_block(rng, (520, 640), 25.0, 22, 8)
-    candidates += lot_block(rng, (1700, 1290), 0.0, 20, 8)
+    candidates += lot_block(rng, (420, 260), 25.0, 22, 8)  # valley
+    candidates += lot_block(rng, (1500, 1820), 0.0, 16, 8)  # upper slopes
+    candidates += lot_block(rng, (900, 2560), -15.0, 12, 4)  # plateau
     lots, tags = [], []
     for poly in candidates:
         c = poly.centroid
@@ -549,14 +598,13 @@ STREETS = [
     "Quillfeather Lane", "Sallow Row", "Tansy Way", "Cobnut Walk",
     "Brindle Row", "Millrace Steps", "Kettlewade Road", "Larkhollow Parade",
     "Fennel Court", "Thimble Hill", "Gorsebrook Drive", "Orrisroot Avenue",
-    "Wickerly Close", "Harebell Rise", "Brook Bottom Road", "Quarry Gate",
+    "Wickerly Close", "Harebell Rise", "Brook Bottom Road",
     "Beaconlight Way", "Teasel Crescent", "Mallowfen Street", "Dovetarn Road",
     "Pennyroyal Place", "Burdock Lane", "Sorrel Terrace", "Moorgrass Avenue",
     "Cinderpath Lane", "Tallowlight Street", "Ember Hill", "Nettlefold Way",
     "Copperlind Road", "Saltmarrow Close", "Yarrow Bank", "Lintmoor Drive",
     "Wheelwright Row", "Goosegrass Lane", "Thornapple Street",
-    "Tankside Terrace", "Crestline Drive", "Summit Crescent",
-    "Escarp Walk", "Upper Ridgeway Road",
+    "Crestline Drive", "Summit Crescent", "Upper Ridgeway Road",
 ]
 
 DOWNTOWN_STREETS = ["Tarnwhistle High Street", "Market Cross", "Guildhall Row",
@@ -612,6 +660,8 @@ def street_for(u: float, v: float, tag: str) -> str:
         return DOWNTOWN_STREETS[int(u // 40) % len(DOWNTOWN_STREETS)]
     if tag == "brow":
         return "Tankside Terrace"
+    if tag == "escarp":
+        return "Escarp Walk"
     if tag == "pit":
         return "Quarry Gate"
     i = int(np.clip(u // 350, 0, 8))
@@ -620,8 +670,12 @@ def street_for(u: float, v: float, tag: str) -> str:
 
 
 def owner_occupier_records(u, v, tags, rng):
-    """Default owner and a unique mailing address for every customer."""
-    used = set()
+    """Default owner and a unique mailing address for every customer.
+
+    Landlord and formula-test addresses are reserved so no owner-occupier
+    shares them by accident.
+    """
+    used = {row[1] for row in LANDLORDS} | set(FORMULA_ADDRESSES)
     records = []
     for ui, vi, tag in zip(u, v, tags):
         street = street_for(ui, vi, tag)
@@ -650,8 +704,6 @@ def landlord_list(rng, used, lots: bool):
         n = n_lots if lots else n_points
         if n == 0:
             continue
-        if addr in used:
-            raise RuntimeError(f"landlord address collides: {addr}")
         if city_idx is None:
             city, zipc = TOWN, "00417"
         else:
@@ -697,7 +749,7 @@ def assign_landlords(records, tags, used, rng, lots: bool):
 # Tags of ordinary customers (not the deliberately odd ones).
 ORDINARY_TAGS = {"brookside", "millrace", "lowfield", "ridgeway_w",
                  "ridgeway_e", "ridgeway_mid", "summit", "scattered",
-                 "downtown", "brow", "subdivision"}
+                 "downtown", "brow", "escarp", "subdivision"}
 
 # A few owner-occupier rows whose text starts with a formula character.
 FORMULA_ADDRESSES = ["-12 Unit Rear, 5 Brindle Row", "=7 Fennel Court",
@@ -727,7 +779,7 @@ def floors_and_use(tags, rng):
     use[(r >= 0.05) & (r < 0.065)] = "institutional"
     use[(r >= 0.065) & (r < 0.08)] = "industrial"
     tall_levels = np.arange(3, 13)
-    tall_p = np.array([22, 20, 16, 12, 9, 7, 5, 4, 3, 2], dtype=float)
+    tall_p = np.array([30, 25, 12, 9, 7, 5, 4, 3, 3, 2], dtype=float)
     tall_p /= tall_p.sum()
     for i, tag in enumerate(tags):
         if tag == "downtown":
@@ -830,18 +882,20 @@ def bilinear_ground_ft(dem, u, v):
 
 
 def status_table(statuses, zones) -> list[str]:
-    counts = Counter(statuses)
+    """Counts of each status by zone ("none" = outside every zone)."""
+    cols = [PRV["zone"], TANK["zone"], PUMP["zone"], "none"]
+    counts = Counter((z or "none", s) for z, s in zip(zones, statuses))
     n = len(statuses)
-    lines = [f"{'status':<18}{'count':>7}{'share':>8}"]
+    head = f"{'status':<18}" + "".join(f"{c:>10}" for c in cols)
+    lines = [head + f"{'total':>8}{'share':>8}"]
     for s in STATUSES:
-        lines.append(f"{s:<18}{counts.get(s, 0):>7}{100 * counts.get(s, 0) / n:>7.1f}%")
-    lines.append(f"{'total':<18}{n:>7}")
-    by_zone = Counter((z or "-", s) for z, s in zip(zones, statuses))
-    lines.append("")
-    lines.append("by zone: " + ", ".join(
-        f"{z}: " + " ".join(f"{s}={c}" for (zz, s), c in sorted(by_zone.items())
-                           if zz == z)
-        for z in [PRV["zone"], TANK["zone"], PUMP["zone"], "-"]))
+        row = [counts.get((c, s), 0) for c in cols]
+        total = sum(row)
+        lines.append(f"{s:<18}" + "".join(f"{k:>10}" for k in row)
+                     + f"{total:>8}{100 * total / n:>7.1f}%")
+    per_zone = [sum(counts.get((c, s), 0) for s in STATUSES) for c in cols]
+    lines.append(f"{'total':<18}" + "".join(f"{k:>10}" for k in per_zone)
+                 + f"{n:>8}")
     return lines
 
 
@@ -850,7 +904,9 @@ def status_table(statuses, zones) -> list[str]:
 # ---------------------------------------------------------------------------
 
 
-def config_text(customers_path: str, layer: str, out_name: str) -> str:
+def config_text(customers_path: str, layer: str, out_path: str,
+                mailing_dir: str) -> str:
+    """The demo config; paths are relative to the config file."""
     return f"""\
 # geopress demo configuration for the fictional town of {TOWN}.
 # Paths are relative to this file.  Written by scripts/make_demo.py.
@@ -896,88 +952,98 @@ psi_per_ft = {CRITERIA['psi_per_ft']}
 floor_height_ft = {CRITERIA['floor_height_ft']}
 
 [output]
-path = "out/{out_name}.gpkg"
-mailing_dir = "out/{out_name}_mailing"
+path = "{out_path}"
+mailing_dir = "{mailing_dir}"
 """
 
 
-def readme_text(point_table, lot_table, edge_accounts) -> str:
-    low, high = zone_hgls_ft()[PRV["zone"]]
-    edges = "\n".join(f"| `{a}` | {t.replace('_', ' ')} |"
-                      for t, a in edge_accounts)
+def readme_text(point_table, lot_table, edge_rows) -> str:
+    """The data set's README, with the expected status counts."""
+    prv_hgl = zone_hgls_ft()[PRV["zone"]][0]
+    pit_px = f"{PIT_ROWS[1] - PIT_ROWS[0]} x {PIT_COLS[1] - PIT_COLS[0]}"
+    edges = "\n".join(f"| `{a}` | {EDGE_CASE_NOTES[t]} | {st} |"
+                      for t, a, st in edge_rows)
     return f"""\
 # geopress demo data: {TOWN}
 
 Everything in this folder is **fictional**. {TOWN} is an invented hill
-town in an invented state (code `{STATE}`); the terrain, pressure zones,
-owners, account numbers and street addresses are all made up, and the
-grid sits over open ocean in UTM zone 31N, so it matches no real place.
+town in an invented state (code `{STATE}`). The terrain, pressure zones,
+owners, account numbers and street addresses are all made up, and the grid
+sits over open ocean in UTM zone 31N, so it matches no real place.
 
-Regenerate with `python scripts/make_demo.py` (or `--out DIR`); the output
-is deterministic. `python scripts/make_demo.py --summary` also prints the
-statuses the screening is expected to assign. This README is written by the
-script: edit the script, not this file.
+Regenerate with `python scripts/make_demo.py` (or `--out DIR`). The output
+is deterministic: the same bytes every run. `--summary` also prints the
+statuses the screening is expected to assign. This README is written by
+the script; edit the script, not this file.
 
 ## Files
 
 | file | content |
 | --- | --- |
-| `dem.tif` | synthetic DEM: {NCOLS} x {NROWS} px of {PIXEL_M:g} m, float32 **metres**, DEFLATE, 256 x 256 tiles, nodata -9999 |
-| `zones.gpkg` | layer `zones`: fields `zone`, `name`; three polygons with shared edges |
+| `dem.tif` | synthetic DEM, {NCOLS} x {NROWS} px of {PIXEL_M:g} m, float32, elevations in **metres**, DEFLATE, 256 x 256 tiles, nodata {NODATA:g} |
+| `zones.gpkg` | layer `zones`: text fields `zone` (id) and `name`; three polygons with shared edges |
 | `customers.gpkg` | layer `parcels`: {N_POINTS} meter points |
 | `customers_parcels.gpkg` | layer `lots`: {N_LOTS} polygon parcels, same fields |
-| `geopress.toml` | demo config for the points |
+| `geopress.toml` | demo config for the meter points |
 | `geopress_lots.toml` | the same config for the polygon lots |
 
 All layers use EPSG:32631 (WGS 84 / UTM zone 31N), metres. The DEM covers
-easting {WEST:.0f}-{EAST:.0f}, northing {SOUTH:.0f}-{NORTH:.0f}.
+easting {WEST:.0f} to {EAST:.0f} and northing {SOUTH:.0f} to {NORTH:.0f}.
+Hydraulic grades in the configs are in feet (1 ft = 0.3048 m).
 
 ## Terrain and zones
 
-A valley (floor about 285 m, 935 ft) in the south rises over middle slopes
-and a steep escarpment to a crest near 400 m (1310 ft) in the north. A
-disused quarry pit of {PIT_ROWS[1] - PIT_ROWS[0]} x {PIT_COLS[1] - PIT_COLS[0]}
-pixels (rows {PIT_ROWS[0]}-{PIT_ROWS[1] - 1}, columns
-{PIT_COLS[0]}-{PIT_COLS[1] - 1}) is nodata. The service area covers most of
-the DEM; the margins and a notch in the north-east are outside every zone.
+A valley in the south (floor about 285 m, 935 ft) rises over middle slopes
+and a steep escarpment to a crest of about 400 m (1310 ft) in the north.
+A disused quarry pit of {pit_px} pixels (rows {PIT_ROWS[0]} to
+{PIT_ROWS[1] - 1}, columns {PIT_COLS[0]} to {PIT_COLS[1] - 1}) is nodata.
+The service area covers most of the DEM; the margins and a notch in the
+north-east (homes on private wells) are outside every zone. Zone
+boundaries follow the {LOWFIELD_TOP_M:g} m and {RIDGEWAY_TOP_M:g} m ground
+contours.
 
 | zone | kind | HGL (ft) |
 | --- | --- | --- |
-| `{PRV['zone']}` | PRV, valve at {PRV['valve_elevation_ft']:g} ft set to {PRV['setting_psi']:g} psi | {low:.1f} |
+| `{PRV['zone']}` | PRV, valve at {PRV['valve_elevation_ft']:g} ft set to {PRV['setting_psi']:g} psi | {prv_hgl:.1f} |
 | `{TANK['zone']}` | tank, low / high water | {TANK['low_water_ft']:g} / {TANK['high_water_ft']:g} |
 | `{PUMP['zone']}` | closed zone, booster discharge | {PUMP['discharge_hgl_ft']:g} |
 
-Zone boundaries follow the {LOWFIELD_TOP_M:g} m and {RIDGEWAY_TOP_M:g} m
-ground contours. 1 ft = 0.3048 m.
-
 ## Customers
 
-Fields: `account` (unique text, `A-` and six digits), `owner`,
-`mail_address`, `mail_city`, `mail_state`, `mail_zip` (five-digit text with
-leading zeros), `floors` (integer stories), `land_use`. About 8 % of
-customers share a mailing address with other accounts (landlords). Some
-owner names or addresses begin with `=`, `+`, `-` or `@`, and some contain
-commas, apostrophes or accented letters, to exercise CSV output. Tall
-buildings (3-12 stories) are concentrated in a downtown core high in the
-`{TANK['zone']}` zone.
+Fields: `account` (unique text, `A-` and six digits, unique across both
+customer files), `owner`, `mail_address`, `mail_city`, `mail_state`,
+`mail_zip` (five-digit text with leading zeros), `floors` (integer
+stories), `land_use`.
 
-Expected statuses of the meter points (`customers.gpkg`), computed from the
+* About 8 % of customers share their mailing address (same owner and
+  mail fields) with other accounts: landlords.
+* Some owners or addresses begin with `=`, `+`, `-` or `@`, and some
+  contain commas, apostrophes or accented letters, to exercise CSV output.
+* Buildings of 3 to 12 stories (about 3 %) are concentrated in a downtown
+  core high in the `{TANK['zone']}` zone.
+* Meter points lie at least 3 m from zone boundaries and 10 m inside the
+  DEM edge, and the ones on the quarry pit at least 10 m inside it.
+
+Expected statuses of the meter points (`customers.gpkg`), from the
 analytic terrain surface:
 
 ```
 {chr(10).join(point_table)}
 ```
 
-Expected statuses of the polygon lots, evaluated at each lot's centroid:
+Expected statuses of the polygon lots (`customers_parcels.gpkg`), taking
+the ground at each lot's interior point (shapely `point_on_surface`,
+which for these rectangles is the centre):
 
 ```
 {chr(10).join(lot_table)}
 ```
 
-Polygon lots placed on purpose to test edge cases:
+Lots placed on purpose to test polygon edge cases (status at the
+interior point):
 
-| account | case |
-| --- | --- |
+| account | case | expected status |
+| --- | --- | --- |
 {edges}
 """
 
@@ -1021,7 +1087,7 @@ def main(argv=None) -> int:
     write_layer(zones_frame(zones_local), out / "zones.gpkg", "zones")
 
     accounts = make_accounts(rng_for(2), N_POINTS + N_LOTS)
-    placer = Placer(zones_local, rng_for(3))
+    lookup = Placer(zones_local, rng=None)  # zone lookups only
 
     u, v, tags = place_points(zones_local, rng_for(4))
     attrs = build_attributes(u, v, tags, rng_for(5), accounts[:N_POINTS])
@@ -1029,7 +1095,7 @@ def main(argv=None) -> int:
     write_layer(customers_frame(pts, attrs), out / "customers.gpkg", "parcels")
 
     lots, lot_tags = place_lots(zones_local, rng_for(6))
-    lc = shapely.centroid(lots)
+    lc = shapely.point_on_surface(lots)
     lu, lv = shapely.get_x(lc), shapely.get_y(lc)
     lot_attrs = build_attributes(lu, lv, lot_tags, rng_for(7),
                                  accounts[N_POINTS:], lots=True)
@@ -1038,22 +1104,25 @@ def main(argv=None) -> int:
                 out / "customers_parcels.gpkg", "lots")
 
     # Expected statuses from the analytic surface.
-    pz = placer.zone_of(u, v)
+    pz = lookup.zone_of(u, v)
     p_status = classify(analytic_ground_ft(u, v), pz, attrs["floors"])
-    lz = placer.zone_of(lu, lv)
+    lz = lookup.zone_of(lu, lv)
     l_status = classify(analytic_ground_ft(lu, lv), lz, lot_attrs["floors"])
     point_table = status_table(p_status, pz)
     lot_table = status_table(l_status, lz)
-    edge_accounts = [(t, a) for t, a in zip(lot_tags, lot_attrs["account"])
-                     if t != "subdivision"]
+    edge_rows = [(t, a, st) for t, a, st
+                 in zip(lot_tags, lot_attrs["account"], l_status)
+                 if t != "subdivision"]
 
     (out / "geopress.toml").write_text(
-        config_text("customers.gpkg", "parcels", "pressure"), encoding="utf-8")
+        config_text("customers.gpkg", "parcels", "out/pressure.gpkg",
+                    "out/mailing"), encoding="utf-8")
     (out / "geopress_lots.toml").write_text(
-        config_text("customers_parcels.gpkg", "lots", "lots_pressure"),
+        config_text("customers_parcels.gpkg", "lots",
+                    "out/lots/pressure.gpkg", "out/lots/mailing"),
         encoding="utf-8")
     (out / "README.md").write_text(
-        readme_text(point_table, lot_table, edge_accounts), encoding="utf-8")
+        readme_text(point_table, lot_table, edge_rows), encoding="utf-8")
 
     if args.summary:
         print("meter points (customers.gpkg / parcels):")
@@ -1061,7 +1130,7 @@ def main(argv=None) -> int:
         b_status = classify(bilinear_ground_ft(dem, u, v), pz, attrs["floors"])
         diff = sum(a != b for a, b in zip(p_status, b_status))
         print(f"\nstatuses that change with bilinear DEM sampling: {diff}")
-        print("\npolygon lots (customers_parcels.gpkg / lots), at centroids:")
+        print("\npolygon lots (customers_parcels.gpkg / lots), at interior points:")
         print("\n".join(lot_table))
         print("\nground range (m): "
               f"{dem[dem != NODATA].min():.1f} - {dem[dem != NODATA].max():.1f}")

@@ -1,0 +1,1 @@
+"""The invented demo town shipped with geopress (data files only)."""
