@@ -224,7 +224,10 @@ class _Reader:
                 break
             if key_re.match(self.lines[i]):
                 return i + 1
-        return start + 1 if pattern is not None else None
+        if pattern is None:  # a top-level name may be a table: [name], [name.sub] or [[name]]
+            table_re = re.compile(r"^\s*\[\[?\s*" + re.escape(leaf) + r"\s*[\].]")
+            return next((i + 1 for i, line in enumerate(self.lines) if table_re.match(line)), None)
+        return start + 1
 
     def error(self, key: str, message: str) -> ConfigError:
         line = self.line_of(key)
@@ -268,7 +271,8 @@ class _Reader:
     def no_unknown(self, table: Mapping[str, Any], section: str, allowed: set[str]) -> None:
         for name in table:
             if name not in allowed:
-                raise self.error(f"{section}.{name}", f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
+                key = f"{section}.{name}" if section else name
+                raise self.error(key, f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
     def path(self, value: str) -> Path:
         p = Path(value).expanduser()
