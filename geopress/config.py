@@ -274,9 +274,12 @@ class _Reader:
                 key = f"{section}.{name}" if section else name
                 raise self.error(key, f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
-    def path(self, value: str) -> Path:
-        p = Path(value).expanduser()
-        return (p if p.is_absolute() else self.base_dir / p).resolve()
+    def path(self, value: str, key: str) -> Path:
+        try:
+            p = Path(value).expanduser()
+            return (p if p.is_absolute() else self.base_dir / p).resolve()
+        except (RuntimeError, ValueError, OSError) as exc:  # unknown ~user, NUL byte, symlink loop
+            raise self.error(key, f"is not a usable path ({exc}); fix it") from exc
 
     # -- sections ----------------------------------------------------------
     def build(self, data: dict[str, Any]) -> Config:
@@ -304,7 +307,7 @@ class _Reader:
         s = "customers"
         self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
         return CustomersConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
@@ -319,7 +322,7 @@ class _Reader:
             raise self.error("terrain.paths", "must list at least one raster")
         paths: list[Path] = []
         for item in raw:
-            p = self.path(item)
+            p = self.path(item, "terrain.paths")
             if _GLOB_CHARS.search(item):
                 hits = sorted(Path(h) for h in glob.glob(str(p)))
                 if not hits:
@@ -358,7 +361,7 @@ class _Reader:
             seen[src.zone] = i
             sources.append(src)
         return ZonesConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "zones.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             sources=tuple(sources),
@@ -413,7 +416,7 @@ class _Reader:
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
         self.no_unknown(t, s, {"path", "mailing_dir"})
-        path = self.path(self.get(t, s, "path", "str"))
+        path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not '{path.name}'")
-        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str")))
+        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"))
