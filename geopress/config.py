@@ -326,7 +326,7 @@ class _Reader:
             if _GLOB_CHARS.search(item):
                 hits = sorted(Path(h) for h in glob.glob(str(p)))
                 if not hits:
-                    raise self.error("terrain.paths", f"the pattern '{item}' matches no file")
+                    raise self.error("terrain.paths", f"the pattern {item!r} matches no file")
                 paths.extend(hits)
             else:
                 paths.append(p)
@@ -418,5 +418,5 @@ class _Reader:
         self.no_unknown(t, s, {"path", "mailing_dir"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
-            raise self.error("output.path", f"must end in .gpkg, not '{path.name}'")
+            raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
         return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"))
