@@ -16,6 +16,7 @@ import pyogrio
 import pytest
 import shapely
 from click.testing import CliRunner
+from affine import Affine
 from pyproj import Transformer
 
 import geopress
@@ -596,3 +597,86 @@ def test_cli_demo(tmp_path, invoke):
     assert res.exit_code == 0, res.stderr
     assert (tmp_path / "demo" / "pressure.gpkg").exists()
     assert "customers:" in res.stdout
+
+
+# ---------------------------------------------------------------- input problems
+
+
+def test_overlapping_zones_warn_and_follow_source_order(world):
+    # East reaches 100 m into West: customers there go to West, listed first in the config
+    world.zones_path.unlink()
+    write_layer(world.zones_path, "zones", {"zone": ["West", "East"]},
+                [shapely.box(X0, Y1 - 1000, X0 + 500, Y1), shapely.box(X0 + 400, Y1 - 1000, X0 + 1000, Y1)])
+    with pytest.warns(geopress.errors.ZoneOverlapWarning, match="'East' and 'West' overlap"):
+        res = geopress.run(world.config_path, write=False)
+    xs = world.extra["xs"]
+    in_overlap = (xs > X0 + 400) & (xs < X0 + 500)
+    assert in_overlap.any()
+    assert (res.customers["zone"][in_overlap] == "West").all()
+    # 1000 m x 100 m of overlap: box intersections are exact but for round-off (pytest.approx's 1e-6 relative)
+    assert res.info["zones"]["overlaps"] == [{"zones": ["East", "West"], "area": pytest.approx(100_000.0)}]
+
+
+def test_invalid_zone_polygon_is_repaired_with_a_warning(world):
+    bow_tie = shapely.Polygon([(X0 + 500, Y1), (X0 + 1000, Y1 - 1000), (X0 + 1000, Y1), (X0 + 500, Y1 - 1000)])
+    world.zones_path.unlink()
+    write_layer(world.zones_path, "zones", {"zone": ["West", "East"]}, [shapely.box(X0, Y1 - 1000, X0 + 500, Y1),
+                                                                         bow_tie])
+    with pytest.warns(GeometryWarning, match="zones East were repaired"):
+        res = geopress.run(world.config_path, write=False)
+    assert res.info["zones"]["repaired"] == ["East"]
+
+
+def test_implausible_elevations_warn_about_the_unit(tmp_path):
+    # a DEM in feet declared as metres: 30,000 "m" would be 98,425 ft, far above any ground on Earth
+    dem = np.broadcast_to(30000.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
+    us_ft_world(tmp_path)
+    write_raster(tmp_path / "dem.tif", dem, DEM_TRANSFORM)
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG)
+    with pytest.warns(geopress.errors.TerrainWarning, match="check terrain.vertical_units"):
+        geopress.run(tmp_path / "geopress.toml", write=False)
+
+
+@pytest.mark.parametrize(
+    "change, error, key",
+    [
+        (lambda w: w.write_config(BASE_CONFIG.replace('id_field = "account"', 'id_field = "acct"')),
+         InputError, "customers.id_field"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('layer = "parcels"', 'layer = "lots"')),
+         InputError, "customers.layer"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('zone = "East"', 'zone = "Central"')),
+         geopress.ConfigError, "zones.source[1].zone"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('paths = ["dem.tif"]', 'paths = ["missing.tif"]')),
+         InputError, "terrain.paths"),
+        (lambda w: write_raster(w.dem_path, np.zeros((4, 4)), DEM_TRANSFORM, crs=None),
+         InputError, "crs"),
+        (lambda w: write_raster(w.dem_path, np.zeros((4, 4)), Affine.translation(-1e5, 0) @ DEM_TRANSFORM),
+         InputError, "terrain.paths"),
+    ],
+    ids=["missing-field", "missing-layer", "zone-not-in-layer", "missing-raster", "raster-without-crs",
+         "no-customer-on-the-dem"],
+)
+def test_input_problems_raise_errors_naming_the_key(world, change, error, key):
+    change(world)
+    with pytest.raises(error) as info:
+        geopress.run(world.config_path)
+    assert info.value.key == key
+    assert "\n" not in str(info.value)
+    assert not world.out.exists()
+
+
+def test_duplicate_customer_ids(world):
+    world.customers_path.unlink()
+    recs = customer_records([X0 + 10, X0 + 20], [Y1 - 10, Y1 - 10])
+    recs["account"] = ["C1", "C1"]
+    write_layer(world.customers_path, "parcels", recs, [shapely.Point(X0 + 10, Y1 - 10), shapely.Point(X0 + 20, Y1 - 10)])
+    with pytest.raises(InputError, match="duplicate ids: C1") as info:
+        geopress.run(world.config_path)
+    assert info.value.key == "customers.id_field"
+
+
+def test_zone_without_a_source(world):
+    world.write_config(BASE_CONFIG.split('[[zones.source]]\nzone = "East"')[0] + "[output]\npath = 'out/p.gpkg'\n"
+                       "mailing_dir = 'out/m'\n")
+    with pytest.raises(InputError, match="zones East in layer 'zones' have no \\[\\[zones.source\\]\\]"):
+        geopress.run(world.config_path)
