@@ -123,8 +123,9 @@ def test_integer_dem_with_nodata():
     dem[0, 0] = -32768
     got = sample_pixels(dem, [0.5, 2.0, 3.5], [0.5, 2.0, 3.5], nodata=-32768)
     assert np.isnan(got[0])
-    # (2.0, 2.0) is the corner shared by four centres: their mean, 1.5 rows and cols from pixel (0,0)'s centre
-    assert got[1] == pytest.approx((dem[1, 1] + dem[1, 2] + dem[2, 1] + dem[2, 2]) / 4, abs=1e-12)
+    # (2.0, 2.0) is the corner shared by pixels (1, 1), (1, 2), (2, 1), (2, 2): bilinear weights them 1/4
+    # each. Small integers and weights of 1/2 are exact in float64, so the mean comes out exactly.
+    assert got[1] == (dem[1, 1] + dem[1, 2] + dem[2, 1] + dem[2, 2]) / 4
     assert got[2] == float(dem[3, 3])
     assert got.dtype == np.float64
 
