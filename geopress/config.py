@@ -13,6 +13,7 @@ units are checked, and inner code sees one form.
 from __future__ import annotations
 
 import glob
+import json
 import math
 import re
 import tomllib
@@ -187,6 +188,7 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
 
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 
 
 class _Reader:
@@ -271,7 +273,8 @@ class _Reader:
     def no_unknown(self, table: Mapping[str, Any], section: str, allowed: set[str]) -> None:
         for name in table:
             if name not in allowed:
-                key = f"{section}.{name}" if section else name
+                shown = name if _BARE_KEY.fullmatch(name) else json.dumps(name)  # as TOML would quote it
+                key = f"{section}.{shown}" if section else shown
                 raise self.error(key, f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
     def path(self, value: str, key: str) -> Path:
