@@ -331,13 +331,14 @@ def test_unusable_path_is_a_config_error(tmp_path, bad):
 @pytest.mark.parametrize("section, key, value", [
     ("output", "path", "two\nlines.tif"),
     ("terrain", "paths", ["tiles\n*.tif"]),
+    ("criteria", "two\nlines", 1.0),
 ])
-def test_errors_stay_on_one_line_whatever_the_value(tmp_path, section, key, value):
+def test_errors_stay_on_one_line_whatever_the_key_or_value(tmp_path, section, key, value):
     data = tomllib.loads(BASE_CONFIG)
     data[section][key] = value
     with pytest.raises(ConfigError) as info:
         config_from_dict(data, base_dir=tmp_path)
-    assert info.value.key == f"{section}.{key}"
+    assert info.value.key == (f"{section}.{key}" if "\n" not in key else f'{section}."two\\nlines"')
     assert "\n" not in str(info.value)
 
 
