@@ -13,6 +13,7 @@ units are checked, and inner code sees one form.
 from __future__ import annotations
 
 import glob
+import json
 import math
 import re
 import tomllib
@@ -187,6 +188,7 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
 
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 
 
 class _Reader:
@@ -224,7 +226,10 @@ class _Reader:
                 break
             if key_re.match(self.lines[i]):
                 return i + 1
-        return start + 1 if pattern is not None else None
+        if pattern is None:  # a top-level name may be a table: [name], [name.sub] or [[name]]
+            table_re = re.compile(r"^\s*\[\[?\s*" + re.escape(leaf) + r"\s*[\].]")
+            return next((i + 1 for i, line in enumerate(self.lines) if table_re.match(line)), None)
+        return start + 1
 
     def error(self, key: str, message: str) -> ConfigError:
         line = self.line_of(key)
@@ -268,11 +273,16 @@ class _Reader:
     def no_unknown(self, table: Mapping[str, Any], section: str, allowed: set[str]) -> None:
         for name in table:
             if name not in allowed:
-                raise self.error(f"{section}.{name}", f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
+                shown = name if _BARE_KEY.fullmatch(name) else json.dumps(name)  # as TOML would quote it
+                key = f"{section}.{shown}" if section else shown
+                raise self.error(key, f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
-    def path(self, value: str) -> Path:
-        p = Path(value).expanduser()
-        return (p if p.is_absolute() else self.base_dir / p).resolve()
+    def path(self, value: str, key: str) -> Path:
+        try:
+            p = Path(value).expanduser()
+            return (p if p.is_absolute() else self.base_dir / p).resolve()
+        except (RuntimeError, ValueError, OSError) as exc:  # unknown ~user, NUL byte, symlink loop
+            raise self.error(key, f"is not a usable path ({exc}); fix it") from exc
 
     # -- sections ----------------------------------------------------------
     def build(self, data: dict[str, Any]) -> Config:
@@ -300,7 +310,7 @@ class _Reader:
         s = "customers"
         self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
         return CustomersConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
@@ -315,11 +325,11 @@ class _Reader:
             raise self.error("terrain.paths", "must list at least one raster")
         paths: list[Path] = []
         for item in raw:
-            p = self.path(item)
+            p = self.path(item, "terrain.paths")
             if _GLOB_CHARS.search(item):
                 hits = sorted(Path(h) for h in glob.glob(str(p)))
                 if not hits:
-                    raise self.error("terrain.paths", f"the pattern '{item}' matches no file")
+                    raise self.error("terrain.paths", f"the pattern {item!r} matches no file")
                 paths.extend(hits)
             else:
                 paths.append(p)
@@ -354,7 +364,7 @@ class _Reader:
             seen[src.zone] = i
             sources.append(src)
         return ZonesConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "zones.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             sources=tuple(sources),
@@ -409,7 +419,7 @@ class _Reader:
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
         self.no_unknown(t, s, {"path", "mailing_dir"})
-        path = self.path(self.get(t, s, "path", "str"))
+        path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
-            raise self.error("output.path", f"must end in .gpkg, not '{path.name}'")
-        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str")))
+            raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
+        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"))

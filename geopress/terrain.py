@@ -84,9 +84,10 @@ def sample_pixels(
 
     u = c[idx_in] - 0.5
     v = r[idx_in] - 0.5
-    c0 = np.floor(u)
-    r0 = np.floor(v)
-    full = (c0 >= 0) & (c0 <= width - 2) & (r0 >= 0) & (r0 <= height - 2)
+    # On the last centre line (u == width - 1) the 2x2 block is the last two columns with weight 1.
+    c0 = np.minimum(np.floor(u), width - 2)
+    r0 = np.minimum(np.floor(v), height - 2)
+    full = (c0 >= 0) & (u <= width - 1) & (r0 >= 0) & (v <= height - 1)
     sub = np.flatnonzero(full)
     fx = u[sub] - c0[sub]
     fy = v[sub] - r0[sub]

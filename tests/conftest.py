@@ -157,3 +157,29 @@ def world(tmp_path: Path) -> World:
     config_path.write_text(BASE_CONFIG)
     return World(tmp_path, dem_path, customers_path, zones_path, config_path, DEM_TRANSFORM, COEFFS,
                  extra={"xs": np.array(xs), "ys": np.array(ys)})
+
+
+# ---- shared by the pipeline and CLI tests --------------------------------------------------
+
+
+def pixel_centre(col: float, row: float, transform: Affine = DEM_TRANSFORM) -> tuple[float, float]:
+    """Map coordinates of pixel (row, col)'s centre; fractional values give points between centres."""
+    return transform @ (col + 0.5, row + 0.5)
+
+
+@pytest.fixture
+def restore_logging():
+    """The CLI configures the geopress loggers and captures warnings: undo that after the test."""
+    import logging
+
+    saved = {}
+    for name in ("geopress", "py.warnings"):
+        lg = logging.getLogger(name)
+        saved[name] = (lg.handlers[:], lg.level, lg.propagate)
+    yield
+    logging.captureWarnings(False)
+    for name, (handlers, level, propagate) in saved.items():
+        lg = logging.getLogger(name)
+        lg.handlers[:] = handlers
+        lg.setLevel(level)
+        lg.propagate = propagate

@@ -106,7 +106,10 @@ def write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
     """Write each frame as a layer (GeoDataFrames with a spatial index, others as plain tables)."""
     for name, df in layers.items():
         if isinstance(df, gpd.GeoDataFrame):
+            # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
+            points = set(df.geometry.dropna().geom_type) <= {"Point"}
             pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
+                                    geometry_type="Point" if points else None,
                                     layer_options={"SPATIAL_INDEX": "YES"})
         else:
             pyogrio.write_dataframe(df, path, layer=name, driver="GPKG")

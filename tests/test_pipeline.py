@@ -1,0 +1,683 @@
+"""End to end: geopress.run and the geopress command on small worlds written to tmp_path."""
+
+from __future__ import annotations
+
+import csv
+import errno
+import json
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import shapely
+from click.testing import CliRunner
+from affine import Affine
+from pyproj import Transformer
+
+import geopress
+from geopress import pipeline
+from geopress.cli import cli
+from geopress.errors import GeometryWarning, InputError, OutputError
+from geopress.io import write as write_io
+from geopress.pressure import M_PER_FT, M_PER_US_FT
+
+from conftest import (
+    BASE_CONFIG,
+    DEM_SHAPE,
+    DEM_TRANSFORM,
+    ORIGIN,
+    PROJECTED,
+    customer_records,
+    pixel_centre,
+    plane,
+    write_layer,
+    write_raster,
+)
+
+X0, Y1 = ORIGIN
+K = 0.433  # psi per ft, the default
+# Pressures below are 0.433 * (HGL - ground) with HGL and ground exact in binary (halves and integers):
+# the only error is the one rounding of each float64 product and difference, ~1e-13 psi. 1e-9 psi is a
+# safe bound that still catches any wrong foot of head (0.433 psi).
+PSI_TOL = 1e-9
+
+CRAFTED_CONFIG = """\
+[customers]
+path = "customers.gpkg"
+layer = "customers"
+id_field = "account"
+mail_fields = ["owner", "mail_address"]
+floors_field = "floors"
+
+[terrain]
+paths = ["dem.tif"]
+vertical_units = "ft"
+
+[zones]
+path = "zones.gpkg"
+layer = "zones"
+id_field = "zone"
+
+[[zones.source]]
+zone = "Main"
+kind = "tank"
+high_water_ft = 1200.0
+low_water_ft = 1180.0
+
+[[zones.source]]
+zone = "Hill"
+kind = "pump"
+discharge_hgl_ft = 1350.0
+
+[output]
+path = "out/pressure.gpkg"
+mailing_dir = "out/mailing"
+"""
+
+
+def crafted_dem() -> np.ndarray:
+    """Ground in ft: 1001.5 + 3 * col at every pixel centre of row, exact in binary; one nodata pixel."""
+    dem = np.broadcast_to(1001.5 + 3.0 * np.arange(DEM_SHAPE[1]), DEM_SHAPE).copy()
+    dem[50, 40] = -9999.0
+    return dem
+
+
+# account, (col, row) of the point in pixel units (None: no geometry), floors, owner, mail address,
+# expected zone, ground ft, status
+CRAFTED = [
+    ("A-ok", (20, 10), 1, "Owner 1", "1 Hill Rd", "Main", 1061.5, "ok"),
+    ("A-tall-ok", (20, 12), 2, "Owner 2", "2 Hill Rd", "Main", 1061.5, "ok"),
+    ("A-high", (0, 10), 1, "Owner H", "9 Low St", "Main", 1001.5, "high"),
+    ("A-high-2", (1, 30), 1, "Owner H", "9 Low St", "Main", 1004.5, "high"),
+    ("A-low", (33, 10), 1, "=cmd", "-12 Rear", "Main", 1100.5, "low"),
+    ("A-above", (60, 10), 1, "Owner 5", "5 Top Ln", "Main", 1181.5, "above_hgl"),
+    # x between the centres of cols 59 and 60: 1178.5 + 0.5 * 3 = 1180.0, exactly the low HGL
+    ("A-at-hgl", (59.5, 10), 1, "Owner 6", "6 Top Ln", "Main", 1180.0, "above_hgl"),
+    ("A-upper", (25, 10), 4, "Owner 7", "7 Tower Pl", "Main", 1076.5, "low_upper_floors"),
+    # on the shared Main/Hill edge x = X0 + 700: Main is listed first; 1208.5 + 0.5 * 3 = 1210.0
+    ("A-edge", (69.5, 10), 1, "Owner 8", "8 Ridge Rd", "Main", 1210.0, "above_hgl"),
+    ("A-hill", (80, 10), 3, "Owner 9", "9 Ridge Rd", "Hill", 1241.5, "ok"),
+    ("A-unzoned", (10, 90), 1, "Owner 10", "10 Far Rd", None, 1031.5, "unzoned"),
+    ("A-nodata", (40, 50), 1, "Owner 11", "11 Gap Rd", "Main", np.nan, "no_terrain"),
+    ("A-off-dem", (110, 10), 1, "Owner 12", "12 East Rd", "Hill", np.nan, "no_terrain"),
+    ("A-nowhere", None, 1, "Owner 13", "13 Lost Rd", None, np.nan, "no_geometry"),
+]
+HGL = {"Main": (1200.0, 1180.0), "Hill": (1350.0, 1350.0)}
+
+
+def crafted_point(colrow):
+    if colrow is None:
+        return None
+    return shapely.Point(*pixel_centre(*colrow))
+
+
+@pytest.fixture
+def crafted(tmp_path: Path) -> Path:
+    """A world where every status occurs, with ground exact at each customer. Returns the config path."""
+    write_raster(tmp_path / "dem.tif", crafted_dem(), DEM_TRANSFORM)
+    main = shapely.box(X0, Y1 - 800, X0 + 700, Y1)
+    hill = shapely.box(X0 + 700, Y1 - 800, X0 + 1200, Y1)  # runs 200 m past the DEM's east edge
+    write_layer(tmp_path / "zones.gpkg", "zones", {"zone": ["Hill", "Main"]}, [hill, main])
+    records = {
+        "account": [c[0] for c in CRAFTED],
+        "floors": [c[2] for c in CRAFTED],
+        "owner": [c[3] for c in CRAFTED],
+        "mail_address": [c[4] for c in CRAFTED],
+    }
+    write_layer(tmp_path / "customers.gpkg", "customers", records, [crafted_point(c[1]) for c in CRAFTED])
+    path = tmp_path / "geopress.toml"
+    path.write_text(CRAFTED_CONFIG)
+    return path
+
+
+def run_crafted(config_path, **kwargs):
+    with pytest.warns(GeometryWarning, match="1 customers have no geometry"):
+        return geopress.run(config_path, **kwargs)
+
+
+def by_account(frame: pd.DataFrame) -> pd.DataFrame:
+    return frame.set_index("account")
+
+
+def output_files(root: Path) -> dict[str, bytes]:
+    out = root / "out"
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(out.rglob("*")) if p.is_file()}
+
+
+# ---------------------------------------------------------------- statuses and pressures
+
+
+def test_every_status_with_exact_pressures(crafted):
+    res = run_crafted(crafted)
+    assert res.counts == {"no_geometry": 1, "no_terrain": 2, "unzoned": 1, "above_hgl": 3, "low": 1, "high": 2,
+                          "low_upper_floors": 1, "ok": 3}
+    cust = by_account(pyogrio.read_dataframe(crafted.parent / "out/pressure.gpkg", layer="customers"))
+    assert len(cust) == len(CRAFTED)
+    for account, _, floors, _, _, zone, ground, status in CRAFTED:
+        row = cust.loc[account]
+        assert row["status"] == status, account
+        if np.isnan(ground):
+            assert np.isnan(row["ground_ft"]) and np.isnan(row["psi_min"]) and np.isnan(row["psi_max"])
+        else:
+            assert row["ground_ft"] == ground, account  # pixel centres and midpoints of a plane: exact
+        if zone is None:
+            assert row["zone"] is None or pd.isna(row["zone"])
+            assert np.isnan(row["hgl_high_ft"])
+            continue
+        assert row["zone"] == zone
+        high, low = HGL[zone]
+        assert (row["hgl_high_ft"], row["hgl_low_ft"]) == (high, low)
+        if np.isnan(ground):
+            continue
+        assert row["psi_max"] == pytest.approx(K * (high - ground), abs=PSI_TOL)
+        assert row["psi_min"] == pytest.approx(K * (low - ground), abs=PSI_TOL)
+        if floors > 1:
+            assert row["psi_top"] == pytest.approx(K * (low - ground - (floors - 1) * 10.0), abs=PSI_TOL)
+        else:
+            assert np.isnan(row["psi_top"])
+
+
+def test_hand_checked_values_and_reasons(crafted):
+    cust = by_account(run_crafted(crafted, write=False).customers)
+    # 0.433 * (1200 - 1001.5) = 85.9505 psi at ground with the tank full
+    assert cust.loc["A-high", "psi_max"] == pytest.approx(85.9505, abs=PSI_TOL)
+    assert "86.0 psi exceeds 80 psi" in cust.loc["A-high", "reason"]
+    # 0.433 * (1180 - 1100.5) = 34.4235 psi with the tank low
+    assert cust.loc["A-low", "psi_min"] == pytest.approx(34.4235, abs=PSI_TOL)
+    assert "34.4 psi is below 35 psi" in cust.loc["A-low", "reason"]
+    # 4 stories: top floor 30 ft up, 0.433 * (1180 - 1106.5) = 31.8255 psi
+    assert cust.loc["A-upper", "psi_top"] == pytest.approx(31.8255, abs=PSI_TOL)
+    assert "top floor of 4 stories down to 31.8 psi" in cust.loc["A-upper", "reason"]
+    # ground exactly at the low HGL: zero pressure is no gravity service
+    assert cust.loc["A-at-hgl", "psi_min"] == 0.0
+    assert "1180.0 ft is at or above the low HGL of 1180.0 ft" in cust.loc["A-at-hgl", "reason"]
+    # pump zone: 0.433 * (1350 - 1241.5) = 46.9805 psi, top of 3 stories 0.433 * 88.5 = 38.3205
+    assert cust.loc["A-hill", "psi_min"] == pytest.approx(46.9805, abs=PSI_TOL)
+    assert cust.loc["A-hill", "psi_top"] == pytest.approx(38.3205, abs=PSI_TOL)
+
+
+def test_write_false_writes_nothing(crafted):
+    res = run_crafted(crafted, write=False)
+    assert res.outputs == []
+    assert not (crafted.parent / "out").exists()
+
+
+def test_boundary_point_follows_source_order(crafted):
+    text = crafted.read_text()
+    main_src = text[text.index('[[zones.source]]\nzone = "Main"'):text.index('[[zones.source]]\nzone = "Hill"')]
+    swapped = text.replace(main_src, "").replace("[output]", main_src + "[output]")
+    crafted.write_text(swapped)
+    cust = by_account(run_crafted(crafted, write=False).customers)
+    # Hill is listed first now: the edge point takes its pump HGL, 0.433 * (1350 - 1210) = 60.62 psi
+    assert cust.loc["A-edge", "zone"] == "Hill"
+    assert cust.loc["A-edge", "psi_min"] == pytest.approx(60.62, abs=PSI_TOL)
+    assert cust.loc["A-edge", "status"] == "ok"
+    assert cust.loc["A-ok", "zone"] == "Main"  # interior points do not move
+
+
+# ---------------------------------------------------------------- CRS and units
+
+
+def test_geographic_customers_against_a_projected_dem(world):
+    # customers stored in EPSG:4326, the DEM and zones in UTM 31N
+    xs, ys = world.extra["xs"], world.extra["ys"] + np.linspace(-300, 300, len(world.extra["xs"]))
+    to_geo = Transformer.from_crs(PROJECTED, "EPSG:4326", always_xy=True)
+    lon, lat = to_geo.transform(xs, ys)
+    recs = customer_records(list(lon), list(lat))
+    world.customers_path.unlink()
+    write_layer(world.customers_path, "parcels", recs, list(shapely.points(lon, lat)), crs="EPSG:4326")
+    res = geopress.run(world.config_path, write=False)
+    # the points the run samples at: the stored lon/lat projected back
+    px, py = Transformer.from_crs("EPSG:4326", PROJECTED, always_xy=True).transform(lon, lat)
+    # Plane ground ~ 1000-1300 ft: bilinear round-off ~1e-12 ft; the back-projection is the same pyproj
+    # operation the run uses, so only float noise separates them. 1e-6 ft (0.3 um) bounds that, while a
+    # wrong axis order or CRS would be off by metres to kilometres.
+    np.testing.assert_allclose(res.customers["ground_ft"], world.ground_m(px, py) / M_PER_FT, rtol=0, atol=1e-6)
+    # and the projected points are the original ones: PROJ's UTM round trip is good to nanometres, 1e-6 m bounds it
+    np.testing.assert_allclose(px, xs, rtol=0, atol=1e-6)
+    assert res.customers.crs.to_epsg() == 4326
+    assert set(res.customers["zone"]) == {"West", "East"}
+    assert res.counts["unzoned"] == 0
+
+
+def us_ft_world(tmp_path, units=None):
+    """The base world with a DEM whose values are integers in US survey feet."""
+    dem = np.broadcast_to(3000.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
+    write_raster(tmp_path / "dem.tif", dem, DEM_TRANSFORM, units=units)
+    cols = np.arange(5, 100, 10)
+    xs, ys = pixel_centre(cols, np.full(cols.size, 40))
+    write_layer(tmp_path / "customers.gpkg", "parcels", customer_records(list(xs), list(ys)),
+                list(shapely.points(xs, ys)))
+    write_layer(tmp_path / "zones.gpkg", "zones", {"zone": ["West", "East"]},
+                [shapely.box(X0, Y1 - 1000, X0 + 500, Y1), shapely.box(X0 + 500, Y1 - 1000, X0 + 1000, Y1)])
+    return dem[40, cols].astype(np.float64)
+
+
+# ground_ft = value * (1200/3937) / 0.3048 is two exactly defined factors; the code multiplies by their
+# ratio, computed once. The two orders differ by at most ~2 float64 roundings (2 * 2**-53 relative), so
+# rtol 4e-16; the survey foot's 2 ppm (0.006 ft at 3000 ft) is 10 orders of magnitude larger.
+US_FT_RTOL = 4e-16
+
+
+def test_dem_in_us_survey_feet_from_the_config(tmp_path):
+    values = us_ft_world(tmp_path)
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG.replace('vertical_units = "m"', 'vertical_units = "us_ft"'))
+    res = geopress.run(tmp_path / "geopress.toml", write=False)
+    ground = res.customers["ground_ft"].to_numpy()
+    np.testing.assert_allclose(ground, values * 1200 / 3937 / 0.3048, rtol=US_FT_RTOL, atol=0)
+    assert (ground - values > 0.005).all()  # survey feet are longer: the conversion really happened
+    assert res.info["terrain"][0]["vertical_unit"] == "us_ft"
+
+
+def test_dem_stating_us_survey_feet_in_its_band_unit(tmp_path):
+    values = us_ft_world(tmp_path, units="US survey foot")
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG.replace('vertical_units = "m"\n', ""))
+    res = geopress.run(tmp_path / "geopress.toml", write=False)
+    np.testing.assert_allclose(res.customers["ground_ft"], values * M_PER_US_FT / M_PER_FT, rtol=US_FT_RTOL, atol=0)
+    assert res.info["terrain"][0]["vertical_unit"] == "us_ft"
+
+
+def test_stated_unit_contradicting_the_config_is_an_input_error(tmp_path):
+    us_ft_world(tmp_path, units="metre")
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG.replace('vertical_units = "m"', 'vertical_units = "us_ft"'))
+    with pytest.raises(InputError, match='raster states "m"') as info:
+        geopress.run(tmp_path / "geopress.toml", write=False)
+    assert info.value.key == "terrain.vertical_units"
+    assert info.value.path == str(tmp_path / "dem.tif")
+
+
+def test_dem_without_a_unit_needs_the_config(tmp_path):
+    us_ft_world(tmp_path)
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG.replace('vertical_units = "m"\n', ""))
+    with pytest.raises(InputError, match="terrain.vertical_units"):
+        geopress.run(tmp_path / "geopress.toml", write=False)
+
+
+def test_first_listed_raster_wins_and_gaps_fall_through(world):
+    # "near.tif" covers the western 60 columns at 100 m, with a nodata hole; dem.tif (plane) covers all.
+    # Points: inside near, east of it, in its hole, and 0.1 px inside its east edge (near's own edge fallback).
+    near = np.full((100, 60), 100.0)
+    near[49:51, 9:11] = -9999.0
+    write_raster(world.root / "near.tif", near, DEM_TRANSFORM)
+    pts = [pixel_centre(30, 30), pixel_centre(80, 30), pixel_centre(10, 50), pixel_centre(59.4, 30)]
+    write_layer(world.root / "few.gpkg", "parcels", customer_records([p[0] for p in pts], [p[1] for p in pts]),
+                [shapely.Point(p) for p in pts])
+    text = BASE_CONFIG.replace('path = "customers.gpkg"', 'path = "few.gpkg"')
+    world.write_config(text.replace('paths = ["dem.tif"]', 'paths = ["near.tif", "dem.tif"]'))
+    ground_m = geopress.run(world.config_path, write=False).customers["ground_ft"].to_numpy() * M_PER_FT
+    x = np.array([p[0] for p in pts])
+    y = np.array([p[1] for p in pts])
+    plane_m = world.ground_m(x, y)
+    # ft -> m and back costs ~1e-13 m; 1e-9 m bounds it
+    np.testing.assert_allclose(ground_m, [100.0, plane_m[1], plane_m[2], 100.0], rtol=0, atol=1e-9)
+    world.write_config(text.replace('paths = ["dem.tif"]', 'paths = ["dem.tif", "near.tif"]'))
+    ground_m = geopress.run(world.config_path, write=False).customers["ground_ft"].to_numpy() * M_PER_FT
+    np.testing.assert_allclose(ground_m, plane_m, rtol=0, atol=1e-9)
+
+
+def test_block_by_block_reading_matches_one_window(world):
+    # A tiled DEM (16 px blocks) and a memory budget of 1 KiB force one window per block, each with a
+    # one-pixel halo; customers sit on and around block edges, where a missing halo would show.
+    a, b, c = world.coeffs
+    write_raster(world.dem_path, plane(a, b, c, DEM_SHAPE, DEM_TRANSFORM), DEM_TRANSFORM, tiled=True)
+    cols = np.array([15.5, 16.0, 16.5, 31.9, 32.0, 47.7, 63.99, 95.0, 99.6])
+    rows = np.array([15.5, 16.0, 15.9, 32.1, 47.5, 48.0, 64.0, 80.2, 99.6])
+    xs, ys = pixel_centre(cols - 0.5, rows - 0.5)
+    world.customers_path.unlink()
+    write_layer(world.customers_path, "parcels", customer_records(list(xs), list(ys)), list(shapely.points(xs, ys)))
+    whole = geopress.run(world.config_path, write=False)
+    world.write_config(BASE_CONFIG.replace('method = "bilinear"', 'method = "bilinear"\nmemory_mb = 0.001'))
+    blocks = geopress.run(world.config_path, write=False)
+    assert whole.info["terrain"][0]["windows_read"] == 1
+    assert blocks.info["terrain"][0]["windows_read"] > 1
+    np.testing.assert_array_equal(blocks.customers["ground_ft"], whole.customers["ground_ft"])
+    inset = (cols >= 0.5) & (cols <= 99.5) & (rows >= 0.5) & (rows <= 99.5)
+    # plane exact inside the inset (bilinear round-off ~1e-12 ft, see test_terrain); 1e-9 ft bound
+    np.testing.assert_allclose(whole.customers["ground_ft"][inset], world.ground_m(xs, ys)[inset] / M_PER_FT,
+                               rtol=0, atol=1e-9)
+
+
+def test_polygon_customers_use_point_on_surface(world):
+    # an L-shaped parcel whose centroid lies outside it, and a square
+    ell = shapely.Polygon([(X0 + 100, Y1 - 100), (X0 + 300, Y1 - 100), (X0 + 300, Y1 - 140), (X0 + 140, Y1 - 140),
+                           (X0 + 140, Y1 - 300), (X0 + 100, Y1 - 300)])
+    square = shapely.box(X0 + 700, Y1 - 600, X0 + 740, Y1 - 560)
+    assert not ell.contains(ell.centroid)
+    world.customers_path.unlink()
+    write_layer(world.customers_path, "parcels", customer_records([0, 0], [0, 0]), [ell, square])
+    res = geopress.run(world.config_path)
+    expected = shapely.point_on_surface([ell, square])
+    got = res.customers.geometry.to_numpy()
+    assert shapely.equals(got, expected).all()
+    assert ell.contains(got[0])
+    ex, ey = shapely.get_x(expected), shapely.get_y(expected)
+    # plane, bilinear: round-off only (~1e-12 ft, see test_terrain); 1e-9 ft bound
+    np.testing.assert_allclose(res.customers["ground_ft"], world.ground_m(ex, ey) / M_PER_FT, rtol=0, atol=1e-9)
+    assert res.info["customers"]["from_polygons"] == 2
+    assert pyogrio.read_info(world.out, layer="customers")["geometry_type"] == "Point"
+
+
+# ---------------------------------------------------------------- outputs
+
+
+def read_csv(path: Path) -> list[dict[str, str]]:
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
+    run_crafted(crafted)
+    mailing = crafted.parent / "out" / "mailing"
+    assert sorted(p.name for p in mailing.iterdir()) == ["above_hgl.csv", "high_pressure.csv", "low_pressure.csv",
+                                                         "upper_floors.csv"]
+    high = read_csv(mailing / "high_pressure.csv")
+    # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
+    assert high == [{"owner": "Owner H", "mail_address": "9 Low St", "accounts": "A-high; A-high-2",
+                     "customer_count": "2", "zones": "Main", "worst_psi": "86.0"}]
+    low = read_csv(mailing / "low_pressure.csv")
+    assert [(r["owner"], r["mail_address"], r["accounts"]) for r in low] == [("'=cmd", "'-12 Rear", "A-low")]
+    above = read_csv(mailing / "above_hgl.csv")
+    # most severe first: 1210 ft (-12.99 psi), 1181.5 ft (-0.65), 1180 ft (0.0)
+    assert [r["accounts"] for r in above] == ["A-edge", "A-above", "A-at-hgl"]
+    assert [r["accounts"] for r in read_csv(mailing / "upper_floors.csv")] == ["A-upper"]
+    # the GeoPackage keeps the owner's text as it is
+    gpkg_low = pyogrio.read_dataframe(crafted.parent / "out/pressure.gpkg", layer="low_pressure")
+    assert gpkg_low["owner"].tolist() == ["=cmd"]
+
+
+def test_flagged_layers_and_zone_summary(crafted):
+    run_crafted(crafted)
+    out = crafted.parent / "out/pressure.gpkg"
+    names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
+    assert names == ["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors", "zone_summary"]
+    for name in names[:-1]:
+        assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
+    flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
+               for name in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")}
+    assert flagged == {"high_pressure": ["A-high", "A-high-2"], "low_pressure": ["A-low"],
+                       "above_hgl": ["A-above", "A-at-hgl", "A-edge"], "upper_floors": ["A-upper"]}
+    summary = pyogrio.read_dataframe(out, layer="zone_summary", read_geometry=False).set_index("zone")
+    assert summary.loc["Main", "source_kind"] == "tank"
+    assert (summary.loc["Main", "hgl_high_ft"], summary.loc["Main", "hgl_low_ft"]) == (1200.0, 1180.0)
+    assert summary.loc["Main", "customers"] == 10
+    assert summary.loc["Main", ["n_ok", "n_high", "n_low", "n_above_hgl", "n_low_upper_floors", "n_no_terrain"]
+                       ].tolist() == [2, 2, 1, 3, 1, 1]
+    assert summary.loc["Main", "ground_ft_min"] == 1001.5 and summary.loc["Main", "ground_ft_max"] == 1210.0
+    assert summary.loc["Main", "psi_max_max"] == round(K * (1200 - 1001.5), 2)
+    assert summary.loc["Hill", "source_kind"] == "pump"
+    assert summary.loc["Hill", "customers"] == 2 and summary.loc["Hill", "n_no_terrain"] == 1
+
+
+def test_an_empty_flagged_layer_is_still_a_point_layer(world):
+    geopress.run(world.config_path)
+    assert world.read("upper_floors").empty  # nobody in the base world has upper floors
+    for name in ("customers", "upper_floors"):
+        assert pyogrio.read_info(world.out, layer=name)["geometry_type"] == "Point"
+
+
+def test_customers_layer_has_a_spatial_index(crafted):
+    run_crafted(crafted)
+    with sqlite3.connect(crafted.parent / "out/pressure.gpkg") as con:
+        tables = {r[0] for r in con.execute("select name from sqlite_master where type = 'table'")}
+        assert "rtree_customers_geom" in tables
+        # one entry per customer with a geometry
+        assert con.execute("select count(*) from rtree_customers_geom").fetchone()[0] == len(CRAFTED) - 1
+
+
+def test_run_json_records_the_run(crafted):
+    res = run_crafted(crafted)
+    root = crafted.parent
+    info = json.loads((root / "out/run.json").read_text())
+    assert info["geopress_version"] == geopress.__version__
+    assert info["config_file"] == str(crafted)
+    assert info["counts"] == res.counts
+    assert info["customers"] == {"total": len(CRAFTED), "layer": "customers", "from_polygons": 0, "no_geometry": 1}
+    assert [i["path"] for i in info["inputs"]] == [str(root / "customers.gpkg"), str(root / "dem.tif"),
+                                                   str(root / "zones.gpkg")]
+    assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
+    assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
+        str(root / "out/mailing" / f"{n}.csv") for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")]
+    assert info["config"]["zones"]["source"][0] == {"zone": "Main", "high_water_ft": 1200.0, "low_water_ft": 1180.0,
+                                                    "kind": "tank"}
+    assert info["terrain"][0]["vertical_unit"] == "ft" and info["terrain"][0]["customers_sampled"] == 11
+    assert info["started"] <= info["finished"]
+    assert "sample terrain" in info["timings_s"]
+    assert set(info["versions"]) == {"gdal", "proj", "pyogrio"}
+    assert sorted(res.outputs) == sorted(Path(p) for p in info["outputs"] + [str(root / "out/run.json")])
+
+
+def disk_full(*args, **kwargs):
+    raise OSError(errno.ENOSPC, "No space left on device")
+
+
+@pytest.mark.parametrize("failing", ["write_csv", "write_json"])
+def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypatch, failing):
+    root = crafted.parent
+    run_crafted(crafted)
+    before = output_files(root)
+    assert set(before) == {"out/pressure.gpkg", "out/run.json", "out/mailing/high_pressure.csv",
+                           "out/mailing/low_pressure.csv", "out/mailing/above_hgl.csv", "out/mailing/upper_floors.csv"}
+    # a second run that would change every output, and runs out of space part way
+    crafted.write_text(crafted.read_text().replace("high_water_ft = 1200.0", "high_water_ft = 1190.0"))
+
+    monkeypatch.setattr(write_io, failing, disk_full)
+    with pytest.raises(OutputError, match="No space left on device"):
+        run_crafted(crafted)
+    assert output_files(root) == before
+    leftovers = [p for p in root.rglob("*") if write_io.TMP_MARK in p.name]
+    assert leftovers == []
+
+
+def test_temp_files_of_a_killed_run_are_removed(crafted):
+    stale = crafted.parent / "out" / f".pressure.gpkg{write_io.TMP_MARK}abc.gpkg"
+    stale.parent.mkdir()
+    stale.write_bytes(b"half a file")
+    run_crafted(crafted)
+    assert not stale.exists()
+
+
+def test_input_error_leaves_previous_outputs(crafted):
+    root = crafted.parent
+    run_crafted(crafted)
+    before = output_files(root)
+    (root / "zones.gpkg").unlink()
+    with pytest.raises(InputError, match="file not found"):
+        run_crafted(crafted)
+    assert output_files(root) == before
+
+
+# ---------------------------------------------------------------- command line
+
+
+@pytest.fixture
+def invoke(restore_logging):
+    runner = CliRunner()
+
+    def _invoke(*args):
+        return runner.invoke(cli, list(map(str, args)), obj={})
+
+    return _invoke
+
+
+def one_error_line(stderr: str) -> str:
+    errors = [line for line in stderr.splitlines() if line.startswith("error:")]
+    assert len(errors) == 1, stderr
+    assert "Traceback" not in stderr
+    return errors[0]
+
+
+def test_cli_run_exit_0_with_summary(crafted, invoke):
+    res = invoke("run", crafted)
+    assert res.exit_code == 0, res.stderr
+    assert res.stdout.startswith(f"{len(CRAFTED)} customers: no_geometry 1, no_terrain 2, unzoned 1, above_hgl 3, "
+                                 "low 1, high 2, low_upper_floors 1, ok 3 (")
+    assert res.stdout.rstrip().endswith(f"-> {crafted.parent / 'out/pressure.gpkg'}")
+    # the no-geometry warning reaches the user as one line
+    assert any(line.startswith("warning:") and "no geometry" in line for line in res.stderr.splitlines())
+    assert (crafted.parent / "out/run.json").exists()
+
+
+def test_cli_check_prints_and_writes_nothing(crafted, invoke):
+    before = sorted(p.name for p in crafted.parent.iterdir())
+    res = invoke("check", crafted)
+    assert res.exit_code == 0, res.stderr
+    lines = res.stdout.splitlines()
+    assert lines[0].startswith(f"customers: {len(CRAFTED)} from ")
+    assert "Main: tank, HGL 1180.0 to 1200.0 ft" in res.stdout
+    assert "Hill: pump, HGL 1350.0 to 1350.0 ft" in res.stdout
+    assert "vertical unit ft" in res.stdout
+    assert lines[-1] == "check passed"
+    assert sorted(p.name for p in crafted.parent.iterdir()) == before
+
+
+def test_cli_bad_config_exit_2_one_line_naming_the_key(crafted, invoke):
+    crafted.write_text(crafted.read_text().replace("low_water_ft = 1180.0", "low_water_ft = 1280.0"))
+    res = invoke("run", crafted)
+    assert res.exit_code == 2
+    line = one_error_line(res.stderr)
+    assert line.startswith(f"error: {crafted}: zones.source[0].low_water_ft (line 21): ")
+    assert res.stdout == ""
+
+
+def test_cli_missing_customers_file_exit_2(crafted, invoke):
+    (crafted.parent / "customers.gpkg").unlink()
+    res = invoke("run", crafted)
+    assert res.exit_code == 2
+    line = one_error_line(res.stderr)
+    assert str(crafted.parent / "customers.gpkg") in line and "customers.path" in line
+
+
+def test_cli_missing_config_file_exit_2(tmp_path, invoke):
+    res = invoke("check", tmp_path / "nope.toml")
+    assert res.exit_code == 2
+    assert "config file not found" in one_error_line(res.stderr)
+
+
+def test_cli_full_disk_exit_2_and_outputs_kept(crafted, invoke, monkeypatch):
+    assert invoke("run", crafted).exit_code == 0
+    before = output_files(crafted.parent)
+    monkeypatch.setattr(write_io, "write_csv", disk_full)
+    res = invoke("run", crafted)
+    assert res.exit_code == 2
+    assert "cannot write" in one_error_line(res.stderr)
+    assert output_files(crafted.parent) == before
+
+
+def test_cli_unexpected_failure_exit_1(crafted, invoke, monkeypatch):
+    def broken(*args, **kwargs):
+        raise RuntimeError("simulated bug")
+
+    monkeypatch.setattr(pipeline, "compute", broken)
+    res = invoke("run", crafted)
+    assert res.exit_code == 1
+    line = one_error_line(res.stderr)
+    assert "unexpected failure (RuntimeError: simulated bug)" in line and "--debug" in line
+
+
+def test_cli_debug_shows_a_traceback(crafted):
+    crafted.write_text(crafted.read_text().replace("[terrain]", "[terrain]\nbogus = 1"))
+    code = "import sys; from geopress.cli import main; main(sys.argv[1:])"
+    repo = Path(__file__).resolve().parents[1]
+    proc = subprocess.run([sys.executable, "-c", code, "--debug", "run", str(crafted)], capture_output=True, text=True,
+                          env={"PYTHONPATH": str(repo), "PATH": "/usr/bin:/bin"}, timeout=60)
+    assert proc.returncode == 1
+    assert "Traceback (most recent call last)" in proc.stderr
+    assert "geopress.errors.ConfigError" in proc.stderr and "terrain.bogus" in proc.stderr
+
+
+def test_cli_demo(tmp_path, invoke):
+    repo = Path(__file__).resolve().parents[1]
+    if not (repo / "data_demo" / "geopress.toml").exists():
+        pytest.skip("data_demo/ is not in this checkout yet (generated separately)")
+    res = invoke("demo", "--out", tmp_path / "demo")
+    assert res.exit_code == 0, res.stderr
+    assert (tmp_path / "demo" / "pressure.gpkg").exists()
+    assert "customers:" in res.stdout
+
+
+# ---------------------------------------------------------------- input problems
+
+
+def test_overlapping_zones_warn_and_follow_source_order(world):
+    # East reaches 100 m into West: customers there go to West, listed first in the config
+    world.zones_path.unlink()
+    write_layer(world.zones_path, "zones", {"zone": ["West", "East"]},
+                [shapely.box(X0, Y1 - 1000, X0 + 500, Y1), shapely.box(X0 + 400, Y1 - 1000, X0 + 1000, Y1)])
+    with pytest.warns(geopress.errors.ZoneOverlapWarning, match="'East' and 'West' overlap"):
+        res = geopress.run(world.config_path, write=False)
+    xs = world.extra["xs"]
+    in_overlap = (xs > X0 + 400) & (xs < X0 + 500)
+    assert in_overlap.any()
+    assert (res.customers["zone"][in_overlap] == "West").all()
+    # 1000 m x 100 m of overlap: box intersections are exact but for round-off (pytest.approx's 1e-6 relative)
+    assert res.info["zones"]["overlaps"] == [{"zones": ["East", "West"], "area": pytest.approx(100_000.0)}]
+
+
+def test_invalid_zone_polygon_is_repaired_with_a_warning(world):
+    bow_tie = shapely.Polygon([(X0 + 500, Y1), (X0 + 1000, Y1 - 1000), (X0 + 1000, Y1), (X0 + 500, Y1 - 1000)])
+    world.zones_path.unlink()
+    write_layer(world.zones_path, "zones", {"zone": ["West", "East"]}, [shapely.box(X0, Y1 - 1000, X0 + 500, Y1),
+                                                                         bow_tie])
+    with pytest.warns(GeometryWarning, match="zones East were repaired"):
+        res = geopress.run(world.config_path, write=False)
+    assert res.info["zones"]["repaired"] == ["East"]
+
+
+def test_implausible_elevations_warn_about_the_unit(tmp_path):
+    # a DEM in feet declared as metres: 30,000 "m" would be 98,425 ft, far above any ground on Earth
+    dem = np.broadcast_to(30000.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
+    us_ft_world(tmp_path)
+    write_raster(tmp_path / "dem.tif", dem, DEM_TRANSFORM)
+    (tmp_path / "geopress.toml").write_text(BASE_CONFIG)
+    with pytest.warns(geopress.errors.TerrainWarning, match="check terrain.vertical_units"):
+        geopress.run(tmp_path / "geopress.toml", write=False)
+
+
+@pytest.mark.parametrize(
+    "change, error, key",
+    [
+        (lambda w: w.write_config(BASE_CONFIG.replace('id_field = "account"', 'id_field = "acct"')),
+         InputError, "customers.id_field"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('layer = "parcels"', 'layer = "lots"')),
+         InputError, "customers.layer"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('zone = "East"', 'zone = "Central"')),
+         geopress.ConfigError, "zones.source[1].zone"),
+        (lambda w: w.write_config(BASE_CONFIG.replace('paths = ["dem.tif"]', 'paths = ["missing.tif"]')),
+         InputError, "terrain.paths"),
+        (lambda w: write_raster(w.dem_path, np.zeros((4, 4)), DEM_TRANSFORM, crs=None),
+         InputError, "crs"),
+        (lambda w: write_raster(w.dem_path, np.zeros((4, 4)), Affine.translation(-1e5, 0) @ DEM_TRANSFORM),
+         InputError, "terrain.paths"),
+    ],
+    ids=["missing-field", "missing-layer", "zone-not-in-layer", "missing-raster", "raster-without-crs",
+         "no-customer-on-the-dem"],
+)
+def test_input_problems_raise_errors_naming_the_key(world, change, error, key):
+    change(world)
+    with pytest.raises(error) as info:
+        geopress.run(world.config_path)
+    assert info.value.key == key
+    assert "\n" not in str(info.value)
+    assert not world.out.exists()
+
+
+def test_duplicate_customer_ids(world):
+    world.customers_path.unlink()
+    recs = customer_records([X0 + 10, X0 + 20], [Y1 - 10, Y1 - 10])
+    recs["account"] = ["C1", "C1"]
+    write_layer(world.customers_path, "parcels", recs, [shapely.Point(X0 + 10, Y1 - 10), shapely.Point(X0 + 20, Y1 - 10)])
+    with pytest.raises(InputError, match="duplicate ids: C1") as info:
+        geopress.run(world.config_path)
+    assert info.value.key == "customers.id_field"
+
+
+def test_zone_without_a_source(world):
+    world.write_config(BASE_CONFIG.split('[[zones.source]]\nzone = "East"')[0] + "[output]\npath = 'out/p.gpkg'\n"
+                       "mailing_dir = 'out/m'\n")
+    with pytest.raises(InputError, match="zones East in layer 'zones' have no \\[\\[zones.source\\]\\]"):
+        geopress.run(world.config_path)
