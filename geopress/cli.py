@@ -19,7 +19,7 @@ import click
 from . import pipeline
 from ._version import __version__
 from .config import load_config
-from .errors import GeopressError
+from .errors import GeopressError, InputError
 
 log = logging.getLogger("geopress")
 
@@ -130,8 +130,14 @@ def check_cmd(ctx: click.Context, config: Path) -> None:
 
 
 def demo_config_path() -> Path:
-    """The bundled demo config."""
-    return Path(str(resources.files("geopress.data_demo").joinpath("geopress.toml")))
+    """The bundled demo config: installed as geopress.data_demo, or data_demo/ of a source checkout."""
+    try:
+        path = Path(str(resources.files("geopress.data_demo").joinpath("geopress.toml")))
+    except ModuleNotFoundError:  # running from a source tree without installing
+        path = Path(__file__).resolve().parent.parent / "data_demo" / "geopress.toml"
+    if not path.is_file():
+        raise InputError("the demo data is not installed; reinstall geopress (pip install .)", path=path)
+    return path
 
 
 @cli.command("demo")
