@@ -87,8 +87,8 @@ def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Cri
         if pmax.size:
             ax.hist(pmax, bins=bins, color=OKABE_ITO["vermillion"], histtype="step", linewidth=1.8,
                     label="pressure at high HGL (psi_max), outline")
-    ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:g} {units.pressure}")
-    ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:g} {units.pressure}")
+    ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:.4g} {units.pressure}")
+    ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:.4g} {units.pressure}")
     ax.set_xlabel(f"static pressure at ground, {units.pressure}")
     ax.set_ylabel("customers")
     ax.set_title(f"{zone}: static pressure")
@@ -269,10 +269,10 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
     k_display = (f"{float(units.pressure_from_psi(per_ft)) / M_PER_FT:.4g} kPa per m" if units.system == "si"
                  else f"{per_ft:g} psi per ft")
     crit = {
-        "minimum static pressure": f"{float(units.pressure_from_psi(criteria.min_static_psi)):g} {units.pressure}",
-        "maximum static pressure": f"{float(units.pressure_from_psi(criteria.max_static_psi)):g} {units.pressure}",
+        "minimum static pressure": f"{float(units.pressure_from_psi(criteria.min_static_psi)):.4g} {units.pressure}",
+        "maximum static pressure": f"{float(units.pressure_from_psi(criteria.max_static_psi)):.4g} {units.pressure}",
         "pressure per height of water": k_display,
-        "story height": f"{float(units.length_from_ft(criteria.floor_height_ft)):g} {units.length}",
+        "story height": f"{float(units.length_from_ft(criteria.floor_height_ft)):.4g} {units.length}",
     }
     return env.get_template("report.html.j2").render(
         title=title, info=_plain(info), counts=counts, rows=summary_rows(summary, bands, units, criteria), zones=zones,
