@@ -179,6 +179,8 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
     result = pipeline.run(cfg, progress=_progress(ctx))
     click.echo(_summary(result))
     click.echo(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
+    if result.info.get("report", {}).get("written"):
+        click.echo(f"report: {result.info['report']['path']}")
 
 
 def main(argv: list[str] | None = None) -> None:

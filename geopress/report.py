@@ -127,14 +127,18 @@ def _draw(ax, geom, **style) -> None:
             _draw(ax, part, **style)
 
 
+#: vertical exaggeration of the hillshade, so gentle town-scale relief shows.
+VERT_EXAG = 4.0
+
+
 def hillshade(dem_ft: np.ndarray, pixel: float, ft_per_map_unit: float) -> np.ndarray:
-    """Grey hillshade in [0, 1] of a DEM in ft (light from the north-west, 45 degrees up); NaN stays NaN."""
+    """Grey hillshade in [0, 1] of a DEM in ft (light from the north-west, 45 degrees up, :data:`VERT_EXAG`); NaN stays NaN."""
     dem = np.asarray(dem_ft, dtype=np.float64)
     valid = np.isfinite(dem)
     if not valid.any():
         return np.full(dem.shape, np.nan)
     filled = np.where(valid, dem, np.nanmean(dem)) / ft_per_map_unit
-    shade = LightSource(azdeg=315, altdeg=45).hillshade(filled, dx=pixel, dy=pixel)
+    shade = LightSource(azdeg=315, altdeg=45).hillshade(filled, vert_exag=VERT_EXAG, dx=pixel, dy=pixel)
     return np.where(valid, shade, np.nan)
 
 
@@ -164,7 +168,7 @@ def zone_map(m: ZoneMap) -> str:
     shade = hillshade(m.dem_ft, m.pixel, m.ft_per_map_unit)
     ax.imshow(np.ma.masked_invalid(shade), extent=m.extent, cmap="gray", vmin=0, vmax=1, interpolation="nearest",
               alpha=0.8, zorder=0)
-    handles = [Patch(facecolor="#bbbbbb", edgecolor="none", label="hillshade of the DEM (light from the north-west)")]
+    handles = [Patch(facecolor="#bbbbbb", edgecolor="none", label=f"hillshade of the DEM (light from the north-west, relief x{VERT_EXAG:g})")]
     if not m.band_geom.is_empty:
         _draw(ax, m.band_geom, facecolor=BAND_COLOUR, edgecolor="none", alpha=0.45, zorder=1)
     handles.append(Patch(facecolor=BAND_COLOUR, alpha=0.45, label="serviceable band: within the pressure window"))
