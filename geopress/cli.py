@@ -20,6 +20,7 @@ from . import pipeline
 from ._version import __version__
 from .config import load_config
 from .errors import GeopressError, InputError
+from .scenario import load_scenario
 
 log = logging.getLogger("geopress")
 
@@ -107,26 +108,55 @@ def cli(ctx: click.Context, verbose: int, quiet: int, debug: bool) -> None:
     ctx.obj.update(verbose=verbose, quiet=quiet, debug=debug)
 
 
+_set_option = click.option(
+    "--set", "assignments", multiple=True, metavar="KEY=VALUE",
+    help="Override a config key for this run (repeatable), e.g. --set criteria.max_static_psi=90 or "
+         "--set zones.source.Upper.high_water_ft=1250. VALUE is read as TOML; other text as a string.")
+
+
 @cli.command("run")
 @click.argument("config", type=click.Path(path_type=Path))
+@_set_option
+@click.option("--out-dir", type=click.Path(path_type=Path), default=None,
+              help="Write the outputs into this folder instead (same file names), e.g. for a what-if run.")
 @click.pass_context
 @guarded
-def run_cmd(ctx: click.Context, config: Path) -> None:
+def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_dir: Path | None) -> None:
     """Run the screening described by CONFIG and write its outputs."""
-    result = pipeline.run(load_config(config), progress=_progress(ctx))
+    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx))
     click.echo(_summary(result))
 
 
 @cli.command("check")
 @click.argument("config", type=click.Path(path_type=Path))
+@_set_option
 @click.pass_context
 @guarded
-def check_cmd(ctx: click.Context, config: Path) -> None:
+def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) -> None:
     """Validate CONFIG and every input; print what a run would process; write nothing."""
-    report = pipeline.check(load_config(config))
+    report = pipeline.check(load_scenario(config, assignments))
     for line in report.lines:
         click.echo(line)
     click.echo("check passed")
+
+
+@cli.command("compare")
+@click.argument("before", type=click.Path(path_type=Path))
+@click.argument("after", type=click.Path(path_type=Path))
+@click.option("--out", type=click.Path(path_type=Path), default=None,
+              help="GeoPackage to write (default: status_differences.gpkg beside AFTER); CSVs go beside it.")
+@click.option("--id-field", default=None, help="Customer id field (default: the first field of the customers layer).")
+@click.pass_context
+@guarded
+def compare_cmd(ctx: click.Context, before: Path, after: Path, out: Path | None, id_field: str | None) -> None:
+    """List the customers whose status differs between two runs' GeoPackages, with counts per zone."""
+    comp = pipeline.compare(before, after, out=out, id_field=id_field)
+    click.echo(f"{len(comp.differences)} customers differ in status")
+    for zone, grp in comp.by_zone.groupby("zone", sort=True):
+        click.echo(f"  {zone}: {int(grp['customers'].sum())}")
+        for r in grp.itertuples(index=False):
+            click.echo(f"    {r.status_a} -> {r.status_b}: {r.customers}")
+    click.echo(f"written: {', '.join(str(p) for p in comp.outputs)}")
 
 
 def demo_config_path() -> Path:
@@ -155,6 +185,8 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
     result = pipeline.run(cfg, progress=_progress(ctx))
     click.echo(_summary(result))
     click.echo(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
+    if result.info.get("report", {}).get("written"):
+        click.echo(f"report: {result.info['report']['path']}")
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -17,7 +17,7 @@ import json
 import math
 import re
 import tomllib
-from dataclasses import asdict, dataclass, field, fields, is_dataclass
+from dataclasses import asdict, dataclass, field, fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -25,6 +25,7 @@ from .classify import Criteria
 from .errors import ConfigError
 from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
 from .terrain import METHODS
+from .units import UNIT_SYSTEMS
 
 
 @dataclass(frozen=True)
@@ -71,10 +72,17 @@ class ZonesConfig:
 
 @dataclass(frozen=True)
 class OutputConfig:
-    """Output GeoPackage path and the folder for the mailing lists."""
+    """Output GeoPackage path and the folder for the mailing lists.
+
+    ``units`` ("us": ft, psi; "si": m, kPa) applies to the report and the
+    mailing lists; the GeoPackage keeps ft and psi. ``report`` writes
+    report.html beside the GeoPackage.
+    """
 
     path: Path
     mailing_dir: Path
+    units: str = "us"
+    report: bool = True
 
 
 @dataclass(frozen=True)
@@ -87,6 +95,8 @@ class Config:
     criteria: Criteria
     output: OutputConfig
     source_path: Path | None = field(default=None, compare=False)
+    #: the dotted-key overrides applied on top of the file (what-if runs), in the order given.
+    overrides: tuple[tuple[str, Any], ...] = field(default=(), compare=False)
 
     def input_paths(self) -> list[Path]:
         """Every input file the run reads."""
@@ -155,7 +165,8 @@ def config_from_dict(
     data = dict(data)
     if overrides:
         data = apply_overrides(data, overrides, reader)
-    return reader.build(data)
+    cfg = reader.build(data)
+    return replace(cfg, overrides=tuple((str(k), v) for k, v in (overrides or {}).items()))
 
 
 def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reader: "_Reader | None" = None) -> dict[str, Any]:
@@ -418,8 +429,15 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
-        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"))
+        units = self.get(t, s, "units", "str", "us")
+        if units not in UNIT_SYSTEMS:
+            raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
+        report = t.get("report", True)
+        if not isinstance(report, bool):
+            raise self.error("output.report", f"must be true or false, not {report!r}")
+        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"),
+                            units=units, report=report)

@@ -26,6 +26,8 @@ import pyproj
 import rasterio
 
 from . import classify as cls
+from . import planning
+from ._compat import report_missing
 from ._version import __version__
 from .config import Config, load_config
 from .errors import InputError, OutputError, ZoneOverlapWarning
@@ -34,6 +36,7 @@ from .io import vector as vector_io
 from .io import write as write_io
 from .pressure import customer_pressures
 from .tables import mailing_lists, zone_summary
+from .units import customers_in_units, mailing_columns_in_units, units_for
 from .zones import assign, overlaps
 
 log = logging.getLogger(__name__)
@@ -63,6 +66,8 @@ class Result:
     info: dict[str, Any]
     timings: dict[str, float] = field(default_factory=dict)
     outputs: list[Path] = field(default_factory=list)
+    #: the service_band / band_limits layers and the report's terrain (geopress.planning)
+    plan: planning.Plan | None = None
 
     def flagged(self, status: str) -> gpd.GeoDataFrame:
         """Customers with ``status``."""
@@ -182,7 +187,13 @@ def compute(config: Config, clock: _Clock) -> Result:
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
-        mailing = mailing_lists(customers, id_field=id_field, mail_fields=cfg.customers.mail_fields)
+        units = units_for(cfg.output.units)
+        mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
+            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields).items()}
+    # -- planning: serviceable band and best HGL per zone (geopress.planning) --
+    with clock.step("service band"):
+        plan = planning.service_bands(cfg, zones, cust.crs)
+        summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
     info = {
         "geopress_version": __version__,
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
@@ -198,8 +209,11 @@ def compute(config: Config, clock: _Clock) -> Result:
         "counts": counts,
         "terrain": [vars(r) for r in terrain.rasters],
         "zones": {"layer": zones.layer, "repaired": zones.repaired, "overlaps": overlap_info},
+        "overrides": dict(cfg.overrides),
+        "service_band": plan.info,
     }
-    return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info)
+    return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
+                  plan=plan)
 
 
 def output_layers(result: Result) -> dict[str, pd.DataFrame]:
@@ -208,6 +222,9 @@ def output_layers(result: Result) -> dict[str, pd.DataFrame]:
     for status, name in cls.FLAGGED_LAYERS.items():
         layers[name] = result.flagged(status)
     layers["zone_summary"] = result.zone_summary
+    if result.plan is not None:
+        layers["service_band"] = result.plan.bands
+        layers["band_limits"] = result.plan.limits
     return layers
 
 
@@ -230,9 +247,33 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
             info["timings_s"] = clock.timings
             info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in result.mailing]]
             info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            _stage_report(result, info, stage)
             stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
             stage.commit()
             return list(stage.committed)
+
+
+def report_path(config: Config) -> Path:
+    """report.html sits beside the GeoPackage."""
+    return config.output.path.parent / "report.html"
+
+
+def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging) -> None:
+    """Stage report.html (from ``info`` as run.json will record it) and say in ``info`` whether it was written."""
+    cfg = result.config
+    if not cfg.output.report:
+        info["report"] = {"written": False, "reason": "output.report = false"}
+        return
+    missing = report_missing()
+    if missing:
+        log.warning("report.html not written: %s", missing)
+        info["report"] = {"written": False, "reason": missing}
+        return
+    path = report_path(cfg)
+    info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
+    info["outputs"].append(str(path))
+    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info)
+    stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 
 def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None) -> Result:
@@ -297,3 +338,36 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
     return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=zone_names,
                        rasters=rasters, overlaps=ov, lines=lines)
+
+
+@dataclass
+class Comparison:
+    """Customers whose status differs between two runs, the counts per zone, and the files written."""
+
+    differences: gpd.GeoDataFrame
+    by_zone: pd.DataFrame
+    id_field: str
+    outputs: list[Path]
+
+
+def compare(a: str | os.PathLike, b: str | os.PathLike, *, out: str | os.PathLike | None = None,
+            id_field: str | None = None) -> Comparison:
+    """Compare the ``customers`` layers of two runs' GeoPackages (A before, B after).
+
+    Writes ``out`` (default: ``status_differences.gpkg`` beside B) with layers
+    ``status_differences`` and ``status_differences_by_zone``, and the two as
+    CSVs beside it (``<stem>.csv``, ``<stem>_by_zone.csv``).
+    """
+    from . import compare as compare_mod
+    from .io import results
+
+    left, key = results.read_run_customers(Path(a), id_field)
+    right, key_b = results.read_run_customers(Path(b), key)
+    diff = compare_mod.status_differences(left, right, key)
+    by_zone = compare_mod.counts_by_zone(diff)
+    target = Path(out) if out is not None else Path(b).parent / "status_differences.gpkg"
+    if target.suffix.lower() != ".gpkg":
+        raise OutputError(f"--out must end in .gpkg, not '{target.name}'", path=target, key="--out")
+    written = results.write_comparison(target.resolve(), diff, by_zone)
+    log.info("%d customers differ in status between %s and %s", len(diff), a, b)
+    return Comparison(differences=diff, by_zone=by_zone, id_field=key, outputs=written)

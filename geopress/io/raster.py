@@ -182,3 +182,72 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS) -
             log.info("sampled %d customers from %s (%d windows)", report.customers_sampled, path, report.windows_read)
     result.inside_any = int(inside_any.sum())
     return result
+
+
+# --------------------------------------------------------------------------
+# DEM windows over zones (for the serviceable band and the report's maps)
+
+#: working bytes per DEM pixel when a zone's band is computed (float64 ground, masks, contour scratch).
+BAND_BYTES_PER_PIXEL = 24
+
+
+@dataclass
+class DemWindow:
+    """Ground in ft (float64, NaN for nodata) over a window of one raster.
+
+    ``decimation`` is 1 at full resolution, k when every k x k pixels were
+    averaged so the window fits ``memory_mb``.
+    """
+
+    path: str
+    crs: CRS
+    array_ft: np.ndarray
+    transform: "rasterio.Affine"
+    decimation: int
+
+
+def raster_footprint(path: Path) -> tuple[CRS, tuple[float, float, float, float]]:
+    """The raster's CRS and bounds (left, bottom, right, top) in that CRS."""
+    with _open(path) as src:
+        if src.crs is None:
+            raise InputError("the raster has no CRS; assign one (e.g. gdal_edit -a_srs) and run again", path=path, key="crs")
+        return CRS.from_wkt(src.crs.to_wkt()), tuple(src.bounds)
+
+
+def read_dem_window(path: Path, bounds: tuple[float, float, float, float], vertical_units: str | None,
+                    memory_mb: float) -> DemWindow | None:
+    """Read the raster over ``bounds`` (in its CRS) plus a one-pixel halo, as ground in ft.
+
+    Returns None when the bounds miss the raster. When the window would need
+    more than ``memory_mb`` (at :data:`BAND_BYTES_PER_PIXEL`), it is read
+    decimated by the smallest whole factor that fits (GDAL's average
+    resampling, which uses overviews when the file has them) and the
+    decimation is logged.
+    """
+    from rasterio.enums import Resampling
+
+    with _open(path) as src:
+        unit = resolve_unit(src, path, vertical_units)
+        left, bottom, right, top = bounds
+        cols, rows = ~src.transform @ (np.array([left, right, left, right]), np.array([bottom, bottom, top, top]))
+        c0 = max(int(np.floor(cols.min())) - 1, 0)
+        r0 = max(int(np.floor(rows.min())) - 1, 0)
+        c1 = min(int(np.ceil(cols.max())) + 1, src.width)
+        r1 = min(int(np.ceil(rows.max())) + 1, src.height)
+        if c1 <= c0 or r1 <= r0:
+            return None
+        width, height = c1 - c0, r1 - r0
+        budget = memory_mb * 1024 * 1024
+        factor = max(1, int(np.ceil(np.sqrt(width * height * BAND_BYTES_PER_PIXEL / budget))))
+        window = Window(c0, r0, width, height)
+        out_shape = (max(1, height // factor), max(1, width // factor))
+        arr = src.read(1, window=window, out_shape=out_shape, masked=True,
+                       resampling=Resampling.average if factor > 1 else Resampling.nearest)
+        transform = (src.transform @ rasterio.Affine.translation(c0, r0)
+                     @ rasterio.Affine.scale(width / out_shape[1], height / out_shape[0]))
+        if factor > 1:
+            log.info("%s: the %d x %d px zone window exceeds terrain.memory_mb = %g; read decimated by %d",
+                     path, width, height, memory_mb, factor)
+        ground = np.ma.filled(arr.astype(np.float64), np.nan) * feet_per_unit(unit)
+        return DemWindow(path=str(path), crs=CRS.from_wkt(src.crs.to_wkt()), array_ft=ground,
+                         transform=transform, decimation=factor)

@@ -1,0 +1,219 @@
+"""Planning outputs of a run: the serviceable band per zone and the best HGL per zone.
+
+Part of the pipeline layer (called by :mod:`geopress.pipeline`): it joins
+the DEM windows read by :mod:`geopress.io.raster` with the pure
+:mod:`geopress.band` and :mod:`geopress.besthgl`.
+
+Several rasters: each zone is cut by the rasters' footprints in the order
+configured; a raster computes the band for the part of the zone inside its
+bounds that no earlier raster's bounds cover (so nodata inside an earlier
+raster is not filled from a later one there).
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import shapely
+from pyproj import CRS
+
+from . import band as band_mod
+from .besthgl import best_range
+from .classify import FLAGGED_LAYERS
+from .config import Config
+from .io import raster as raster_io
+from .io.vector import Zones
+from .pressure import M_PER_FT, PrvSource, PumpSource, TankSource
+
+log = logging.getLogger(__name__)
+
+#: the longest side, in pixels, of the DEM kept per zone for the report's hillshade.
+PREVIEW_PX = 600
+
+
+@dataclass
+class ZoneTerrain:
+    """What the report draws for one zone, in the CRS of the zone's first raster (``crs``).
+
+    ``dem_ft`` is a preview of the ground (ft, NaN nodata) covering
+    ``extent`` = (left, right, bottom, top); ``pixel`` its pixel size in map
+    units.
+    """
+
+    zone: str
+    crs: CRS
+    dem_ft: np.ndarray
+    extent: tuple[float, float, float, float]
+    pixel: float
+    zone_geom: shapely.Geometry
+    band_geom: shapely.Geometry
+    limits: dict[str, shapely.Geometry]
+
+
+@dataclass
+class Plan:
+    """The ``service_band`` and ``band_limits`` layers, the report's terrain and run.json's section."""
+
+    bands: gpd.GeoDataFrame
+    limits: gpd.GeoDataFrame
+    terrain: list[ZoneTerrain] = field(default_factory=list)
+    info: list[dict[str, Any]] = field(default_factory=list)
+
+
+def _to_crs(geom: shapely.Geometry, src: CRS, dst: CRS) -> shapely.Geometry:
+    if geom.is_empty or src.equals(dst):
+        return geom
+    return gpd.GeoSeries([geom], crs=src).to_crs(dst).iloc[0]
+
+
+def _preview(win: raster_io.DemWindow) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
+    step = max(1, int(np.ceil(max(win.array_ft.shape) / PREVIEW_PX)))
+    arr = win.array_ft[::step, ::step]
+    t = win.transform
+    h, w = arr.shape
+    extent = (t.c, t.c + t.a * step * w, t.f + t.e * step * h, t.f)
+    return arr, extent, band_mod.pixel_size(t) * step
+
+
+def zone_geometries(zones: Zones, order: list[str]) -> dict[str, shapely.Geometry]:
+    """Each zone's polygons merged, in ``order``."""
+    return {z: shapely.union_all(zones.polygons[zones.zone_ids == z]) for z in order if (zones.zone_ids == z).any()}
+
+
+def service_bands(cfg: Config, zones: Zones, crs: CRS) -> Plan:
+    """The serviceable band and limit lines of every zone, in ``crs`` (the customers' CRS)."""
+    crit = cfg.criteria
+    footprints = [(p, *raster_io.raster_footprint(p)) for p in cfg.terrain.paths]
+    band_rows, limit_rows, terrain, info = [], [], [], []
+    for zone, geom in zone_geometries(zones, [s.zone for s in cfg.zones.sources]).items():
+        src = cfg.zones.source_for(zone)
+        high, low = src.hgl_range(crit.psi_per_ft)
+        lower, upper = band_mod.limit_elevations(high, low, crit)
+        remaining = geom
+        polys, lines = [], {name: [] for name in band_mod.LIMITS}
+        first: ZoneTerrain | None = None
+        used: list[dict[str, Any]] = []
+        for path, rcrs, bounds in footprints:
+            if remaining.is_empty:
+                break
+            box_here = _to_crs(shapely.box(*bounds), rcrs, crs)
+            piece = shapely.intersection(remaining, box_here)
+            if piece.is_empty or piece.area == 0:
+                continue
+            remaining = shapely.difference(remaining, box_here)
+            piece_r = _to_crs(piece, crs, rcrs)
+            win = raster_io.read_dem_window(path, piece_r.bounds, cfg.terrain.vertical_units, cfg.terrain.memory_mb)
+            if win is None:
+                continue
+            b = band_mod.zone_band(win.array_ft, win.transform, piece_r, high, low, crit)
+            polys.append(_to_crs(b.polygons, rcrs, crs))
+            for name, line in b.limits.items():
+                lines[name].append(_to_crs(line, rcrs, crs))
+            used.append({"path": win.path, "decimation": win.decimation, "pixel": band_mod.pixel_size(win.transform),
+                         "band_pixels": b.pixels})
+            if first is None:
+                arr, extent, px = _preview(win)
+                first = ZoneTerrain(zone=zone, crs=rcrs, dem_ft=arr, extent=extent, pixel=px,
+                                    zone_geom=piece_r, band_geom=b.polygons, limits=dict(b.limits))
+        merged = band_mod.polygonal(shapely.union_all(polys)) if polys else shapely.MultiPolygon()
+        sq_ft = band_mod.area_sq_ft(merged, crs)
+        decimation = max((u["decimation"] for u in used), default=1)
+        band_rows.append({
+            "zone": zone, "lower_limit_ft": lower, "upper_limit_ft": upper,
+            "area_sq_ft": round(sq_ft, 1), "area_acres": round(sq_ft / band_mod.SQ_FT_PER_ACRE, 3),
+            "zone_area_acres": round(band_mod.area_sq_ft(geom, crs) / band_mod.SQ_FT_PER_ACRE, 3),
+            "decimation": decimation, "geometry": None if merged.is_empty else merged,
+        })
+        for name, parts in lines.items():
+            line = band_mod.lineal(shapely.union_all(parts)) if parts else shapely.MultiLineString()
+            limit_rows.append({"zone": zone, "limit": name, "elevation_ft": lower if name == "max_static" else upper,
+                               "meaning": band_mod.LIMITS[name], "geometry": None if line.is_empty else line})
+        if first is not None:
+            if len(used) > 1:  # the band came from several rasters: draw the merged result
+                first.band_geom = _to_crs(merged, crs, first.crs)
+                first.zone_geom = _to_crs(geom, crs, first.crs)
+            terrain.append(first)
+        info.append({"zone": zone, "lower_limit_ft": lower, "upper_limit_ft": upper, "rasters": used})
+        log.info("zone %s: serviceable band %.1f to %.1f ft covers %.2f acres", zone, lower, upper,
+                 sq_ft / band_mod.SQ_FT_PER_ACRE)
+    bands = gpd.GeoDataFrame(band_rows, geometry="geometry", crs=crs) if band_rows else _empty(crs)
+    limits = gpd.GeoDataFrame(limit_rows, geometry="geometry", crs=crs) if limit_rows else _empty(crs)
+    return Plan(bands=bands, limits=limits, terrain=terrain, info=info)
+
+
+def _empty(crs: CRS) -> gpd.GeoDataFrame:
+    return gpd.GeoDataFrame({"zone": []}, geometry=gpd.GeoSeries([], crs=crs))
+
+
+BEST_COLUMNS = (
+    "best_high_water_ft_from", "best_high_water_ft_to",
+    "best_setting_psi_from", "best_setting_psi_to",
+    "best_discharge_hgl_ft_from", "best_discharge_hgl_ft_to",
+    "flagged_now", "flagged_at_best",
+)
+
+
+def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
+    """Per zone, the best range of its control (tank high water, PRV setting or pump HGL) and the counts.
+
+    Only the pair of columns for the zone's source kind is filled; the
+    others are NaN.
+    """
+    crit = cfg.criteria
+    floors_all = (customers[cfg.customers.floors_field].to_numpy(dtype=np.float64) if cfg.customers.floors_field
+                  else np.full(len(customers), np.nan))
+    zone_col = customers["zone"].to_numpy(dtype=object)
+    ground_all = customers["ground_ft"].to_numpy(dtype=np.float64)
+    flagged_all = customers["status"].isin(list(FLAGGED_LAYERS)).to_numpy()
+    rows = []
+    for src in cfg.zones.sources:
+        sel = zone_col == src.zone
+        row: dict[str, Any] = {"zone": src.zone, **{c: np.nan for c in BEST_COLUMNS}}
+        high, low = src.hgl_range(crit.psi_per_ft)
+        best = best_range(ground_all[sel], floors_all[sel], high - low, crit)
+        if isinstance(src, TankSource):
+            row["best_high_water_ft_from"], row["best_high_water_ft_to"] = best.from_ft, best.to_ft
+        elif isinstance(src, PrvSource):
+            to_psi = lambda h: crit.psi_per_ft * (h - src.valve_elevation_ft)  # noqa: E731
+            row["best_setting_psi_from"], row["best_setting_psi_to"] = to_psi(best.from_ft), to_psi(best.to_ft)
+        elif isinstance(src, PumpSource):
+            row["best_discharge_hgl_ft_from"], row["best_discharge_hgl_ft_to"] = best.from_ft, best.to_ft
+        row["flagged_now"] = int(flagged_all[sel].sum())
+        row["flagged_at_best"] = best.flagged
+        rows.append(row)
+    return pd.DataFrame(rows, columns=["zone", *BEST_COLUMNS]).astype({"flagged_now": "int64", "flagged_at_best": "int64"})
+
+
+def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
+                info: dict[str, Any]) -> str:
+    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`)."""
+    from . import report
+    from .units import units_for
+
+    units = units_for(cfg.output.units)
+    zone_col = customers["zone"].to_numpy(dtype=object)
+    pressures = {z: (customers["psi_min"].to_numpy(dtype=np.float64)[zone_col == z],
+                     customers["psi_max"].to_numpy(dtype=np.float64)[zone_col == z])
+                 for z in summary["zone"].tolist()}
+    maps = []
+    geom = customers.geometry.to_numpy()
+    status = customers["status"].to_numpy(dtype=object)
+    for zt in (plan.terrain if plan is not None else []):
+        sel = (zone_col == zt.zone) & ~(shapely.is_missing(geom) | shapely.is_empty(geom))
+        pts = gpd.GeoSeries(geom[sel], crs=customers.crs)
+        if customers.crs is not None and not zt.crs.equals(customers.crs):
+            pts = pts.to_crs(zt.crs)
+        m_per_unit = zt.crs.axis_info[0].unit_conversion_factor if zt.crs.is_projected else 111_320.0  # m per degree, from memory
+        maps.append(report.ZoneMap(
+            zone=zt.zone, dem_ft=zt.dem_ft, extent=zt.extent, pixel=zt.pixel, ft_per_map_unit=m_per_unit / M_PER_FT,
+            zone_geom=zt.zone_geom, band_geom=zt.band_geom, limits=zt.limits,
+            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status[sel],
+        ))
+    bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
+    return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
+                         criteria=cfg.criteria, units=units)
