@@ -21,7 +21,7 @@ from dataclasses import asdict, dataclass, field, fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any, Mapping
 
-from .classify import Criteria
+from .classify import RESULT_COLUMNS, Criteria
 from .errors import ConfigError
 from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
 from .terrain import METHODS
@@ -320,13 +320,20 @@ class _Reader:
     def customers(self, t: dict[str, Any]) -> CustomersConfig:
         s = "customers"
         self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
-        return CustomersConfig(
+        cfg = CustomersConfig(
             path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
             floors_field=self.get(t, s, "floors_field", "str", None),
         )
+        named = [("customers.id_field", cfg.id_field), ("customers.floors_field", cfg.floors_field)]
+        named += [(f"customers.mail_fields[{i}]", f) for i, f in enumerate(cfg.mail_fields)]
+        for key, name in named:
+            if name in RESULT_COLUMNS:
+                raise self.error(key, f"field {name!r} has the name of a result column "
+                                      f"({', '.join(RESULT_COLUMNS)}); rename it in the layer")
+        return cfg
 
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
         s = "terrain"

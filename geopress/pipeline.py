@@ -43,8 +43,6 @@ log = logging.getLogger(__name__)
 
 Progress = Callable[[str], None]
 
-#: per-customer result columns, in output order (after the id field).
-RESULT_COLUMNS = ("zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "status", "reason")
 
 
 @dataclass

@@ -404,3 +404,13 @@ def test_any_input_gives_a_config_or_a_config_error(data):
         assert exc.key
     else:
         assert isinstance(cfg, Config)
+
+
+@pytest.mark.parametrize("key", ["floors_field", "mail_fields"])
+def test_an_input_field_named_like_a_result_column_is_refused(tmp_path, key):
+    value = '"status"' if key == "floors_field" else '["owner", "status"]'
+    old = 'floors_field = "floors"' if key == "floors_field" else 'mail_fields = ["owner", "mail_address"]'
+    err = error_of(tmp_path, BASE_CONFIG.replace(old, f"{key} = {value}"))
+    expected_key = "customers.floors_field" if key == "floors_field" else "customers.mail_fields[1]"
+    assert err.key == expected_key
+    assert "'status' has the name of a result column" in str(err)

@@ -683,3 +683,14 @@ def test_zone_without_a_source(world):
                        "mailing_dir = 'out/m'\n")
     with pytest.raises(InputError, match="zones East in layer 'zones' have no \\[\\[zones.source\\]\\]"):
         geopress.run(world.config_path)
+
+
+def test_stale_temp_removal_takes_the_output_name_literally(tmp_path):
+    # '[' and ']' in the output's name must not act as a glob character class
+    target = tmp_path / "run[1].gpkg"
+    own = tmp_path / f".run[1].gpkg{write_io.TMP_MARK}abc.gpkg"
+    other = tmp_path / f".run1.gpkg{write_io.TMP_MARK}abc.gpkg"
+    own.write_text("x")
+    other.write_text("x")
+    assert write_io.remove_stale_temps(target) == [own]
+    assert other.exists()

@@ -10,6 +10,7 @@ removed by the next run.
 
 from __future__ import annotations
 
+import glob
 import json
 import logging
 import os
@@ -42,7 +43,7 @@ def remove_stale_temps(target: Path) -> list[Path]:
     """Delete temporary files a killed run left beside ``target``."""
     removed = []
     if target.parent.is_dir():
-        for p in target.parent.glob(f".{target.name}{TMP_MARK}*"):
+        for p in target.parent.glob(f".{glob.escape(target.name)}{TMP_MARK}*"):
             try:
                 p.unlink()
                 removed.append(p)
