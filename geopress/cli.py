@@ -52,7 +52,11 @@ def _configure_logging(verbose: int, quiet: int) -> None:
         lg.handlers[:] = [handler]
         lg.setLevel(max(level, logging.DEBUG))
         lg.propagate = False
-    logging.captureWarnings(True)
+
+
+def _log_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """``warnings.showwarning`` for a command: warnings become log lines (as logging.captureWarnings does)."""
+    logging.getLogger("py.warnings").warning("%s", warnings.formatwarning(message, category, filename, lineno, line))
 
 
 def _progress(ctx: click.Context) -> Callable[[str], None] | None:
@@ -72,6 +76,7 @@ def guarded(fn: Callable) -> Callable:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("always")
+                warnings.showwarning = _log_warning  # restored when the block ends, even in-process
                 return fn(*args, **kwargs)
         except GeopressError as exc:
             _finish_log(ctx, f"run failed: exit {EXIT_BAD_INPUT}: {exc}")

@@ -129,7 +129,7 @@ def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None) ->
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark from a Windows editor is not an error
     except FileNotFoundError:
         raise ConfigError("config file not found; check the path", path=path) from None
     except (OSError, UnicodeDecodeError) as exc:
