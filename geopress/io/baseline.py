@@ -43,18 +43,18 @@ def read_baseline(
     """
     hint = "pass --baseline with an earlier geopress GeoPackage, or move the file away to start a fresh history"
     if not path.is_file():
-        raise InputError(f"baseline GeoPackage not found (from {key}); {hint}", path=path, key=key)
+        raise InputError(f"baseline GeoPackage (from {key}) not found; {hint}", path=path, key=key)
     try:
         layers = [str(n) for n in pyogrio.list_layers(path)[:, 0]]
     except Exception as exc:  # pyogrio raises DataSourceError and friends
-        raise InputError(f"cannot read the baseline ({str(exc).splitlines()[0]}); {hint}", path=path, key=key) from exc
+        raise InputError(f"cannot read the baseline (from {key}): {str(exc).splitlines()[0]}; {hint}", path=path, key=key) from exc
     if LAYER not in layers:
-        raise InputError(f"baseline has no layer '{LAYER}' (layers there: {_fmt_list(layers)}); {hint}", path=path, key=key)
+        raise InputError(f"baseline (from {key}) has no layer '{LAYER}' (layers there: {_fmt_list(layers)}); {hint}", path=path, key=key)
     have = [str(f) for f in pyogrio.read_info(path, layer=LAYER)["fields"]]
     for name in (id_field, "status"):
         if name not in have:
             raise InputError(
-                f"baseline layer '{LAYER}' has no field '{name}' (fields there: {_fmt_list(have, 20)}); {hint}",
+                f"baseline (from {key}) layer '{LAYER}' has no field '{name}' (fields there: {_fmt_list(have, 20)}); {hint}",
                 path=path, key=key,
             )
     columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in have]
