@@ -161,12 +161,16 @@ def journal_path(output: Path) -> Path:
 
 
 def _write_journal(output: Path, entries: list[dict[str, Any]]) -> None:
-    tmp = output.parent / f".{output.name}{TMP_MARK}commit"  # removed with the stale temporaries
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(entries, fh)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, journal_path(output))
+    tmp = output.parent / f".{output.name}{TMP_MARK}commit"  # also removed with the stale temporaries
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(entries, fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, journal_path(output))
+    except BaseException:
+        _unlink(tmp)
+        raise
 
 
 def _rollback(entries: list[dict[str, Any]]) -> None:
