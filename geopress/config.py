@@ -189,6 +189,19 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
 _GLOB_CHARS = re.compile(r"[*?\[]")
 
 
+def _float_or_inf(value: int | float) -> float:
+    """``value`` as a float; inf for an integer too large for one (TOML integers are unbounded in tomllib)."""
+    try:
+        return float(value)
+    except OverflowError:
+        return math.inf
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
 class _Reader:
     """Validates sections key by key; knows the file and text to name lines."""
 
@@ -254,8 +267,8 @@ class _Reader:
                 raise self.error(key, f"must be a non-empty string, not {value!r}")
             return value
         if kind == "number":
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-                raise self.error(key, f"must be a finite number, not {value!r}")
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(_float_or_inf(value)):
+                raise self.error(key, f"must be a finite number, not {_short(value)}")
             return float(value)
         if kind == "str_list":
             if isinstance(value, str):
@@ -270,7 +283,9 @@ class _Reader:
             if name not in allowed:
                 raise self.error(f"{section}.{name}", f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
-    def path(self, value: str) -> Path:
+    def path(self, value: str, key: str) -> Path:
+        if "\x00" in value:
+            raise self.error(key, "contains a NUL character, which no file name can; fix the path")
         p = Path(value).expanduser()
         return (p if p.is_absolute() else self.base_dir / p).resolve()
 
@@ -300,7 +315,7 @@ class _Reader:
         s = "customers"
         self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
         return CustomersConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
@@ -315,7 +330,7 @@ class _Reader:
             raise self.error("terrain.paths", "must list at least one raster")
         paths: list[Path] = []
         for item in raw:
-            p = self.path(item)
+            p = self.path(item, "terrain.paths")
             if _GLOB_CHARS.search(item):
                 hits = sorted(Path(h) for h in glob.glob(str(p)))
                 if not hits:
@@ -354,7 +369,7 @@ class _Reader:
             seen[src.zone] = i
             sources.append(src)
         return ZonesConfig(
-            path=self.path(self.get(t, s, "path", "str")),
+            path=self.path(self.get(t, s, "path", "str"), "zones.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             sources=tuple(sources),
@@ -409,7 +424,7 @@ class _Reader:
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
         self.no_unknown(t, s, {"path", "mailing_dir"})
-        path = self.path(self.get(t, s, "path", "str"))
+        path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not '{path.name}'")
-        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str")))
+        return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"))
