@@ -155,10 +155,14 @@ def _finish_log(ctx: click.Context, line: str) -> None:
     handler.close()
 
 
+def _changes_text(result: pipeline.Result) -> str:
+    changed = ", ".join(f"{k} {v}" for k, v in result.info["changes"]["counts"].items() if v and k != "unchanged")
+    return changed or "none"
+
+
 def _run_line(result: pipeline.Result) -> str:
     counts = ", ".join(f"{k} {v}" for k, v in result.counts.items() if v)
-    changed = ", ".join(f"{k} {v}" for k, v in result.info["changes"]["counts"].items() if v and k != "unchanged")
-    return f"run done: exit {EXIT_OK}: {len(result.customers)} customers: {counts}; changes: {changed or 'none'}"
+    return f"run done: exit {EXIT_OK}: {len(result.customers)} customers: {counts}; changes: {_changes_text(result)}"
 
 
 @cli.command("run")
@@ -176,6 +180,8 @@ def run_cmd(ctx: click.Context, config: Path, baseline: Path | None, log_file: P
         log.info("run started: %s", config.resolve())
     result = pipeline.run(load_config(config), progress=_progress(ctx), baseline=baseline)
     click.echo(_summary(result))
+    since = result.info["changes"]["baseline"] or "no earlier run"
+    click.echo(f"changes since {since}: {_changes_text(result)}")
     _finish_log(ctx, _run_line(result))
 
 

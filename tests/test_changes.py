@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import io
 import json
 import shutil
 
-import numpy as np
 import pandas as pd
 import pytest
 import shapely
@@ -56,7 +54,6 @@ def test_newly_in_status_counts_new_customers_and_changed_statuses_not_repeats()
     assert rows["low"].size == 0 and rows["low_upper_floors"].size == 0
 
 
-ids = st.lists(st.text("abcdef", min_size=1, max_size=3), unique=True, max_size=12)
 status = st.sampled_from(STATUSES)
 
 
@@ -138,7 +135,7 @@ def test_second_run_reports_exactly_the_changes_made(world, changed):
                                          "cleared": 1, "status_changed": 1}
     assert info["changes"]["newly_in_status"] == {"high": 1, "low": 1, "above_hgl": 1, "low_upper_floors": 0}
 
-    new = {status: k for k, (_, status, _) in expected.items() if status in FLAGGED_LAYERS for status in [status]}
+    new = {now: k for k, (_, now, _) in expected.items() if now in FLAGGED_LAYERS}
     assert csv_accounts(world, "new_high_pressure") == [new["high"]]
     assert csv_accounts(world, "new_low_pressure") == ["N0001"]
     assert csv_accounts(world, "new_above_hgl") == [new["above_hgl"]]
@@ -225,3 +222,9 @@ def test_log_file_ends_each_run_with_one_summary_line(world, changed):
     assert done.rstrip().endswith(" s")
     assert "run failed: exit 2: " in failed and "no field 'acct'" in failed
     assert all(line[:4].isdigit() and " geopress[" in line for line in lines)  # timestamped, pid-tagged
+
+
+def test_run_prints_what_changed(world, changed):
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    assert f"changes since {world.out}: new_customer 1, removed 1, newly_flagged 1, cleared 1, status_changed 1" in res.stdout
