@@ -1,7 +1,9 @@
 """The ``geopress`` command: parses arguments, configures logging, calls the pipeline.
 
 Exit codes: 0 the run completed (flagged customers are a result, not a
-failure); 2 bad config or input, one line on stderr; 1 anything else.
+failure); 2 bad config or input, or an output location that cannot be
+written, locked or full: one line on stderr, nothing written; 1 anything
+else, earlier outputs unchanged.
 """
 
 from __future__ import annotations
@@ -9,6 +11,7 @@ from __future__ import annotations
 import functools
 import logging
 import sys
+import time
 import warnings
 from importlib import resources
 from pathlib import Path
@@ -19,7 +22,7 @@ import click
 from . import pipeline
 from ._version import __version__
 from .config import load_config
-from .errors import GeopressError, InputError
+from .errors import GeopressError, InputError, OutputError
 from .scenario import load_scenario
 
 log = logging.getLogger("geopress")
@@ -44,12 +47,17 @@ def _configure_logging(verbose: int, quiet: int) -> None:
     level = logging.INFO - 10 * verbose + 10 * quiet
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(_OneLine())
+    handler.addFilter(lambda record: record.name != SUMMARY_LOGGER)  # the summary goes to --log-file only
     for name in ("geopress", "py.warnings"):
         lg = logging.getLogger(name)
         lg.handlers[:] = [handler]
         lg.setLevel(max(level, logging.DEBUG))
         lg.propagate = False
-    logging.captureWarnings(True)
+
+
+def _log_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """``warnings.showwarning`` for a command: warnings become log lines (as logging.captureWarnings does)."""
+    logging.getLogger("py.warnings").warning("%s", warnings.formatwarning(message, category, filename, lineno, line))
 
 
 def _progress(ctx: click.Context) -> Callable[[str], None] | None:
@@ -69,19 +77,23 @@ def guarded(fn: Callable) -> Callable:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("always")
+                warnings.showwarning = _log_warning  # restored when the block ends, even in-process
                 return fn(*args, **kwargs)
         except GeopressError as exc:
+            _finish_log(ctx, f"run failed: exit {EXIT_BAD_INPUT}: {exc}")
             if debug:
                 raise
             click.echo(f"error: {exc}", err=True)
             ctx.exit(EXIT_BAD_INPUT)
         except KeyboardInterrupt:
+            _finish_log(ctx, "run failed: exit 130: interrupted; earlier outputs are unchanged")
             click.echo("error: interrupted; earlier outputs are unchanged", err=True)
             ctx.exit(130)
         except Exception as exc:  # a bug or an environment failure
+            first = str(exc).splitlines()[0] if str(exc) else ""
+            _finish_log(ctx, f"run failed: exit {EXIT_FAILURE}: {type(exc).__name__}: {first}")
             if debug:
                 raise
-            first = str(exc).splitlines()[0] if str(exc) else ""
             click.echo(f"error: unexpected failure ({type(exc).__name__}: {first}); earlier outputs are unchanged; "
                        "rerun with --debug for details", err=True)
             ctx.exit(EXIT_FAILURE)
@@ -114,17 +126,74 @@ _set_option = click.option(
          "--set zones.source.Upper.high_water_ft=1250. VALUE is read as TOML; other text as a string.")
 
 
+# -- --log-file: a plain appended log for schedulers; each run ends with one summary line ----------
+SUMMARY_LOGGER = "geopress.summary"
+
+
+class _Stamped(_OneLine):
+    def format(self, record: logging.LogRecord) -> str:
+        stamp = time.strftime("%Y-%m-%dT%H:%M:%S%z", time.localtime(record.created))
+        return f"{stamp} geopress[{record.process}] {super().format(record)}"
+
+
+def _open_log(ctx: click.Context, path: Path) -> None:
+    try:
+        handler = logging.FileHandler(path, mode="a", encoding="utf-8")
+    except OSError as exc:
+        raise OutputError(f"cannot open the log file ({exc.strerror}) for --log-file; choose a writable path",
+                          path=path, key="--log-file") from exc
+    handler.setFormatter(_Stamped())
+    for name in ("geopress", "py.warnings"):
+        logging.getLogger(name).addHandler(handler)
+    logging.getLogger(SUMMARY_LOGGER).setLevel(logging.INFO)  # even with -q
+    ctx.obj["log_file"] = handler
+    ctx.obj["started"] = time.perf_counter()
+
+
+def _finish_log(ctx: click.Context, line: str) -> None:
+    """Write the run's last line to --log-file and close it (no-op without one)."""
+    handler = ctx.obj.pop("log_file", None)
+    if handler is None:
+        return
+    seconds = time.perf_counter() - ctx.obj["started"]
+    logging.getLogger(SUMMARY_LOGGER).info("%s; %.1f s", line, seconds)
+    for name in ("geopress", "py.warnings"):
+        logging.getLogger(name).removeHandler(handler)
+    handler.close()
+
+
+def _changes_text(result: pipeline.Result) -> str:
+    changed = ", ".join(f"{k} {v}" for k, v in result.info["changes"]["counts"].items() if v and k != "unchanged")
+    return changed or "none"
+
+
+def _run_line(result: pipeline.Result) -> str:
+    counts = ", ".join(f"{k} {v}" for k, v in result.counts.items() if v)
+    return f"run done: exit {EXIT_OK}: {len(result.customers)} customers: {counts}; changes: {_changes_text(result)}"
+
+
 @cli.command("run")
 @click.argument("config", type=click.Path(path_type=Path))
 @_set_option
 @click.option("--out-dir", type=click.Path(path_type=Path), default=None,
               help="Write the outputs into this folder instead (same file names), e.g. for a what-if run.")
+@click.option("--baseline", type=click.Path(path_type=Path),
+              help="Compare with this earlier geopress GeoPackage instead of the previous output.")
+@click.option("--log-file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Append a plain-text log here; each run ends with one summary line.")
 @click.pass_context
 @guarded
-def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_dir: Path | None) -> None:
+def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_dir: Path | None,
+            baseline: Path | None, log_file: Path | None) -> None:
     """Run the screening described by CONFIG and write its outputs."""
-    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx))
+    if log_file is not None:
+        _open_log(ctx, log_file)
+        log.info("run started: %s", config.resolve())
+    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline)
     click.echo(_summary(result))
+    since = result.info["changes"]["baseline"] or "no earlier run"
+    click.echo(f"changes since {since}: {_changes_text(result)}")
+    _finish_log(ctx, _run_line(result))
 
 
 @cli.command("check")

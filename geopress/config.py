@@ -140,7 +140,7 @@ def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None) ->
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark from a Windows editor is not an error
     except FileNotFoundError:
         raise ConfigError("config file not found; check the path", path=path) from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -200,6 +200,19 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def _float_or_inf(value: int | float) -> float:
+    """``value`` as a float; inf for an integer too large for one (TOML integers are unbounded in tomllib)."""
+    try:
+        return float(value)
+    except OverflowError:
+        return math.inf
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
 
 
 class _Reader:
@@ -270,8 +283,8 @@ class _Reader:
                 raise self.error(key, f"must be a non-empty string, not {value!r}")
             return value
         if kind == "number":
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-                raise self.error(key, f"must be a finite number, not {value!r}")
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(_float_or_inf(value)):
+                raise self.error(key, f"must be a finite number, not {_short(value)}")
             return float(value)
         if kind == "str_list":
             if isinstance(value, str):
@@ -289,6 +302,8 @@ class _Reader:
                 raise self.error(key, f"unknown key; allowed keys are {', '.join(sorted(allowed))}")
 
     def path(self, value: str, key: str) -> Path:
+        if "\x00" in value:
+            raise self.error(key, "contains a NUL character, which no file name can; fix the path")
         try:
             p = Path(value).expanduser()
             return (p if p.is_absolute() else self.base_dir / p).resolve()

@@ -12,7 +12,7 @@ import logging
 import os
 import time
 import warnings
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -28,6 +28,7 @@ import rasterio
 from . import classify as cls
 from . import planning
 from ._compat import report_missing
+from . import nightly
 from ._version import __version__
 from .config import Config, load_config
 from .errors import InputError, OutputError, ZoneOverlapWarning
@@ -66,6 +67,9 @@ class Result:
     outputs: list[Path] = field(default_factory=list)
     #: the service_band / band_limits layers and the report's terrain (geopress.planning)
     plan: planning.Plan | None = None
+    # set by geopress.nightly.track: the changes layer and the new_* mailing lists
+    changes: pd.DataFrame | None = None
+    new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
 
     def flagged(self, status: str) -> gpd.GeoDataFrame:
         """Customers with ``status``."""
@@ -223,6 +227,8 @@ def output_layers(result: Result) -> dict[str, pd.DataFrame]:
     if result.plan is not None:
         layers["service_band"] = result.plan.bands
         layers["band_limits"] = result.plan.limits
+    if result.changes is not None:
+        layers["changes"] = result.changes
     return layers
 
 
@@ -237,13 +243,14 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
     with clock.step("write outputs"):
         write_io.ensure_dir(out.path.parent, "output.path")
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
-        with write_io.Staging() as stage:
+        lists = {**result.mailing, **result.new_mailing}
+        with write_io.Staging(journal_for=out.path) as stage:
             stage.write(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)))
-            for name, df in result.mailing.items():
+            for name, df in lists.items():
                 stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
             info = dict(result.info)
             info["timings_s"] = clock.timings
-            info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in result.mailing]]
+            info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
             info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             _stage_report(result, info, stage)
             stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
@@ -274,12 +281,15 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 
-def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None) -> Result:
+def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None,
+        baseline: str | os.PathLike | None = None) -> Result:
     """Run the screening for ``config`` (a :class:`Config` or a path to a TOML file).
 
-    With ``write=True`` (default) the outputs are written atomically: on any
-    error no output is changed. Raises :class:`~geopress.errors.GeopressError`
-    for bad config or input.
+    With ``write=True`` (default) the outputs are written atomically under
+    the output lock: on any error no output is changed. The customers are
+    compared with ``baseline`` (an earlier geopress GeoPackage), by default
+    the previous output (see :mod:`geopress.changes`). Raises
+    :class:`~geopress.errors.GeopressError` for bad config or input.
     """
     cfg = _as_config(config)
     clock = _Clock(progress)
@@ -288,10 +298,15 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         check_writable(cfg.output.path.parent, "output.path")
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    result = compute(cfg, clock)
-    result.info["started"] = started
-    if write:
-        result.outputs = write_outputs(result, clock)
+    with nightly.guarded_outputs(cfg) if write else nullcontext():
+        inputs = nightly.snapshot(cfg.input_paths())
+        result = compute(cfg, clock)
+        nightly.check_unchanged(inputs)
+        with clock.step("compare with baseline"):
+            nightly.track(result, baseline)
+        result.info["started"] = started
+        if write:
+            result.outputs = write_outputs(result, clock)
     result.timings = clock.timings
     log.debug("run finished in %.2f s: %s", time.perf_counter() - t0,
              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))

@@ -255,7 +255,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
 
     ``pressures`` maps zone -> (psi_min, psi_max) arrays in psi; ``maps``
     holds one :class:`ZoneMap` per zone that has terrain; ``info`` is what
-    run.json records (its ``changes`` section, when present, is shown).
+    run.json records (its ``changes`` section is shown when there was an earlier run to compare with).
     """
     env = jinja2.Environment(loader=jinja2.PackageLoader("geopress", "templates"),
                              autoescape=jinja2.select_autoescape(["html", "j2"]), undefined=jinja2.StrictUndefined)
@@ -280,6 +280,6 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
     }
     return env.get_template("report.html.j2").render(
         title=title, info=_plain(info), counts=counts, rows=summary_rows(summary, bands, units, criteria), zones=zones,
-        criteria=crit, units=units, cautions=CAUTIONS, changes=_plain(info.get("changes")),
+        criteria=crit, units=units, cautions=CAUTIONS, changes=_plain(changes) if (changes := info.get("changes")) and changes.get("baseline") else None,
         status_style=STATUS_STYLE, overrides=info.get("overrides") or {},
     )

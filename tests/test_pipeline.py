@@ -373,8 +373,8 @@ def read_csv(path: Path) -> list[dict[str, str]]:
 def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     run_crafted(crafted)
     mailing = crafted.parent / "out" / "mailing"
-    assert sorted(p.name for p in mailing.iterdir()) == ["above_hgl.csv", "high_pressure.csv", "low_pressure.csv",
-                                                         "upper_floors.csv"]
+    lists = ["above_hgl.csv", "high_pressure.csv", "low_pressure.csv", "upper_floors.csv"]
+    assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists])
     high = read_csv(mailing / "high_pressure.csv")
     # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
     assert high == [{"owner": "Owner H", "mail_address": "9 Low St", "accounts": "A-high; A-high-2",
@@ -395,7 +395,7 @@ def test_flagged_layers_and_zone_summary(crafted):
     out = crafted.parent / "out/pressure.gpkg"
     names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert sorted(names) == sorted(["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors",
-                                    "zone_summary", "service_band", "band_limits"])
+                                    "zone_summary", "service_band", "band_limits", "changes"])
     for name in ("customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors"):
         assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
     flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
@@ -442,7 +442,8 @@ def test_run_json_records_the_run(crafted):
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / f"{n}.csv") for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")
+        str(root / "out/mailing" / f"{p}{n}.csv") for p in ("", "new_")
+        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")
     ] + [str(root / "out/report.html")]
     assert info["config"]["zones"]["source"][0] == {"zone": "Main", "high_water_ft": 1200.0, "low_water_ft": 1180.0,
                                                     "kind": "tank"}
@@ -462,8 +463,9 @@ def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypa
     root = crafted.parent
     run_crafted(crafted)
     before = output_files(root)
-    assert set(before) == {"out/pressure.gpkg", "out/run.json", "out/report.html", "out/mailing/high_pressure.csv",
-                           "out/mailing/low_pressure.csv", "out/mailing/above_hgl.csv", "out/mailing/upper_floors.csv"}
+    assert set(before) == {"out/pressure.gpkg", "out/run.json", "out/report.html"} | {
+        f"out/mailing/{p}{n}.csv" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
+                                                                   "upper_floors")}
     # a second run that would change every output, and runs out of space part way
     crafted.write_text(crafted.read_text().replace("high_water_ft = 1200.0", "high_water_ft = 1190.0"))
 
@@ -518,7 +520,9 @@ def test_cli_run_exit_0_with_summary(crafted, invoke):
     assert res.exit_code == 0, res.stderr
     assert res.stdout.startswith(f"{len(CRAFTED)} customers: no_geometry 1, no_terrain 2, unzoned 1, above_hgl 3, "
                                  "low 1, high 2, low_upper_floors 1, ok 3 (")
-    assert res.stdout.rstrip().endswith(f"-> {crafted.parent / 'out/pressure.gpkg'}")
+    first, second = res.stdout.rstrip().splitlines()
+    assert first.endswith(f"-> {crafted.parent / 'out/pressure.gpkg'}")
+    assert second == f"changes since no earlier run: new_customer {len(CRAFTED)}"
     # the no-geometry warning reaches the user as one line
     assert any(line.startswith("warning:") and "no geometry" in line for line in res.stderr.splitlines())
     assert (crafted.parent / "out/run.json").exists()

@@ -47,7 +47,7 @@ def test_report_is_self_contained_and_says_what_it_is(world):
     assert not re.search(r'(src|href)="(?!data:)', html)  # nothing to fetch: images are data: URIs
     assert html.count('src="data:image/png;base64,') == 4
     assert "static screening estimate" in html and "licensed engineering practice" in html
-    assert "Changes since the last run" not in html  # no changes section in this run's info
+    assert "Changes since the last run" not in html  # a first run has no earlier run to compare with
     for status in ("ok", "high", "low"):
         assert STATUS_STYLE[status][2] in html  # every status colour is explained
     info = json.loads((world.out.parent / "run.json").read_text())
@@ -71,12 +71,14 @@ def _summary():
 
 def test_changes_section_and_si_units():
     info = {"geopress_version": "x", "counts": {"ok": 2}, "config": {"zones": {"source": []}},
-            "changes": {"since": "2026-01-01T00:00:00+00:00", "customers": [{"account": "A1", "before": "ok",
-                                                                            "after": "high"}]}}
+            "changes": {"baseline": "/runs/2026-01-01/pressure.gpkg",
+                        "counts": {"unchanged": 1, "newly_flagged": 1, "cleared": 0},
+                        "newly_in_status": {"high": 1, "low": 0}}}
     pressures = {"Z": (np.array([40.0, 50.0]), np.array([60.0, 70.0]))}
     html = render(info=info, summary=_summary(), bands=None, maps=[], pressures=pressures, criteria=Criteria(),
                   units=SI)
-    assert "Changes since the last run" in html and "A1" in html and "2026-01-01" in html
+    assert "Changes since the last run" in html and "/runs/2026-01-01/pressure.gpkg" in html
+    assert "<td>newly_flagged</td><td class=\"num\">1</td>" in html
     # 1150 ft * 0.3048 = 350.52 m; 80 psi * 6.894757 = 551.6 kPa (NIST SP 811 factor, secondary)
     assert "high water 350.5 to 353.6 m" in html
     assert "551.6 kPa" in html

@@ -11,6 +11,7 @@ customers sorted by block so each block is read once.
 from __future__ import annotations
 
 import logging
+import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -73,6 +74,10 @@ class TerrainResult:
 def _open(path: Path):
     if not path.exists():
         raise InputError("raster not found (from terrain.paths); check the path", path=path, key="terrain.paths")
+    if path.is_dir():
+        raise InputError("is a folder, not a raster (from terrain.paths); list the raster files", path=path, key="terrain.paths")
+    if not os.access(path, os.R_OK):
+        raise InputError("cannot read the raster (from terrain.paths); check its permissions", path=path, key="terrain.paths")
     try:
         return rasterio.open(path)
     except rasterio.errors.RasterioIOError as exc:

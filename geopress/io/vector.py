@@ -6,6 +6,7 @@ Errors name the file, the layer and the field, and say what to do.
 from __future__ import annotations
 
 import logging
+import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,9 +38,14 @@ def resolve_layer(path: Path, layer: str | None, key: str) -> str:
     """The layer to read: ``layer`` checked against the file, or its only layer."""
     if not path.exists():
         raise InputError(f"file not found (from {key}.path); check the path", path=path, key=f"{key}.path")
+    if not os.access(path, os.R_OK):
+        raise InputError(f"cannot read the file (from {key}.path); check its permissions", path=path, key=f"{key}.path")
     try:
         layers = pyogrio.list_layers(path)
     except Exception as exc:  # pyogrio raises DataSourceError and friends
+        if path.is_dir():
+            raise InputError(f"is a folder GDAL cannot open as vector data; point {key}.path at the data file",
+                             path=path, key=f"{key}.path") from exc
         raise InputError(
             f"not a vector dataset GDAL can open ({str(exc).splitlines()[0]}); check {key}.path", path=path, key=f"{key}.path"
         ) from exc
@@ -117,27 +123,27 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     check_fields(path, layer, info, wanted)
     crs = _crs(path, layer, info["crs"])
     if info["features"] == 0:
-        raise InputError(f"layer '{layer}' has no features; check the export that wrote it", path=path, key="customers.layer")
+        raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
     columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
     try:
         df = pyogrio.read_dataframe(path, layer=layer, columns=columns, use_arrow=True)
     except Exception as exc:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
     if len(df) == 0:
-        raise InputError(f"layer '{layer}' has no features; check the export that wrote it", path=path, key="customers.layer")
+        raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
     ids = df[cfg.id_field]
     if ids.isna().any():
         first = np.flatnonzero(ids.isna().to_numpy())[:5] + 1
         raise InputError(
-            f"field '{cfg.id_field}' is empty in features {_fmt_list(first)}; give every customer an id",
+            f"field '{cfg.id_field}' (customers.id_field) is empty in features {_fmt_list(first)}; give every customer an id",
             path=path,
             key="customers.id_field",
         )
     dup = ids[ids.duplicated(keep=False)]
     if len(dup):
         raise InputError(
-            f"field '{cfg.id_field}' has duplicate ids: {_fmt_list(pd.unique(dup))}; ids must be unique",
+            f"field '{cfg.id_field}' (customers.id_field) has duplicate ids: {_fmt_list(pd.unique(dup))}; ids must be unique",
             path=path,
             key="customers.id_field",
         )
@@ -151,7 +157,7 @@ def read_customers(cfg: CustomersConfig) -> Customers:
         if bad.any():
             sample = ids[bad].head(5).tolist()
             raise InputError(
-                f"field '{cfg.floors_field}' must be a whole number of stories >= 1; customers {_fmt_list(sample)} "
+                f"field '{cfg.floors_field}' (customers.floors_field) must be a whole number of stories >= 1; customers {_fmt_list(sample)} "
                 f"have {_fmt_list(df[cfg.floors_field][bad].head(5).tolist())}",
                 path=path,
                 key="customers.floors_field",

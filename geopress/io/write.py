@@ -6,6 +6,15 @@ of them are complete are they renamed into place, GeoPackage first and
 ``run.json`` last. On any failure the temporary files are removed and the
 earlier outputs stay byte-identical. Temporary files left by a killed run are
 removed by the next run.
+
+With a ``journal`` the multi-file commit is all or nothing: the journal lists
+every (temporary, target, backup) before the first rename, each earlier
+target is renamed to its backup before the new file takes its place, and the
+journal is deleted once all are in place (the commit point). A failure during
+the renames puts the backups back at once; a process killed during them
+leaves the journal, and :func:`recover` (called by the next run before it
+writes anything) puts them back then. Renames need no free space, so a full
+disk cannot stop a rollback.
 """
 
 from __future__ import annotations
@@ -15,6 +24,7 @@ import json
 import logging
 import os
 import tempfile
+from glob import escape as glob_escape
 from pathlib import Path
 from typing import Any, Callable, Mapping
 
@@ -56,20 +66,21 @@ class Staging:
     """Collects outputs in temporary files, then renames them all into place.
 
     Use as a context manager; :meth:`commit` publishes, leaving the block
-    without committing (an exception) removes every temporary file.
+    without committing (an exception) removes every temporary file. With a
+    ``journal`` path the commit is rolled back on failure (see the module
+    docstring).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, journal_for: Path | None = None) -> None:
         self._pending: list[tuple[Path, Path]] = []
         self.committed: list[Path] = []
+        self.journal_for = journal_for
+        self.journal = None if journal_for is None else journal_path(journal_for)
 
     def temp_for(self, target: Path) -> Path:
         """A fresh temporary path beside ``target`` with the same suffix."""
         remove_stale_temps(target)
-        fd, name = tempfile.mkstemp(prefix=f".{target.name}{TMP_MARK}", suffix=target.suffix, dir=target.parent)
-        os.close(fd)
-        os.unlink(name)  # writers such as GDAL want to create the file themselves
-        tmp = Path(name)
+        tmp = _fresh_name(target, "")
         self._pending.append((tmp, target))
         return tmp
 
@@ -83,17 +94,45 @@ class Staging:
 
     def commit(self) -> None:
         """Rename every staged file into place, in the order staged."""
-        for tmp, target in self._pending:
-            os.replace(tmp, target)
-            self.committed.append(target)
+        if self.journal is None:
+            for tmp, target in self._pending:
+                os.replace(tmp, target)
+                self.committed.append(target)
+            self._pending.clear()
+            return
+        entries = [
+            {"tmp": str(tmp), "target": str(target), "backup": str(_fresh_name(target, "old-")) if target.exists() else None}
+            for tmp, target in self._pending
+        ]
+        try:
+            _write_journal(self.journal_for, entries)
+        except OSError as exc:
+            raise OutputError(f"cannot write the commit journal ({exc.strerror or exc}); check free space and permissions",
+                              path=self.journal) from exc
+        try:
+            for e in entries:
+                if e["backup"]:
+                    os.replace(e["target"], e["backup"])
+                os.replace(e["tmp"], e["target"])
+        except BaseException as exc:
+            _rollback(entries)
+            self.journal.unlink()
+            self._pending.clear()
+            if isinstance(exc, OSError):
+                raise OutputError(f"cannot move the new outputs into place ({exc.strerror or exc}); the earlier "
+                                  "outputs were put back; check permissions", path=e["target"]) from exc
+            raise
+        self.journal.unlink()  # the commit point
+        for e in entries:
+            if e["backup"]:
+                _unlink(Path(e["backup"]))
+        self.committed.extend(target for _, target in self._pending)
         self._pending.clear()
 
     def discard(self) -> None:
         for tmp, _ in self._pending:
-            try:
-                tmp.unlink()
-            except FileNotFoundError:
-                pass
+            for p in [tmp, *tmp.parent.glob(glob_escape(tmp.name) + "*")]:
+                _unlink(p)  # with what a writer put beside it (e.g. a -journal file)
         self._pending.clear()
 
     def __enter__(self) -> "Staging":
@@ -101,6 +140,60 @@ class Staging:
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.discard()
+
+
+def _fresh_name(target: Path, tag: str) -> Path:
+    fd, name = tempfile.mkstemp(prefix=f".{target.name}{TMP_MARK}{tag}", suffix=target.suffix, dir=target.parent)
+    os.close(fd)
+    os.unlink(name)  # writers such as GDAL want to create the file themselves
+    return Path(name)
+
+
+def _unlink(path: Path) -> None:
+    try:
+        path.unlink()
+    except FileNotFoundError:
+        pass
+
+
+def journal_path(output: Path) -> Path:
+    """The commit journal of the outputs staged with ``Staging(journal_for=output)``."""
+    return output.parent / f".{output.name}.geopress-commit"
+
+
+def _write_journal(output: Path, entries: list[dict[str, Any]]) -> None:
+    tmp = output.parent / f".{output.name}{TMP_MARK}commit"  # also removed with the stale temporaries
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(entries, fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, journal_path(output))
+    except BaseException:
+        _unlink(tmp)
+        raise
+
+
+def _rollback(entries: list[dict[str, Any]]) -> None:
+    """Undo a partial commit: each earlier output back in place, new ones and temporaries removed."""
+    for e in reversed(entries):
+        tmp, target = Path(e["tmp"]), Path(e["target"])
+        if e["backup"] and Path(e["backup"]).exists():
+            os.replace(e["backup"], target)
+        elif not e["backup"] and not tmp.exists():
+            _unlink(target)  # it did not exist before this commit
+        _unlink(tmp)
+
+
+def recover(output: Path) -> bool:
+    """Roll back a commit that a killed run left half done beside ``output``; True if there was one."""
+    journal = journal_path(output)
+    if not journal.exists():
+        return False
+    _rollback(json.loads(journal.read_text(encoding="utf-8")))  # written whole by one rename
+    journal.unlink()
+    log.warning("a previous run was stopped while moving its outputs into place; the outputs before it were restored")
+    return True
 
 
 def write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:

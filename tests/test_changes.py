@@ -1,0 +1,230 @@
+"""Change tracking between runs: the pure comparison, then a second run over changed customers."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import pandas as pd
+import pytest
+import shapely
+from hypothesis import given
+from hypothesis import strategies as st
+
+from geopress import changes
+from geopress.classify import FLAGGED_LAYERS, STATUSES
+
+from conftest import customer_records
+from nightly_support import assert_bad, good_run, run
+
+
+def table(prev: dict, cur: dict) -> pd.DataFrame:
+    return changes.compare(pd.Series(list(prev), dtype=object), pd.Series(list(prev.values()), dtype=object),
+                           pd.Series(list(cur), dtype=object), pd.Series(list(cur.values()), dtype=object))
+
+
+def kinds(t: pd.DataFrame) -> dict[str, str]:
+    return dict(zip(t["key"], t["change"]))
+
+
+def test_each_change():
+    t = table({"a": "ok", "b": "high", "c": "low", "d": "high", "e": "ok", "g": "high"},
+              {"a": "high", "b": "ok", "c": "above_hgl", "e": "ok", "f": "low", "g": "no_terrain"})
+    assert kinds(t) == {"a": "newly_flagged", "b": "cleared", "c": "status_changed", "d": "removed",
+                        "e": "unchanged", "f": "new_customer", "g": "status_changed"}
+
+
+def test_first_run_finds_every_customer_new():
+    t = table({}, {"a": "high", "b": "ok"})
+    assert kinds(t) == {"a": "new_customer", "b": "new_customer"}
+    assert changes.summarise(t, None).newly_in_status["high"] == 1
+
+
+def test_ids_are_compared_as_text():
+    t = changes.compare(pd.Series([1, 2]), pd.Series(["ok", "high"]), pd.Series(["1", "2"]), pd.Series(["ok", "high"]))
+    assert set(t["change"]) == {"unchanged"}
+
+
+def test_newly_in_status_counts_new_customers_and_changed_statuses_not_repeats():
+    t = table({"a": "ok", "b": "high", "c": "low"}, {"a": "high", "b": "high", "c": "above_hgl", "n": "high"})
+    rows = changes.newly_in_status(t)
+    cur_keys = t.loc[t["current_row"] >= 0, "key"].to_numpy()
+    assert sorted(cur_keys[rows["high"]]) == ["a", "n"]  # b was already high: not mailed again
+    assert list(cur_keys[rows["above_hgl"]]) == ["c"]
+    assert rows["low"].size == 0 and rows["low_upper_floors"].size == 0
+
+
+status = st.sampled_from(STATUSES)
+
+
+@given(st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12),
+       st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12))
+def test_every_customer_of_either_run_gets_exactly_one_change(prev, cur):
+    t = table(prev, cur)
+    assert sorted(t["key"]) == sorted(set(prev) | set(cur))  # one row per customer
+    assert set(t["change"]) <= set(changes.CHANGES)
+    for key, change in kinds(t).items():
+        before, now = prev.get(key), cur.get(key)
+        expected = ("new_customer" if before is None else "removed" if now is None else "unchanged" if before == now
+                    else "newly_flagged" if before not in FLAGGED_LAYERS and now in FLAGGED_LAYERS
+                    else "cleared" if before in FLAGGED_LAYERS and now == "ok" else "status_changed")
+        assert change == expected, (key, before, now)
+    assert sum(changes.counts(t).values()) == len(t)
+
+
+# ---------------------------------------------------------------------------- through the command line
+
+
+def rewrite(world, accounts: list[str], xs: list[float], ys: list[float]) -> None:
+    import geopandas as gpd
+
+    recs = customer_records(xs, ys)
+    recs["account"] = accounts
+    recs["owner"] = [f"Owner of {a}" for a in accounts]
+    recs["mail_address"] = [f"{a} Test Row" for a in accounts]
+    world.customers_path.unlink()
+    gpd.GeoDataFrame(recs, geometry=[shapely.Point(x, y) for x, y in zip(xs, ys)], crs="EPSG:32631").to_file(
+        world.customers_path, layer="parcels", driver="GPKG")
+
+
+def csv_accounts(world, name: str) -> list[str]:
+    return pd.read_csv(world.out.parent / "mailing" / f"{name}.csv", dtype=str)["accounts"].tolist()
+
+
+@pytest.fixture
+def changed(world):
+    """Two runs: the world, then the same customers with five changes; returns the expected changes."""
+    good_run(world)
+    first = world.read()
+    x = shapely.get_x(first.geometry.to_numpy())
+    y = shapely.get_y(first.geometry.to_numpy())
+    acc = first["account"].tolist()
+    by = {s: [i for i, v in enumerate(first["status"]) if v == s] for s in STATUSES}
+    assert by["ok"] and by["high"] and by["low"] and by["above_hgl"]  # the world has each of them
+    xs, ys, accounts = list(x), list(y), list(acc)
+    ok1, ok2 = by["ok"][0], by["ok"][1]
+    high, low = by["high"][0], by["low"][0]
+    xs[ok1] = x[high]  # an ok customer moved to where customers are high: newly flagged
+    xs[high] = x[ok2]  # a high customer moved to where customers are ok: cleared
+    xs[low] = x[by["above_hgl"][0]]  # low to above_hgl: changed
+    removed = by["ok"][2]
+    keep = [i for i in range(len(accounts)) if i != removed]
+    xs, ys, accounts = [xs[i] for i in keep], [ys[i] for i in keep], [accounts[i] for i in keep]
+    xs.append(x[low]); ys.append(y[low]); accounts.append("N0001")  # a new customer where customers are low
+    rewrite(world, accounts, xs, ys)
+    expected = {acc[ok1]: ("ok", "high", "newly_flagged"), acc[high]: ("high", "ok", "cleared"),
+                acc[low]: ("low", "above_hgl", "status_changed"), acc[removed]: ("ok", None, "removed"),
+                "N0001": (None, "low", "new_customer")}
+    return expected, first.iloc[removed]
+
+
+def test_second_run_reports_exactly_the_changes_made(world, changed):
+    expected, removed_row = changed
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    layer = world.read("changes")
+    got = {r.account: (r.previous_status, r.status, r.change) for r in layer.itertuples()}
+    got = {k: tuple(None if pd.isna(v) else v for v in t) for k, t in got.items()}
+    assert got == expected
+    gone = layer[layer["change"] == "removed"].iloc[0]
+    assert gone.geometry.equals(removed_row.geometry) and gone["zone"] == removed_row["zone"]
+
+    info = json.loads((world.out.parent / "run.json").read_text())
+    assert info["changes"]["baseline"] == str(world.out)
+    assert info["changes"]["counts"] == {"new_customer": 1, "removed": 1, "unchanged": 16, "newly_flagged": 1,
+                                         "cleared": 1, "status_changed": 1}
+    assert info["changes"]["newly_in_status"] == {"high": 1, "low": 1, "above_hgl": 1, "low_upper_floors": 0}
+
+    new = {now: k for k, (_, now, _) in expected.items() if now in FLAGGED_LAYERS}
+    assert csv_accounts(world, "new_high_pressure") == [new["high"]]
+    assert csv_accounts(world, "new_low_pressure") == ["N0001"]
+    assert csv_accounts(world, "new_above_hgl") == [new["above_hgl"]]
+    assert csv_accounts(world, "new_upper_floors") == []
+    # the full lists still list everyone flagged
+    assert len(csv_accounts(world, "high_pressure")) == int((world.read()["status"] == "high").sum())
+
+
+def test_a_rerun_without_changes_mails_nobody(world):
+    good_run(world)
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    assert len(world.read("changes")) == 0
+    for name in FLAGGED_LAYERS.values():
+        assert csv_accounts(world, f"new_{name}") == []
+
+
+def test_first_run_lists_every_flagged_customer_as_new(world):
+    good_run(world)
+    cust = world.read()
+    assert sorted(csv_accounts(world, "new_high_pressure")) == sorted(cust.loc[cust["status"] == "high", "account"])
+    assert set(world.read("changes")["change"]) == {"new_customer"}
+
+
+def test_baseline_option_compares_with_a_chosen_geopackage(world, changed):
+    expected, _ = changed
+    saved = world.root / "last_mailed.gpkg"
+    shutil.copy(world.out, saved)  # the first run's output, as mailed
+    assert run(world).exit_code == 0  # second run: the changes
+    res = run(world, "--baseline", saved)  # third run: still against the first
+    assert res.exit_code == 0, res.stderr
+    assert set(world.read("changes")["account"]) == set(expected)
+    info = json.loads((world.out.parent / "run.json").read_text())
+    assert info["changes"]["baseline"] == str(saved)
+
+
+def test_missing_baseline(world):
+    good_run(world)
+    assert_bad(run(world, "--baseline", world.root / "nope.gpkg"), "nope.gpkg", "--baseline", "not found")
+
+
+def test_baseline_that_is_not_a_geopress_output(world):
+    good_run(world)
+    assert_bad(run(world, "--baseline", world.zones_path), str(world.zones_path), "no layer 'customers'",
+               "layers there: zones", "--baseline")
+
+
+def test_previous_output_without_the_id_field(world):
+    good_run(world)
+    import geopandas as gpd
+
+    cust = gpd.read_file(world.customers_path, layer="parcels")
+    cust["meter"] = [f"M{i}" for i in range(len(cust))]  # the utility switches to meter numbers as ids
+    world.customers_path.unlink()
+    cust.to_file(world.customers_path, layer="parcels", driver="GPKG")
+    world.config_path.write_text(world.config_path.read_text().replace('id_field = "account"', 'id_field = "meter"'))
+    assert_bad(run(world), str(world.out), "no field 'meter'", "output.path", "move the file away")
+
+
+def test_most_customers_missing_warns(world):
+    good_run(world)
+    first = world.read()
+    keep = first.iloc[:5]
+    rewrite(world, keep["account"].tolist(), list(shapely.get_x(keep.geometry.to_numpy())),
+            list(shapely.get_y(keep.geometry.to_numpy())))
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    assert any(line.startswith("warning:") and "15 of the baseline's 20 customers are missing" in line
+               for line in res.stderr.splitlines()), res.stderr
+
+
+def test_log_file_ends_each_run_with_one_summary_line(world, changed):
+    log = world.root / "nightly.log"
+    assert run(world, "--log-file", log).exit_code == 0
+    world.config_path.write_text(world.config_path.read_text().replace('id_field = "account"', 'id_field = "acct"'))
+    assert run(world, "--log-file", log).exit_code == 2
+    lines = log.read_text().splitlines()
+    ends = [i for i, line in enumerate(lines) if " run done: " in line or " run failed: " in line]
+    starts = [i for i, line in enumerate(lines) if " run started: " in line]
+    assert len(starts) == 2 and len(ends) == 2 and ends[-1] == len(lines) - 1 and starts[1] == ends[0] + 1
+    done, failed = lines[ends[0]], lines[ends[1]]
+    assert ("exit 0: 20 customers:" in done and "high " in done
+            and "changes: new_customer 1, removed 1, newly_flagged 1, cleared 1, status_changed 1;" in done)
+    assert done.rstrip().endswith(" s")
+    assert "run failed: exit 2: " in failed and "no field 'acct'" in failed
+    assert all(line[:4].isdigit() and " geopress[" in line for line in lines)  # timestamped, pid-tagged
+
+
+def test_run_prints_what_changed(world, changed):
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    assert f"changes since {world.out}: new_customer 1, removed 1, newly_flagged 1, cleared 1, status_changed 1" in res.stdout

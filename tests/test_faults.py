@@ -1,0 +1,229 @@
+"""Faults injected at each write step: earlier outputs stay byte-identical, no temporary file survives.
+
+The write steps of a run, in order: the GeoPackage, each mailing list CSV,
+run.json (all into temporary files), the commit journal, then the renames
+(each earlier output to its backup, each new file into place, run.json
+last). Each is failed with an OSError (ENOSPC: disk full), with an
+exception, and by killing the process (SIGKILL, from a small driver run in
+a subprocess).
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from geopress.io import write as write_io
+
+from nightly_support import error_line, good_run, run, snapshot
+
+ROOT = Path(__file__).resolve().parents[1]
+#: renames in a second run's commit: the journal, then a backup and a new file for each of 11 outputs
+#: (GeoPackage, 4 mailing lists, 4 new_* lists, report.html, run.json).
+COMMIT_RENAMES = 1 + 2 * 11
+
+
+def disk_full(*args, **kwargs):
+    raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+
+def bug(*args, **kwargs):
+    raise RuntimeError("injected fault")
+
+
+@pytest.fixture
+def prior(world):
+    """One good run, then a config whose next run would change every output."""
+    snap = good_run(world)
+    world.config_path.write_text(world.config_path.read_text().replace("max_static_psi = 80.0", "max_static_psi = 70.0"))
+    return snap
+
+
+def visible(snap: dict[str, bytes]) -> dict[str, bytes]:
+    return {k: v for k, v in snap.items() if not Path(k).name.startswith(".")}
+
+
+def then_a_good_run_leaves_no_temporary(world) -> None:
+    res = run(world)
+    assert res.exit_code == 0, res.stderr
+    assert not [k for k in snapshot(world.out.parent) if Path(k).name.startswith(".")]
+
+
+def fail_on_call(real, n: int, fault):
+    """``real`` with its n-th call (1-based) replaced by ``fault``."""
+    calls = [0]
+
+    def wrapper(*args, **kwargs):
+        calls[0] += 1
+        if calls[0] == n:
+            return fault(*args, **kwargs)
+        return real(*args, **kwargs)
+
+    return wrapper
+
+
+def after_partial_write(real, fault):
+    """Write, then fail: the temporary file exists when the fault strikes."""
+
+    def wrapper(path, *args, **kwargs):
+        real(path, *args, **kwargs)
+        assert Path(path).exists()
+        return fault()
+
+    return wrapper
+
+
+WRITERS = [("write_geopackage", 1), ("write_csv", 1), ("write_csv", 8), ("write_json", 1)]
+
+
+@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "No space left on device"), (bug, 1, "injected fault")])
+@pytest.mark.parametrize("writer, n", WRITERS)
+def test_fault_in_a_writer(world, prior, monkeypatch, writer, n, fault, code, text):
+    monkeypatch.setattr(write_io, writer, fail_on_call(getattr(write_io, writer), n, fault))
+    assert text in error_line(run(world), code)
+    assert snapshot(world.out.parent) == prior
+    monkeypatch.undo()
+    then_a_good_run_leaves_no_temporary(world)
+
+
+@pytest.mark.parametrize("writer", ["write_geopackage", "write_csv", "write_json"])
+def test_disk_full_after_a_partial_write(world, prior, monkeypatch, writer):
+    monkeypatch.setattr(write_io, writer, after_partial_write(getattr(write_io, writer), disk_full))
+    assert "No space left on device" in error_line(run(world), 2)
+    assert snapshot(world.out.parent) == prior
+
+
+@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "cannot write the commit journal (No space left"),
+                                               (bug, 1, "injected fault")])
+def test_fault_writing_the_commit_journal(world, prior, monkeypatch, fault, code, text):
+    monkeypatch.setattr(os, "replace", fail_on_call(os.replace, 1, fault))  # the journal's own rename
+    assert text in error_line(run(world), code)
+    assert snapshot(world.out.parent) == prior
+
+
+@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "the earlier outputs were put back"),
+                                               (bug, 1, "injected fault")])
+@pytest.mark.parametrize("n", [2, 3, 12, COMMIT_RENAMES])
+def test_fault_during_the_renames_is_rolled_back(world, prior, monkeypatch, n, fault, code, text):
+    journal_writes = []
+    real_journal = write_io._write_journal
+    monkeypatch.setattr(write_io, "_write_journal", lambda *a: (journal_writes.append(1), real_journal(*a)))
+    monkeypatch.setattr(os, "replace", fail_on_call(os.replace, n, fault))
+    assert text in error_line(run(world), code)
+    assert journal_writes == [1]
+    assert snapshot(world.out.parent) == prior
+    monkeypatch.undo()
+    then_a_good_run_leaves_no_temporary(world)
+
+
+def test_the_last_rename_is_run_json(world, prior, monkeypatch):
+    renamed = []
+    real = os.replace
+    monkeypatch.setattr(os, "replace", lambda a, b: (renamed.append(Path(b).name), real(a, b)))
+    assert run(world).exit_code == 0
+    assert len(renamed) == COMMIT_RENAMES and renamed[-1] == "run.json" and renamed[2] == "pressure.gpkg"
+
+
+def test_interrupt_during_the_renames_is_rolled_back(world, prior, monkeypatch):
+    def interrupt(*args):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(os, "replace", fail_on_call(os.replace, 7, interrupt))
+    assert "interrupted" in error_line(run(world), 130)
+    assert snapshot(world.out.parent) == prior
+
+
+# ---------------------------------------------------------------------------- a killed process
+
+DRIVER = textwrap.dedent("""\
+    import os, signal, sys
+    import geopress.io.write as w
+    target, n, when = sys.argv[1], int(sys.argv[2]), sys.argv[3]
+    owner = os if target == "replace" else w
+    real = getattr(owner, target)
+    calls = [0]
+    def killer(*args, **kwargs):
+        calls[0] += 1
+        if calls[0] == n:
+            if when == "after":
+                real(*args, **kwargs)
+            os.kill(os.getpid(), signal.SIGKILL)
+        return real(*args, **kwargs)
+    setattr(owner, target, killer)
+    from geopress.cli import main
+    main(["run", sys.argv[4]])
+""")
+
+
+def killed_run(world, target: str, n: int, when: str) -> None:
+    proc = subprocess.run([sys.executable, "-c", DRIVER, target, str(n), when, str(world.config_path)],
+                          env={**os.environ, "PYTHONPATH": str(ROOT)}, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr
+
+
+@pytest.mark.parametrize("target, n, when", [
+    ("write_geopackage", 1, "after"),
+    ("write_csv", 3, "before"),
+    ("write_json", 1, "after"),
+])
+def test_killed_while_writing(world, prior, target, n, when):
+    killed_run(world, target, n, when)
+    assert visible(snapshot(world.out.parent)) == visible(prior)  # the earlier outputs, untouched
+    assert any(Path(k).name.startswith(".") for k in snapshot(world.out.parent))  # the killed run's leftovers
+    then_a_good_run_leaves_no_temporary(world)
+
+
+@pytest.mark.parametrize("n, when", [(1, "after"), (2, "after"), (3, "after"), (12, "before"), (COMMIT_RENAMES, "before"),
+                                     (COMMIT_RENAMES, "after")])
+def test_killed_during_the_renames_is_rolled_back_by_the_next_run(world, prior, n, when):
+    killed_run(world, "replace", n, when)
+    # The next run, even one that then fails on its input, first puts the earlier outputs back.
+    world.config_path.write_text(world.config_path.read_text().replace('id_field = "account"', 'id_field = "acct"'))
+    res = run(world)
+    assert "no field 'acct'" in error_line(res, 2)
+    warns = [line for line in res.stderr.splitlines() if line.startswith("warning:")]
+    assert any("taking it over" in w for w in warns), res.stderr
+    assert snapshot(world.out.parent) == prior
+    world.config_path.write_text(world.config_path.read_text().replace('id_field = "acct"', 'id_field = "account"'))
+    then_a_good_run_leaves_no_temporary(world)
+
+
+# ---------------------------------------------------------------------------- other things a nightly job meets
+
+
+def test_stale_temporary_files_are_removed(world, prior):
+    out = world.out.parent
+    left = [out / f".pressure.gpkg{write_io.TMP_MARK}abc123.gpkg", out / f".pressure.gpkg{write_io.TMP_MARK}abc123.gpkg-journal",
+            out / "mailing" / f".high_pressure.csv{write_io.TMP_MARK}x.csv", out / f".run.json{write_io.TMP_MARK}y.json"]
+    for p in left:
+        p.write_bytes(b"half written")
+    then_a_good_run_leaves_no_temporary(world)
+
+
+def test_output_geopackage_open_in_a_reader(world, prior):
+    # A GIS user has the GeoPackage open: on POSIX the rename gives the reader its old file, the run goes on.
+    reader = sqlite3.connect(f"file:{world.out}?mode=ro", uri=True)
+    try:
+        reader.execute("BEGIN")
+        before = reader.execute("SELECT count(*) FROM customers WHERE status = 'high'").fetchone()[0]
+        res = run(world)
+        assert res.exit_code == 0, res.stderr
+        assert reader.execute("SELECT count(*) FROM customers WHERE status = 'high'").fetchone()[0] == before
+    finally:
+        reader.close()
+    assert snapshot(world.out.parent)["pressure.gpkg"] != prior["pressure.gpkg"]
+
+
+def test_read_only_output_file_is_replaced(world, prior):
+    # Permissions on the file do not protect it from a rename; the folder's do (see test_bad_inputs).
+    world.out.chmod(0o444)
+    then_a_good_run_leaves_no_temporary(world)
+    assert world.out.read_bytes() != prior["pressure.gpkg"]
