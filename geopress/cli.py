@@ -109,11 +109,19 @@ def cli(ctx: click.Context, verbose: int, quiet: int, debug: bool) -> None:
 
 @cli.command("run")
 @click.argument("config", type=click.Path(path_type=Path))
+@click.option("--engine", type=click.Choice(pipeline.ENGINES), default="local", show_default=True,
+              help="local: in this process; dask: zone join and terrain per spatial partition on dask.distributed "
+                   "(pip install 'geopress[dask]').")
+@click.option("--scheduler", metavar="ADDRESS", default=None,
+              help="dask scheduler address (e.g. tcp://10.0.0.5:8786); default: a LocalCluster for this run.")
+@click.option("--partitions", type=click.IntRange(min=1), default=None,
+              help="Spatial partitions for --engine dask (default: two per worker thread).")
 @click.pass_context
 @guarded
-def run_cmd(ctx: click.Context, config: Path) -> None:
+def run_cmd(ctx: click.Context, config: Path, engine: str, scheduler: str | None, partitions: int | None) -> None:
     """Run the screening described by CONFIG and write its outputs."""
-    result = pipeline.run(load_config(config), progress=_progress(ctx))
+    result = pipeline.run(load_config(config), progress=_progress(ctx), engine=engine, scheduler=scheduler,
+                          partitions=partitions)
     click.echo(_summary(result))
 
 

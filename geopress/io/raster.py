@@ -69,9 +69,27 @@ class RasterReport:
 
 @dataclass
 class TerrainResult:
+    """Ground elevations, ft, with what was read for them.
+
+    ``ranges`` maps each raster group's label to its unit and the lowest and
+    highest elevation sampled from it, ft (for :func:`warn_implausible`).
+    """
+
     ground_ft: np.ndarray
     rasters: list[RasterReport] = field(default_factory=list)
     inside_any: int = 0
+    ranges: dict[str, tuple[str, float, float]] = field(default_factory=dict)
+
+
+def warn_implausible(result: TerrainResult, stacklevel: int = 2) -> None:
+    """A TerrainWarning for each raster group whose sampled elevations are not plausible ground."""
+    for label, (unit, lo, hi) in result.ranges.items():
+        if np.isfinite(lo) and (lo < PLAUSIBLE_FT[0] or hi > PLAUSIBLE_FT[1]):
+            warnings.warn(
+                f"{label}: sampled elevations {lo:,.0f} to {hi:,.0f} ft are not plausible ground for vertical "
+                f"unit \"{unit}\"; check terrain.vertical_units",
+                TerrainWarning, stacklevel=stacklevel + 1,
+            )
 
 
 def _open(path: Path):
@@ -155,12 +173,13 @@ def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method:
     return out
 
 
-def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS) -> TerrainResult:
+def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *, warn: bool = True) -> TerrainResult:
     """Ground elevation, ft, at map points ``x``, ``y`` in ``crs``; NaN where no raster has a value.
 
     The rasters are grouped and read as :mod:`geopress.io.mosaic` describes;
     each customer is reprojected to the CRS of the group that serves it.
-    Never more than ``cfg.memory_mb`` of raster is read at once.
+    Never more than ``cfg.memory_mb`` of raster is read at once. With
+    ``warn=False`` implausible elevations are only recorded in ``ranges``.
     """
     ground = np.full(x.shape, np.nan)
     tiles = read_tiles(cfg.paths, cfg.vertical_units)
@@ -185,17 +204,15 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS) -
         rows = inv.d * rx + inv.e * ry + inv.f
         inside_any[todo] |= (cols >= 0) & (cols < group.width) & (rows >= 0) & (rows < group.height)
         max_pixels = memory_bytes / np.dtype(group.dtype).itemsize
-        with open_group(group) as src:
+        # GDAL_NUM_THREADS: GeoTIFF blocks of one read are decompressed on every core
+        with rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS"), open_group(group) as src:
             values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles])
         ft = values * feet_per_unit(group.unit)
         lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
-        if np.isfinite(lo) and (lo < PLAUSIBLE_FT[0] or hi > PLAUSIBLE_FT[1]):
-            warnings.warn(
-                f"{group.label()}: sampled elevations {lo:,.0f} to {hi:,.0f} ft are not plausible ground for vertical "
-                f"unit \"{group.unit}\"; check terrain.vertical_units",
-                TerrainWarning, stacklevel=2,
-            )
+        result.ranges[group.label()] = (group.unit, float(lo), float(hi))
         ground[todo] = ft
         log.info("sampled %d customers from %s", int(np.count_nonzero(~np.isnan(ft))), group.label())
     result.inside_any = int(inside_any.sum())
+    if warn:
+        warn_implausible(result)
     return result

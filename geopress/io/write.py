@@ -14,6 +14,7 @@ import json
 import logging
 import os
 import tempfile
+from concurrent.futures import Executor, Future
 from pathlib import Path
 from typing import Any, Callable, Mapping
 
@@ -74,7 +75,16 @@ class Staging:
 
     def write(self, target: Path, writer: Callable[[Path], None]) -> None:
         """Stage ``target`` by calling ``writer(tmp_path)``; OSErrors become OutputError."""
+        self._write_tmp(target, self.temp_for(target), writer)
+
+    def write_in_background(self, target: Path, writer: Callable[[Path], None], pool: Executor) -> Future:
+        """Like :meth:`write`, run on ``pool`` (GDAL releases the GIL while writing, so the
+        other outputs can be written meanwhile); the temporary file keeps its place in the
+        commit order. Call :meth:`wait` on the returned future before committing."""
         tmp = self.temp_for(target)
+        return pool.submit(self._write_tmp, target, tmp, writer)
+
+    def _write_tmp(self, target: Path, tmp: Path, writer: Callable[[Path], None]) -> None:
         try:
             writer(tmp)
         except OSError as exc:
