@@ -14,7 +14,7 @@ repeating one tile cannot serve the reads from cache. It prints wall time,
 peak RSS, the time of the terrain step and the pixels read, for
 
 * 2,000,000 customers on the 100,000 x 100,000 mosaic,
-* 1,000,000 customers (the first half of them) on the same mosaic,
+* 1,000,000 customers drawn the same way (same towns) on the same mosaic,
 * 2,000,000 customers on the 20,000 x 20,000 mosaic,
 
 so that time can be seen to follow the customers and not the pixels.
@@ -150,7 +150,7 @@ def prepare(work: Path, n: int) -> None:
     make_zone(work / "zone.gpkg")
     for name, count in (("customers", n), ("customers_half", n // 2)):
         (work / f"{name}.gpkg").unlink(missing_ok=True)
-        make_customers(work / f"{name}.gpkg", count)  # the same generator: the half is the first n/2 points
+        make_customers(work / f"{name}.gpkg", count)  # same seed and towns, half as many customers
     stamp.write_text(json.dumps(want))
     print(f"generated data in {time.perf_counter() - t0:.1f} s under {work}", flush=True)
 
