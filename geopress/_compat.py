@@ -1,12 +1,16 @@
-"""Optional dependencies, checked once.
+"""Optional dependencies, checked once; each message names the extra to install.
 
 ``HAS_REPORT`` says whether the ``report`` extra (matplotlib and jinja2) is
-installed; :func:`report_missing` names what is missing and what to install.
+installed and :func:`report_missing` names what is missing. :func:`import_dask`
+returns the ``dask`` extra's modules or raises MissingExtraError.
 """
 
 from __future__ import annotations
 
 import importlib.util
+from types import ModuleType
+
+from .errors import MissingExtraError
 
 REPORT_MODULES = ("matplotlib", "jinja2")
 _MISSING_REPORT = tuple(m for m in REPORT_MODULES if importlib.util.find_spec(m) is None)
@@ -18,3 +22,17 @@ def report_missing() -> str | None:
     if HAS_REPORT:
         return None
     return f"{' and '.join(_MISSING_REPORT)} not installed; install the report extra: pip install 'geopress[report]'"
+
+
+def import_dask() -> tuple[ModuleType, ModuleType]:
+    """``(dask_geopandas, distributed)``, or MissingExtraError naming the ``dask`` extra."""
+    try:
+        import dask_geopandas
+        import distributed
+    except ImportError as exc:
+        raise MissingExtraError(
+            f"the dask engine needs dask-geopandas and dask.distributed ({exc.name or exc} is missing); "
+            "install them with pip install 'geopress[dask]' or run with --engine local",
+            key="engine",
+        ) from exc
+    return dask_geopandas, distributed

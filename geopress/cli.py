@@ -181,15 +181,24 @@ def _run_line(result: pipeline.Result) -> str:
               help="Compare with this earlier geopress GeoPackage instead of the previous output.")
 @click.option("--log-file", type=click.Path(path_type=Path, dir_okay=False),
               help="Append a plain-text log here; each run ends with one summary line.")
+@click.option("--engine", type=click.Choice(pipeline.ENGINES), default="local", show_default=True,
+              help="local: in this process; dask: zone join and terrain per spatial partition on dask.distributed "
+                   "(pip install 'geopress[dask]').")
+@click.option("--scheduler", metavar="ADDRESS", default=None,
+              help="dask scheduler address (e.g. tcp://10.0.0.5:8786); default: a LocalCluster for this run.")
+@click.option("--partitions", type=click.IntRange(min=1), default=None,
+              help="Spatial partitions for --engine dask (default: two per worker thread).")
 @click.pass_context
 @guarded
 def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_dir: Path | None,
-            baseline: Path | None, log_file: Path | None) -> None:
+            baseline: Path | None, log_file: Path | None, engine: str, scheduler: str | None,
+            partitions: int | None) -> None:
     """Run the screening described by CONFIG and write its outputs."""
     if log_file is not None:
         _open_log(ctx, log_file)
         log.info("run started: %s", config.resolve())
-    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline)
+    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline,
+                          engine=engine, scheduler=scheduler, partitions=partitions)
     click.echo(_summary(result))
     since = result.info["changes"]["baseline"] or "no earlier run"
     click.echo(f"changes since {since}: {_changes_text(result)}")

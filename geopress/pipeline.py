@@ -12,6 +12,7 @@ import logging
 import os
 import time
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -31,7 +32,7 @@ from ._compat import report_missing
 from . import nightly
 from ._version import __version__
 from .config import Config, load_config
-from .errors import InputError, OutputError, ZoneOverlapWarning
+from .errors import ConfigError, InputError, OutputError, ZoneOverlapWarning
 from .io import raster as raster_io
 from .io import vector as vector_io
 from .io import write as write_io
@@ -128,8 +129,12 @@ def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
     return [{"zones": [o.zone_a, o.zone_b], "area": o.area} for o in found]
 
 
-def compute(config: Config, clock: _Clock) -> Result:
-    """Read inputs and compute results; writes nothing."""
+ENGINES = ("local", "dask")
+
+
+def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
+            partitions: int | None = None) -> Result:
+    """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`."""
     cfg = config
     crit = cfg.criteria
     with clock.step("read customers"):
@@ -137,9 +142,17 @@ def compute(config: Config, clock: _Clock) -> Result:
     with clock.step("read zones"):
         zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
         overlap_info = _warn_overlaps(zones)
+    # --- scale-out engine: the zone join and terrain sampling per spatial partition on dask
+    joined = None
+    if engine == "dask":
+        from . import engine_dask
+
+        with clock.step("assign zones and sample terrain on dask"):
+            joined = engine_dask.assign_and_sample(cust, zones, cfg.terrain, scheduler=scheduler, partitions=partitions)
+    # ---
     with clock.step("assign zones"):
         pts = cust.frame.geometry.to_numpy()
-        zi = assign(pts, zones.polygons, zones.priority)
+        zi = joined.zone_index if joined else assign(pts, zones.polygons, zones.priority)
         zoned = zi >= 0
         zone = np.where(zoned, zones.zone_ids[np.where(zoned, zi, 0)], None)
         hgl = {s.zone: s.hgl_range(crit.psi_per_ft) for s in cfg.zones.sources}
@@ -149,7 +162,7 @@ def compute(config: Config, clock: _Clock) -> Result:
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
     with clock.step("sample terrain"):
-        terrain = raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs)
+        terrain = joined.terrain if joined else raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs)
         ground = terrain.ground_ft
         sampled = int(np.count_nonzero(~np.isnan(ground)))
         if sampled == 0:
@@ -244,10 +257,13 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
         write_io.ensure_dir(out.path.parent, "output.path")
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         lists = {**result.mailing, **result.new_mailing}
-        with write_io.Staging(journal_for=out.path) as stage:
-            stage.write(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)))
+        with write_io.Staging(journal_for=out.path) as stage, ThreadPoolExecutor(max_workers=1) as pool:
+            # the GeoPackage is written on a thread while the mailing lists are written here
+            gpkg = stage.write_in_background(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)),
+                                             pool)
             for name, df in lists.items():
                 stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
+            gpkg.result()
             info = dict(result.info)
             info["timings_s"] = clock.timings
             info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
@@ -282,7 +298,8 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
 
 
 def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None,
-        baseline: str | os.PathLike | None = None) -> Result:
+        baseline: str | os.PathLike | None = None, engine: str = "local", scheduler: Any = None,
+        partitions: int | None = None) -> Result:
     """Run the screening for ``config`` (a :class:`Config` or a path to a TOML file).
 
     With ``write=True`` (default) the outputs are written atomically under
@@ -290,7 +307,17 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     compared with ``baseline`` (an earlier geopress GeoPackage), by default
     the previous output (see :mod:`geopress.changes`). Raises
     :class:`~geopress.errors.GeopressError` for bad config or input.
+
+    ``engine="dask"`` runs the zone join and terrain sampling per spatial
+    partition on dask.distributed (``pip install 'geopress[dask]'``):
+    ``scheduler`` is a scheduler address, cluster or Client (None starts a
+    LocalCluster), ``partitions`` the number of spatial partitions. The
+    results are identical to ``engine="local"``.
     """
+    if engine not in ENGINES:
+        raise ConfigError(f"engine must be one of {', '.join(ENGINES)}, not {engine!r}", key="engine")
+    if engine == "local" and (scheduler is not None or partitions is not None):
+        raise ConfigError("a scheduler and partitions apply only to the dask engine; add --engine dask", key="engine")
     cfg = _as_config(config)
     clock = _Clock(progress)
     t0 = time.perf_counter()
@@ -300,11 +327,12 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
     with nightly.guarded_outputs(cfg) if write else nullcontext():
         inputs = nightly.snapshot(cfg.input_paths())
-        result = compute(cfg, clock)
+        result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions)
         nightly.check_unchanged(inputs)
         with clock.step("compare with baseline"):
             nightly.track(result, baseline)
         result.info["started"] = started
+        result.info["engine"] = engine
         if write:
             result.outputs = write_outputs(result, clock)
     result.timings = clock.timings

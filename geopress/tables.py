@@ -37,9 +37,19 @@ def neutralise_frame(df: pd.DataFrame) -> pd.DataFrame:
     """A copy of ``df`` with every text cell neutralised."""
     out = df.copy()
     for col in out.columns:
-        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
+        if pd.api.types.is_string_dtype(out[col]) and out[col].dtype != object:
+            text = out[col]
+            risky = text.str.startswith(FORMULA_PREFIXES).fillna(False).to_numpy(dtype=bool)
+            if risky.any():
+                out.loc[risky, col] = "'" + text[risky]
+        elif out[col].dtype == object:
             out[col] = out[col].map(neutralise)
     return out
+
+
+def _join_runs(values: list[str], starts: np.ndarray, ends: np.ndarray) -> list[str]:
+    """``"; "``-joined ``values[s:e]`` for each run."""
+    return ["; ".join(values[s:e]) for s, e in zip(starts.tolist(), ends.tolist())]
 
 
 def mailing_list(
@@ -59,15 +69,29 @@ def mailing_list(
     cols = [*keys, "accounts", "customer_count", "zones", "worst_psi"]
     if sub.empty:
         return pd.DataFrame(columns=cols)
-    sub = sub.assign(_id=sub[id_field].astype(str))
-    grouped = sub.groupby(keys, dropna=False, sort=False)
-    out = grouped.agg(
-        accounts=("_id", lambda s: "; ".join(sorted(s))),
-        customer_count=("_id", "size"),
-        zones=("zone", lambda s: "; ".join(sorted(set(map(str, s))))),
-        worst_psi=(col, how),
-    ).reset_index()
-    out["worst_psi"] = out["worst_psi"].round(1)
+    # vectorised group-by: one integer code per address, then runs of a sort by (code, text)
+    code = sub.groupby(keys, dropna=False, sort=False).ngroup().to_numpy()
+    n_groups = int(code.max()) + 1
+    ids = np.asarray(sub[id_field].astype(str).to_numpy(dtype=object), dtype=str)
+    order = np.lexsort((ids, code))
+    sorted_code = code[order]
+    starts = np.flatnonzero(np.r_[True, sorted_code[1:] != sorted_code[:-1]])
+    ends = np.r_[starts[1:], sorted_code.size]
+    accounts = _join_runs(ids[order].tolist(), starts, ends)
+    zones = np.asarray(sub["zone"].map(str).to_numpy(dtype=object), dtype=str)
+    zorder = np.lexsort((zones, code))
+    zc, zs = code[zorder], zones[zorder]
+    first = np.r_[True, (zc[1:] != zc[:-1]) | (zs[1:] != zs[:-1])]  # distinct zones per address
+    zc, zs = zc[first], zs[first]
+    zstarts = np.flatnonzero(np.r_[True, zc[1:] != zc[:-1]])
+    zends = np.r_[zstarts[1:], zc.size]
+    first_row = order[starts]  # rows sorted by code, so group g's first row is at starts[g]
+    out = sub.iloc[first_row][keys].reset_index(drop=True)
+    out["accounts"] = accounts
+    out["customer_count"] = np.bincount(code, minlength=n_groups)
+    out["zones"] = _join_runs(zs.tolist(), zstarts, zends)
+    worst = pd.Series(sub[col].to_numpy(dtype=np.float64)).groupby(code).agg(how)
+    out["worst_psi"] = worst.reindex(range(n_groups)).to_numpy().round(1)
     ascending = how == "min"
     out = out.sort_values(["worst_psi", "accounts"], ascending=[ascending, True], kind="stable").reset_index(drop=True)
     return neutralise_frame(out[cols])

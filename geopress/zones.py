@@ -33,7 +33,12 @@ def assign(points: ArrayLike, polygons: ArrayLike, priority: ArrayLike) -> NDArr
     if pts.size == 0 or polys.size == 0:
         return result
     tree = shapely.STRtree(polys)
-    pt_idx, poly_idx = tree.query(pts, predicate="intersects")
+    # bounding boxes first, then the exact test against prepared polygons: same pairs as
+    # query(predicate="intersects"), several times faster for many points
+    pt_idx, poly_idx = tree.query(pts)
+    shapely.prepare(polys)
+    hit = shapely.intersects(polys[poly_idx], pts[pt_idx])
+    pt_idx, poly_idx = pt_idx[hit], poly_idx[hit]
     if pt_idx.size == 0:
         return result
     counts = np.bincount(pt_idx, minlength=pts.shape[0])

@@ -300,7 +300,9 @@ def test_dem_without_a_unit_needs_the_config(tmp_path):
 
 def test_first_listed_raster_wins_and_gaps_fall_through(world):
     # "near.tif" covers the western 60 columns at 100 m, with a nodata hole; dem.tif (plane) covers all.
-    # Points: inside near, east of it, in its hole, and 0.1 px inside its east edge (near's own edge fallback).
+    # Both share one pixel grid, so they are read as one mosaic, first listed winning pixel by pixel, and a
+    # point between their pixels interpolates across the seam as on the merged raster.
+    # Points: inside near, east of it, in its hole, and 0.1 px inside its east edge (across the seam).
     near = np.full((100, 60), 100.0)
     near[49:51, 9:11] = -9999.0
     write_raster(world.root / "near.tif", near, DEM_TRANSFORM)
@@ -313,8 +315,10 @@ def test_first_listed_raster_wins_and_gaps_fall_through(world):
     x = np.array([p[0] for p in pts])
     y = np.array([p[1] for p in pts])
     plane_m = world.ground_m(x, y)
+    # across the seam: 0.6 of near's last column (100 m) and 0.4 of dem.tif's first column beyond it
+    seam_m = 0.6 * 100.0 + 0.4 * world.ground_m(*pixel_centre(60, 30))
     # ft -> m and back costs ~1e-13 m; 1e-9 m bounds it
-    np.testing.assert_allclose(ground_m, [100.0, plane_m[1], plane_m[2], 100.0], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(ground_m, [100.0, plane_m[1], plane_m[2], seam_m], rtol=0, atol=1e-9)
     world.write_config(text.replace('paths = ["dem.tif"]', 'paths = ["dem.tif", "near.tif"]'))
     ground_m = geopress.run(world.config_path, write=False).customers["ground_ft"].to_numpy() * M_PER_FT
     np.testing.assert_allclose(ground_m, plane_m, rtol=0, atol=1e-9)

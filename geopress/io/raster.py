@@ -2,10 +2,13 @@
 
 Rasters are tried in the order configured; a customer takes its ground
 elevation from the first raster that has a value there. Points are
-reprojected to each raster's CRS with pyproj (``always_xy``). Only the
+reprojected to each raster's CRS with pyproj (``always_xy``). Tiles on one
+CRS and pixel grid are read as one mosaic (:mod:`geopress.io.mosaic`), so
+bilinear sampling across a seam equals sampling the merged raster. Only the
 windows that hold customers are read: the whole covering window when it fits
-``memory_mb``, otherwise one block (plus a one-pixel halo) at a time, with the
-customers sorted by block so each block is read once.
+``memory_mb``, otherwise windows of whole blocks around the customers, with
+the customers sorted by window so each window is read once
+(:func:`geopress.terrain.plan_windows`).
 """
 
 from __future__ import annotations
@@ -24,7 +27,8 @@ from rasterio.windows import Window
 from ..config import TerrainConfig
 from ..errors import InputError, TerrainWarning
 from ..pressure import feet_per_unit
-from ..terrain import sample_pixels
+from ..terrain import plan_windows, sample_pixels
+from .mosaic import Group, Tile, first_tile, group_tiles, open_group
 
 log = logging.getLogger(__name__)
 
@@ -66,9 +70,27 @@ class RasterReport:
 
 @dataclass
 class TerrainResult:
+    """Ground elevations, ft, with what was read for them.
+
+    ``ranges`` maps each raster group's label to its unit and the lowest and
+    highest elevation sampled from it, ft (for :func:`warn_implausible`).
+    """
+
     ground_ft: np.ndarray
     rasters: list[RasterReport] = field(default_factory=list)
     inside_any: int = 0
+    ranges: dict[str, tuple[str, float, float]] = field(default_factory=dict)
+
+
+def warn_implausible(result: TerrainResult, stacklevel: int = 2) -> None:
+    """A TerrainWarning for each raster group whose sampled elevations are not plausible ground."""
+    for label, (unit, lo, hi) in result.ranges.items():
+        if np.isfinite(lo) and (lo < PLAUSIBLE_FT[0] or hi > PLAUSIBLE_FT[1]):
+            warnings.warn(
+                f"{label}: sampled elevations {lo:,.0f} to {hi:,.0f} ft are not plausible ground for vertical "
+                f"unit \"{unit}\"; check terrain.vertical_units",
+                TerrainWarning, stacklevel=stacklevel + 1,
+            )
 
 
 def _open(path: Path):
@@ -109,83 +131,95 @@ def describe(path: Path, configured_unit: str | None) -> RasterReport:
         return RasterReport(path=str(path), crs=src.crs.to_string(), vertical_unit=unit, shape=(src.height, src.width))
 
 
-def _sample_one(src, cols, rows, method: str, memory_bytes: float, report: RasterReport) -> np.ndarray:
-    """Sample band 1 of ``src`` at fractional pixel coordinates (NaN outside)."""
-    h, w = src.height, src.width
+def read_tiles(paths, configured_unit: str | None) -> list[Tile]:
+    """Open every raster once for its CRS, grid, type, nodata and vertical unit (no pixels read)."""
+    tiles = []
+    for path in paths:
+        with _open(path) as src:
+            if src.crs is None:
+                raise InputError("the raster has no CRS; assign one (e.g. gdal_edit -a_srs) and run again", path=path, key="crs")
+            unit = resolve_unit(src, path, configured_unit)
+            tiles.append(Tile(path=Path(path), crs_wkt=src.crs.to_wkt(), crs_name=src.crs.to_string(),
+                              transform=src.transform, width=src.width, height=src.height, dtype=src.dtypes[0],
+                              nodata=src.nodata, unit=unit, block=tuple(src.block_shapes[0])))
+    return tiles
+
+
+def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method: str, max_pixels: float,
+                  reports: list[RasterReport]) -> np.ndarray:
+    """Sample ``src`` (the group opened) at fractional pixel coordinates of its grid (NaN outside).
+
+    Reads only the windows :func:`~geopress.terrain.plan_windows` plans; each
+    tile's report counts the windows that touched it, its pixels in them and
+    the customers it served.
+    """
+    h, w = group.height, group.width
     out = np.full(cols.shape, np.nan)
     cf, rf = np.floor(cols), np.floor(rows)
     inside = np.flatnonzero((cf >= 0) & (cf < w) & (rf >= 0) & (rf < h))
     if inside.size == 0:
         return out
     ci, ri = cf[inside].astype(np.int64), rf[inside].astype(np.int64)
-    itemsize = np.dtype(src.dtypes[0]).itemsize
-    nodata = src.nodata
-    c0, c1 = max(ci.min() - 1, 0), min(ci.max() + 2, w)
-    r0, r1 = max(ri.min() - 1, 0), min(ri.max() + 2, h)
-    if (c1 - c0) * (r1 - r0) * itemsize <= memory_bytes:
-        windows = [(inside, r0, r1, c0, c1)]
-    else:
-        bh, bw = src.block_shapes[0]
-        block = (ri // bh) * ((w + bw - 1) // bw) + ci // bw
-        order = np.argsort(block, kind="stable")
-        sorted_blocks = block[order]
-        starts = np.flatnonzero(np.r_[True, sorted_blocks[1:] != sorted_blocks[:-1]])
-        ends = np.r_[starts[1:], sorted_blocks.size]
-        nbx = (w + bw - 1) // bw
-        windows = []
-        for s, e in zip(starts, ends):
-            b = int(sorted_blocks[s])
-            br, bc = divmod(b, nbx)
-            windows.append((inside[order[s:e]], max(br * bh - 1, 0), min((br + 1) * bh + 1, h),
-                            max(bc * bw - 1, 0), min((bc + 1) * bw + 1, w)))
-    for idx, wr0, wr1, wc0, wc1 in windows:
-        arr = src.read(1, window=Window(wc0, wr0, wc1 - wc0, wr1 - wr0))
-        # A window edge that is not the raster's edge has a one-pixel halo beyond every
-        # customer in it, so the kernel's edge fallback only triggers at the raster's edge.
-        out[idx] = sample_pixels(arr, cols[idx] - wc0, rows[idx] - wr0, nodata=nodata, method=method)
-        report.windows_read += 1
-        report.pixels_read += arr.size
-    report.customers_sampled += int(np.count_nonzero(~np.isnan(out)))
+    rects = group.tile_rects()
+    for local, r0, r1, c0, c1 in plan_windows(ri, ci, (h, w), group.block, max_pixels):
+        idx = inside[local]
+        arr = src.read(1, window=Window(c0, r0, c1 - c0, r1 - r0))
+        out[idx] = sample_pixels(arr, cols[idx] - c0, rows[idx] - r0, nodata=group.nodata, method=method)
+        touched = np.flatnonzero((rects[:, 0] < r1) & (rects[:, 1] > r0) & (rects[:, 2] < c1) & (rects[:, 3] > c0))
+        got = local[~np.isnan(out[idx])]
+        served = first_tile(rects[touched], ri[got], ci[got])
+        counts = np.bincount(served[served >= 0], minlength=touched.size)
+        for j, t in enumerate(touched):
+            rr0, rr1, cc0, cc1 = rects[t]
+            rep = reports[t]
+            rep.windows_read += 1
+            rep.pixels_read += int((min(r1, rr1) - max(r0, rr0)) * (min(c1, cc1) - max(c0, cc0)))
+            rep.customers_sampled += int(counts[j])
     return out
 
 
-def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS) -> TerrainResult:
-    """Ground elevation, ft, at map points ``x``, ``y`` in ``crs``; NaN where no raster has a value."""
+def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *, warn: bool = True) -> TerrainResult:
+    """Ground elevation, ft, at map points ``x``, ``y`` in ``crs``; NaN where no raster has a value.
+
+    The rasters are grouped and read as :mod:`geopress.io.mosaic` describes;
+    each customer is reprojected to the CRS of the group that serves it.
+    Never more than ``cfg.memory_mb`` of raster is read at once. With
+    ``warn=False`` implausible elevations are only recorded in ``ranges``.
+    """
     ground = np.full(x.shape, np.nan)
-    result = TerrainResult(ground_ft=ground)
-    transformers: dict[str, Transformer] = {}
+    tiles = read_tiles(cfg.paths, cfg.vertical_units)
+    reports = {t.path: RasterReport(path=str(t.path), crs=t.crs_name, vertical_unit=t.unit, shape=(t.height, t.width))
+               for t in tiles}
+    result = TerrainResult(ground_ft=ground, rasters=list(reports.values()))
+    transformers: dict[str, Transformer | None] = {}
     inside_any = np.zeros(x.shape, dtype=bool)
     memory_bytes = cfg.memory_mb * 1024 * 1024
-    for path in cfg.paths:
+    for group in group_tiles(tiles):
         todo = np.flatnonzero(np.isnan(ground) & ~np.isnan(x))
-        with _open(path) as src:
-            if src.crs is None:
-                raise InputError("the raster has no CRS; assign one (e.g. gdal_edit -a_srs) and run again", path=path, key="crs")
-            unit = resolve_unit(src, path, cfg.vertical_units)
-            report = RasterReport(path=str(path), crs=src.crs.to_string(), vertical_unit=unit, shape=(src.height, src.width))
-            result.rasters.append(report)
-            if todo.size == 0:
-                continue
-            key = src.crs.to_wkt()
-            if key not in transformers:
-                transformers[key] = Transformer.from_crs(crs, CRS.from_wkt(key), always_xy=True)
-            rx, ry = transformers[key].transform(x[todo], y[todo])
-            inv = ~src.transform
-            cols = inv.a * rx + inv.b * ry + inv.c
-            rows = inv.d * rx + inv.e * ry + inv.f
-            inside_any[todo] |= (cols >= 0) & (cols < src.width) & (rows >= 0) & (rows < src.height)
-            values = _sample_one(src, cols, rows, cfg.method, memory_bytes, report)
-            ft = values * feet_per_unit(unit)
-            lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
-            if np.isfinite(lo) and (lo < PLAUSIBLE_FT[0] or hi > PLAUSIBLE_FT[1]):
-                warnings.warn(
-                    f"{path}: sampled elevations {lo:,.0f} to {hi:,.0f} ft are not plausible ground for vertical unit "
-                    f"\"{unit}\"; check terrain.vertical_units",
-                    TerrainWarning, stacklevel=2,
-                )
-            ground[todo] = ft
-            log.info("sampled %d customers from %s (%d windows)", report.customers_sampled, path, report.windows_read)
+        if todo.size == 0:
+            break
+        key = group.crs_wkt
+        if key not in transformers:
+            target = CRS.from_wkt(key)
+            transformers[key] = None if target.equals(crs) else Transformer.from_crs(crs, target, always_xy=True)
+        tr = transformers[key]
+        rx, ry = (x[todo], y[todo]) if tr is None else tr.transform(x[todo], y[todo])
+        inv = ~group.transform
+        cols = inv.a * rx + inv.b * ry + inv.c
+        rows = inv.d * rx + inv.e * ry + inv.f
+        inside_any[todo] |= (cols >= 0) & (cols < group.width) & (rows >= 0) & (rows < group.height)
+        max_pixels = memory_bytes / np.dtype(group.dtype).itemsize
+        # GDAL_NUM_THREADS: GeoTIFF blocks of one read are decompressed on every core
+        with rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS"), open_group(group) as src:
+            values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles])
+        ft = values * feet_per_unit(group.unit)
+        lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
+        result.ranges[group.label()] = (group.unit, float(lo), float(hi))
+        ground[todo] = ft
+        log.info("sampled %d customers from %s", int(np.count_nonzero(~np.isnan(ft))), group.label())
     result.inside_any = int(inside_any.sum())
+    if warn:
+        warn_implausible(result)
     return result
 
 

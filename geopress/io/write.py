@@ -19,11 +19,11 @@ disk cannot stop a rollback.
 
 from __future__ import annotations
 
-import glob
 import json
 import logging
 import os
 import tempfile
+from concurrent.futures import Executor, Future
 from glob import escape as glob_escape
 from pathlib import Path
 from typing import Any, Callable, Mapping
@@ -53,7 +53,7 @@ def remove_stale_temps(target: Path) -> list[Path]:
     """Delete temporary files a killed run left beside ``target``."""
     removed = []
     if target.parent.is_dir():
-        for p in target.parent.glob(f".{glob.escape(target.name)}{TMP_MARK}*"):
+        for p in target.parent.glob(f".{glob_escape(target.name)}{TMP_MARK}*"):
             try:
                 p.unlink()
                 removed.append(p)
@@ -86,7 +86,16 @@ class Staging:
 
     def write(self, target: Path, writer: Callable[[Path], None]) -> None:
         """Stage ``target`` by calling ``writer(tmp_path)``; OSErrors become OutputError."""
+        self._write_tmp(target, self.temp_for(target), writer)
+
+    def write_in_background(self, target: Path, writer: Callable[[Path], None], pool: Executor) -> Future:
+        """Like :meth:`write`, run on ``pool`` (GDAL releases the GIL while writing, so the
+        other outputs can be written meanwhile); the temporary file keeps its place in the
+        commit order. Call :meth:`wait` on the returned future before committing."""
         tmp = self.temp_for(target)
+        return pool.submit(self._write_tmp, target, tmp, writer)
+
+    def _write_tmp(self, target: Path, tmp: Path, writer: Callable[[Path], None]) -> None:
         try:
             writer(tmp)
         except OSError as exc:

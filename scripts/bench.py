@@ -1,0 +1,303 @@
+"""Benchmark ``geopress run`` against the script an analyst would write for the same job.
+
+Generates its own data under ``--work`` (deterministic, fixed seed): a
+6000 x 6000 float32 DEM at 1 m (tiled, DEFLATE-compressed GeoTIFF, metres,
+UTM 31N on open ocean), three pressure zones with a tank, a PRV and a pump,
+and N customer points in a GeoPackage (default 1,000,000). Then, alternating
+``--repeat`` times, runs each variant in its own subprocess:
+
+(a) ``geopress run`` end to end (reading, zones, terrain, pressures,
+    statuses, reasons, GeoPackage with every layer, mailing lists, run.json);
+(b) the straightforward script: ``geopandas.read_file``, ``geopandas.sjoin``,
+    rasterio's ``DatasetReader.sample()``, pressures and statuses with numpy,
+    then ``to_file`` of the customers layer and each flagged layer.
+
+Both sample the containing pixel (``method = "nearest"``, which is what
+``sample()`` does), so their statuses must agree; the script checks they do.
+It prints the median wall time and peak resident set size of each variant
+(``wait4`` on the child), their ratio, geopress's time per step, and the
+in-process throughput of the bilinear kernel on the DEM in memory.
+
+    python scripts/bench.py                 # N = 1,000,000
+    python scripts/bench.py --n 100000      # a quick check
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+os.environ.setdefault("OGR_CURRENT_DATE", "2026-01-01T00:00:00Z")
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+CRS = "EPSG:32631"
+SIZE = 6000  # pixels a side, 1 m each
+WEST, NORTH = 400_000.0, 20_000.0
+NODATA = -9999.0
+SEED = 20260101
+HGL = {  # zone: (kind, keys) -> (high, low) HGL ft, psi_per_ft 0.433
+    "Lower": ("prv", {"valve_elevation_ft": 1000.0, "setting_psi": 20.0}),
+    "Middle": ("tank", {"high_water_ft": 1230.0, "low_water_ft": 1180.0}),
+    "Upper": ("pump", {"discharge_hgl_ft": 1300.0}),
+}
+PSI_PER_FT = 0.433
+FLOOR_FT = 10.0
+M_PER_FT = 0.3048
+FLAGGED = {"high": "high_pressure", "low": "low_pressure", "above_hgl": "above_hgl", "low_upper_floors": "upper_floors"}
+
+
+# ---------------------------------------------------------------------------
+# data
+
+
+def ground_m(u, v):
+    """Analytic ground, m, at local metres (u east, v north of the SW corner): a slope with hills."""
+    return (250.0 + 0.02 * v + 12.0 * np.sin(u / 700.0) * np.cos(v / 900.0) + 4.0 * np.sin((u + v) / 130.0))
+
+
+def make_dem(path: Path) -> None:
+    import rasterio
+    from rasterio.transform import from_origin
+
+    profile = dict(driver="GTiff", width=SIZE, height=SIZE, count=1, dtype="float32", crs=CRS,
+                   transform=from_origin(WEST, NORTH, 1.0, 1.0), nodata=NODATA, tiled=True, blockxsize=512,
+                   blockysize=512, compress="deflate", predictor=3)
+    with rasterio.open(path, "w", **profile) as dst:
+        u = np.arange(SIZE) + 0.5
+        for r0 in range(0, SIZE, 512):
+            rows = np.arange(r0, min(r0 + 512, SIZE))
+            v = SIZE - rows - 0.5
+            block = ground_m(u[None, :], v[:, None]).astype(np.float32)
+            if r0 <= 3000 < r0 + 512:  # a nodata patch (a quarry): customers there get no_terrain
+                block[3000 - r0:3000 - r0 + 40, 3000:3040] = NODATA
+            dst.write(block, 1, window=rasterio.windows.Window(0, r0, SIZE, block.shape[0]))
+        dst.units = ("metre",)
+
+
+def make_zones(path: Path) -> None:
+    import geopandas as gpd
+    import shapely
+
+    u = np.linspace(0, SIZE, 61)
+    cuts = [2000 + 150 * np.sin(u / 800.0), 4000 + 150 * np.cos(u / 600.0)]
+    south = np.zeros_like(u)
+    north = np.full_like(u, SIZE)
+    bands = [(south, cuts[0]), (cuts[0], cuts[1]), (cuts[1], north)]
+    polys = []
+    for lo, hi in bands:
+        ring = np.r_[np.c_[u, lo], np.c_[u[::-1], hi[::-1]]] + [WEST, NORTH - SIZE]
+        polys.append(shapely.Polygon(ring))
+    gpd.GeoDataFrame({"zone": list(HGL)}, geometry=polys, crs=CRS).to_file(path, layer="zones", engine="pyogrio")
+
+
+def make_customers(path: Path, n: int) -> None:
+    import geopandas as gpd
+    import shapely
+
+    rng = np.random.default_rng(SEED)
+    x = WEST + rng.uniform(5, SIZE - 5, n)
+    y = NORTH - SIZE + rng.uniform(5, SIZE - 5, n)
+    ids = np.char.add("A", np.char.zfill(np.arange(n).astype(str), 7))
+    street = rng.integers(1, 400, n).astype(str)
+    df = gpd.GeoDataFrame({
+        "account": ids,
+        "owner": np.char.add("Owner ", (np.arange(n) // 2).astype(str)),  # two accounts per owner
+        "mail_address": np.char.add(np.char.add((np.arange(n) // 2 % 9000 + 1).astype(str), " Invented Way "), street),
+        "floors": rng.choice([1, 1, 1, 2, 3, 8], n).astype(np.int32),
+    }, geometry=shapely.points(x, y), crs=CRS)
+    df.to_file(path, layer="customers", engine="pyogrio", use_arrow=True)
+
+
+def write_config(work: Path) -> Path:
+    sources = []
+    for zone, (kind, keys) in HGL.items():
+        sources.append("[[zones.source]]\n" + f'zone = "{zone}"\nkind = "{kind}"\n'
+                       + "".join(f"{k} = {v}\n" for k, v in keys.items()))
+    text = textwrap.dedent(f"""\
+        [customers]
+        path = "customers.gpkg"
+        layer = "customers"
+        id_field = "account"
+        mail_fields = ["owner", "mail_address"]
+        floors_field = "floors"
+
+        [terrain]
+        paths = ["dem.tif"]
+        vertical_units = "m"
+        method = "nearest"
+
+        [zones]
+        path = "zones.gpkg"
+        layer = "zones"
+        id_field = "zone"
+
+        """) + "\n".join(sources) + textwrap.dedent(f"""
+        [criteria]
+        max_static_psi = 80.0
+        min_static_psi = 35.0
+        psi_per_ft = {PSI_PER_FT}
+        floor_height_ft = {FLOOR_FT}
+
+        [output]
+        path = "out-geopress/pressure.gpkg"
+        mailing_dir = "out-geopress/mailing"
+        """)
+    cfg = work / "bench.toml"
+    cfg.write_text(text)
+    return cfg
+
+
+def prepare(work: Path, n: int) -> Path:
+    work.mkdir(parents=True, exist_ok=True)
+    stamp = work / "data.json"
+    want = {"n": n, "size": SIZE, "seed": SEED}
+    if not (stamp.exists() and json.loads(stamp.read_text()) == want):
+        t0 = time.perf_counter()
+        make_dem(work / "dem.tif")
+        make_zones(work / "zones.gpkg")
+        (work / "customers.gpkg").unlink(missing_ok=True)
+        make_customers(work / "customers.gpkg", n)
+        stamp.write_text(json.dumps(want))
+        print(f"generated data in {time.perf_counter() - t0:.1f} s under {work}", flush=True)
+    return write_config(work)
+
+
+# ---------------------------------------------------------------------------
+# the straightforward script (variant b), run in a child process
+
+
+def baseline(work: Path) -> None:
+    import geopandas as gpd
+    import rasterio
+
+    out = work / "out-baseline" / "pressure.gpkg"
+    out.parent.mkdir(exist_ok=True)
+    out.unlink(missing_ok=True)
+    cust = gpd.read_file(work / "customers.gpkg", layer="customers")
+    zones = gpd.read_file(work / "zones.gpkg", layer="zones")
+    joined = gpd.sjoin(cust, zones[["zone", "geometry"]], how="left", predicate="intersects")
+    joined = joined[~joined.index.duplicated(keep="first")].drop(columns="index_right")
+    with rasterio.open(work / "dem.tif") as src:
+        coords = list(zip(joined.geometry.x, joined.geometry.y))
+        elev = np.array([v[0] for v in src.sample(coords)], dtype=np.float64)
+        elev[elev == src.nodata] = np.nan
+    ground = elev / M_PER_FT
+    high = {"Lower": 1000.0 + 20.0 / PSI_PER_FT, "Middle": 1230.0, "Upper": 1300.0}
+    low = {"Lower": 1000.0 + 20.0 / PSI_PER_FT, "Middle": 1180.0, "Upper": 1300.0}
+    hgl_high = joined["zone"].map(high).to_numpy(dtype=np.float64)
+    hgl_low = joined["zone"].map(low).to_numpy(dtype=np.float64)
+    floors = joined["floors"].to_numpy(dtype=np.float64)
+    psi_max = PSI_PER_FT * (hgl_high - ground)
+    psi_min = PSI_PER_FT * (hgl_low - ground)
+    psi_top = np.where(floors > 1, PSI_PER_FT * (hgl_low - (ground + (floors - 1) * FLOOR_FT)), np.nan)
+    status = np.select(
+        [np.isnan(ground), joined["zone"].isna().to_numpy(), psi_min <= 0, psi_min < 35.0, psi_max > 80.0,
+         psi_top < 35.0],
+        ["no_terrain", "unzoned", "above_hgl", "low", "high", "low_upper_floors"], default="ok")
+    joined = joined.assign(ground_ft=ground, psi_max=psi_max, psi_min=psi_min, psi_top=psi_top, status=status)
+    joined.to_file(out, layer="customers")
+    for st, layer in FLAGGED.items():
+        joined[joined["status"] == st].to_file(out, layer=layer)
+
+
+def geopress_run(work: Path) -> None:
+    from geopress.cli import main
+
+    main(["-q", "run", str(work / "bench.toml")])
+
+
+# ---------------------------------------------------------------------------
+# measuring
+
+
+def run_child(variant: str, work: Path) -> tuple[float, float]:
+    """Wall seconds and peak RSS (GB) of one variant in a fresh process."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, __file__, "--child", variant, "--work", str(work)], env=env)
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    if proc.returncode not in (0, None):
+        sys.exit(f"{variant} failed with exit code {proc.returncode}")
+    return wall, usage.ru_maxrss / 1024 / 1024  # ru_maxrss is KiB on Linux
+
+
+def compare_statuses(work: Path) -> int:
+    import pyogrio
+
+    a = pyogrio.read_dataframe(work / "out-geopress" / "pressure.gpkg", layer="customers",
+                               columns=["account", "status"], read_geometry=False, use_arrow=True)
+    b = pyogrio.read_dataframe(work / "out-baseline" / "pressure.gpkg", layer="customers",
+                               columns=["account", "status"], read_geometry=False, use_arrow=True)
+    merged = a.merge(b, on="account", suffixes=("_gp", "_base"), validate="one_to_one")
+    if len(merged) != len(a) or len(a) != len(b):
+        sys.exit(f"customer counts differ: geopress {len(a)}, baseline {len(b)}")
+    diff = merged[merged["status_gp"] != merged["status_base"]]
+    if len(diff):
+        sys.exit(f"{len(diff)} statuses differ, e.g.\n{diff.head()}")
+    return len(merged)
+
+
+def kernel_rate(work: Path, repeat: int) -> float:
+    """Points per second of the bilinear kernel on the DEM in memory (1,000,000 random points)."""
+    import rasterio
+
+    sys.path.insert(0, str(ROOT))
+    from geopress.terrain import sample_pixels
+
+    with rasterio.open(work / "dem.tif") as src:
+        dem = src.read(1)
+    rng = np.random.default_rng(1)
+    n = 1_000_000
+    cols, rows = rng.uniform(0, SIZE, n), rng.uniform(0, SIZE, n)
+    times = []
+    for _ in range(max(repeat, 3)):
+        t0 = time.perf_counter()
+        sample_pixels(dem, cols, rows, nodata=NODATA, method="bilinear")
+        times.append(time.perf_counter() - t0)
+    return n / statistics.median(times)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--n", type=int, default=1_000_000, help="customers (default 1,000,000)")
+    ap.add_argument("--repeat", type=int, default=3, help="alternating runs of each variant (default 3)")
+    ap.add_argument("--work", type=Path, default=Path("bench-out"), help="folder for data and outputs")
+    ap.add_argument("--child", choices=["geopress", "baseline"], help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    work = args.work.resolve()
+    if args.child:
+        (geopress_run if args.child == "geopress" else baseline)(work)
+        return
+    prepare(work, args.n)
+    runs: dict[str, list[tuple[float, float]]] = {"geopress": [], "baseline": []}
+    for i in range(args.repeat):
+        for variant in ("geopress", "baseline") if i % 2 == 0 else ("baseline", "geopress"):
+            wall, rss = run_child(variant, work)
+            runs[variant].append((wall, rss))
+            print(f"run {i + 1} {variant:9s} {wall:7.2f} s  peak RSS {rss:5.2f} GB", flush=True)
+    n = compare_statuses(work)
+    steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
+    med = {v: statistics.median(w for w, _ in r) for v, r in runs.items()}
+    peak = {v: max(m for _, m in r) for v, r in runs.items()}
+    rate = kernel_rate(work, args.repeat)
+    print(f"\n{n:,} customers, statuses identical in both variants")
+    print(f"geopress run   median {med['geopress']:7.2f} s   peak RSS {peak['geopress']:.2f} GB")
+    print(f"baseline       median {med['baseline']:7.2f} s   peak RSS {peak['baseline']:.2f} GB")
+    print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.1f}x faster")
+    print("geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
+    print(f"bilinear kernel in process: {rate / 1e6:.1f} million points per second")
+
+
+if __name__ == "__main__":
+    main()
