@@ -64,7 +64,8 @@ def mailing_list(
     customer.
     """
     col, how = WORST[status]
-    sub = customers.loc[customers["status"] == status, [id_field, *mail_fields, "zone", col]]
+    # the id field may also be a mail field: select each column once
+    sub = customers.loc[customers["status"] == status, list(dict.fromkeys([id_field, *mail_fields, "zone", col]))]
     keys = list(mail_fields) or [id_field]
     cols = [*keys, "accounts", "customer_count", "zones", "worst_psi"]
     if sub.empty:

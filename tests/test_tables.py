@@ -46,3 +46,15 @@ def test_mailing_lists_match_a_plain_groupby(seed):
                              ("low_upper_floors", "upper_floors")):
             want = _reference(df, status, "acct", fields)
             pd.testing.assert_frame_equal(got[name], want, check_dtype=False, check_index_type=False)
+
+
+def test_the_id_field_may_also_be_a_mail_field():
+    # a layer keyed by the owner's account number, mailed to that account: one row per account
+    df = pd.DataFrame({"acct": ["B", "A"], "addr": ["1 Elm", "1 Elm"], "zone": ["Z", "Z"],
+                       "status": ["high", "high"], "psi_max": [81.0, 90.0], "psi_min": [70.0, 79.0],
+                       "psi_top": [np.nan, np.nan]})
+    got = mailing_lists(df, id_field="acct", mail_fields=["acct", "addr"])["high_pressure"]
+    assert got.to_dict("records") == [
+        {"acct": "A", "addr": "1 Elm", "accounts": "A", "customer_count": 1, "zones": "Z", "worst_psi": 90.0},
+        {"acct": "B", "addr": "1 Elm", "accounts": "B", "customer_count": 1, "zones": "Z", "worst_psi": 81.0},
+    ]
