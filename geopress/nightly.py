@@ -99,4 +99,4 @@ def track(result, baseline: str | os.PathLike | None) -> None:
     result.new_mailing = changes.new_mailing_lists(current, table, id_field=cust_cfg.id_field,
                                                    mail_fields=cust_cfg.mail_fields)
     result.info["changes"] = summary.to_dict()
-    log.info("changes since %s: %s", summary.baseline or "no earlier run", summary.line())
+    log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())
