@@ -99,7 +99,7 @@ def test_compare_of_a_run_with_itself_is_empty(world, tmp_path):
 
 def test_compare_rejects_a_file_that_is_not_a_run(world, tmp_path):
     res = CliRunner().invoke(cli, ["compare", str(world.zones_path), str(world.zones_path)], obj={})
-    assert res.exit_code == 2 and "no 'customers' layer" in res.output
+    assert res.exit_code == 2 and "has no layer 'customers' (layers there: zones)" in res.output
 
 
 def test_si_units_convert_the_mailing_lists(world, tmp_path):

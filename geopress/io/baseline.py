@@ -14,16 +14,11 @@ from pathlib import Path
 from typing import Sequence
 
 import geopandas as gpd
-import pyogrio
 from pyproj import CRS
 
-from ..errors import InputError
-from .vector import _fmt_list
+from .results import read_run_layer, run_layer_fields
 
 log = logging.getLogger(__name__)
-
-LAYER = "customers"
-
 
 @dataclass
 class Baseline:
@@ -42,23 +37,9 @@ def read_baseline(
     lacks the id field or ``status``.
     """
     hint = "pass --baseline with an earlier geopress GeoPackage, or move the file away to start a fresh history"
-    if not path.is_file():
-        raise InputError(f"baseline GeoPackage (from {key}) not found; {hint}", path=path, key=key)
-    try:
-        layers = [str(n) for n in pyogrio.list_layers(path)[:, 0]]
-    except Exception as exc:  # pyogrio raises DataSourceError and friends
-        raise InputError(f"cannot read the baseline (from {key}): {str(exc).splitlines()[0]}; {hint}", path=path, key=key) from exc
-    if LAYER not in layers:
-        raise InputError(f"baseline (from {key}) has no layer '{LAYER}' (layers there: {_fmt_list(layers)}); {hint}", path=path, key=key)
-    have = [str(f) for f in pyogrio.read_info(path, layer=LAYER)["fields"]]
-    for name in (id_field, "status"):
-        if name not in have:
-            raise InputError(
-                f"baseline (from {key}) layer '{LAYER}' has no field '{name}' (fields there: {_fmt_list(have, 20)}); {hint}",
-                path=path, key=key,
-            )
-    columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in have]
-    frame = pyogrio.read_dataframe(path, layer=LAYER, columns=columns, use_arrow=True)
+    fields = run_layer_fields(path, key=key, hint=hint)
+    frame = read_run_layer(path, fields, required=(id_field, "status"), optional=("zone", *mail_fields), key=key,
+                           hint=hint)
     if frame.crs is not None and not CRS.from_user_input(frame.crs).equals(crs):
         frame = frame.to_crs(crs)
     else:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Sequence
 
 import geopandas as gpd
 import numpy as np
@@ -12,34 +13,57 @@ import shapely
 
 from ..errors import InputError
 from ..tables import neutralise_frame
+from .vector import _fmt_list
 from .write import Staging, ensure_dir, write_csv
 
+#: the layer of a run's GeoPackage that holds every customer.
+LAYER = "customers"
 #: the columns every run's ``customers`` layer has after the id field.
 RUN_COLUMNS = ("zone", "status", "psi_min", "psi_max")
+
+
+def run_layer_fields(path: Path, *, key: str, hint: str) -> list[str]:
+    """The fields of the ``customers`` layer of the run GeoPackage at ``path``.
+
+    ``key`` names where the path came from and ``hint`` says what to do; both go
+    into the InputError raised when the file is missing, unreadable or not a run.
+    """
+    if not path.is_file():
+        raise InputError(f"GeoPackage (from {key}) not found; {hint}", path=path, key=key)
+    try:
+        layers = [str(n) for n in pyogrio.list_layers(path)[:, 0]]
+    except Exception as exc:  # pyogrio raises DataSourceError and friends
+        raise InputError(f"cannot read the GeoPackage (from {key}): {str(exc).splitlines()[0]}; {hint}",
+                         path=path, key=key) from exc
+    if LAYER not in layers:
+        raise InputError(f"GeoPackage (from {key}) has no layer '{LAYER}' (layers there: {_fmt_list(layers)}); {hint}",
+                         path=path, key=key)
+    return [str(f) for f in pyogrio.read_info(path, layer=LAYER)["fields"]]
+
+
+def read_run_layer(path: Path, fields: Sequence[str], *, required: Sequence[str], optional: Sequence[str] = (),
+                   key: str, hint: str) -> gpd.GeoDataFrame:
+    """The ``required`` fields (an InputError when one is missing) and whichever ``optional`` ones exist."""
+    for name in required:
+        if name not in fields:
+            raise InputError(f"layer '{LAYER}' of the GeoPackage (from {key}) has no field '{name}' "
+                             f"(fields there: {_fmt_list(fields, 20)}); {hint}", path=path, key=key)
+    columns = list(dict.fromkeys([*required, *(c for c in optional if c in fields)]))
+    return pyogrio.read_dataframe(path, layer=LAYER, columns=columns, use_arrow=True)
 
 
 def read_run_customers(path: Path, id_field: str | None = None) -> tuple[gpd.GeoDataFrame, str]:
     """The ``customers`` layer of a run's GeoPackage and its id field (the first field unless given)."""
     path = Path(path)
-    if not path.exists():
-        raise InputError("GeoPackage not found; give the output.path of a finished run", path=path)
-    try:
-        names = [str(n) for n in pyogrio.list_layers(path)[:, 0]]
-    except Exception as exc:
-        raise InputError(f"not a GeoPackage GDAL can open ({str(exc).splitlines()[0]})", path=path) from exc
-    if "customers" not in names:
-        raise InputError("has no 'customers' layer; give the output GeoPackage of a geopress run", path=path, key="customers")
-    fields = [str(f) for f in pyogrio.read_info(path, layer="customers")["fields"]]
-    key = id_field or (fields[0] if fields else None)
-    missing = [c for c in (key, *RUN_COLUMNS) if c not in fields]
-    if key is None or missing:
-        raise InputError(f"layer 'customers' lacks the field(s) {', '.join(map(str, missing))}; "
-                         "is it the output of a geopress run? (use --id-field for another id)", path=path, key="customers")
-    gdf = pyogrio.read_dataframe(path, layer="customers", columns=[key, *RUN_COLUMNS], use_arrow=True)
-    if gdf[key].duplicated().any():
-        raise InputError(f"field '{key}' has duplicate values, so it cannot match customers; pass --id-field",
-                         path=path, key=key)
-    return gdf, key
+    key = "compare"
+    hint = "give the output GeoPackage of a finished geopress run (use --id-field for another id)"
+    fields = run_layer_fields(path, key=key, hint=hint)
+    id_key = id_field or (fields[0] if fields else "id")
+    gdf = read_run_layer(path, fields, required=[id_key, *RUN_COLUMNS], key=key, hint=hint)
+    if gdf[id_key].duplicated().any():
+        raise InputError(f"field '{id_key}' has duplicate values, so it cannot match customers; pass --id-field",
+                         path=path, key=id_key)
+    return gdf, id_key
 
 
 def comparison_paths(out: Path) -> dict[str, Path]:
