@@ -44,13 +44,17 @@ class TerrainConfig:
     """DEM rasters, first listed wins where they overlap.
 
     ``vertical_units`` is "m", "ft" or "us_ft", or None to take the unit the
-    raster states. ``memory_mb`` bounds how much raster is read at once.
+    raster states. ``datum_offset_ft`` is added to every DEM elevation after
+    the unit conversion, to put the DEM on the vertical datum of the HGLs
+    (e.g. the local NGVD29 - NAVD88 difference). ``memory_mb`` bounds how
+    much raster is read at once.
     """
 
     paths: tuple[Path, ...]
     vertical_units: str | None = None
     method: str = "bilinear"
     memory_mb: float = 1024.0
+    datum_offset_ft: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -352,7 +356,7 @@ class _Reader:
 
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
         s = "terrain"
-        self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb"})
+        self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb", "datum_offset_ft"})
         raw = self.get(t, s, "paths", "str_list")
         if not raw:
             raise self.error("terrain.paths", "must list at least one raster")
@@ -375,7 +379,9 @@ class _Reader:
         memory_mb = self.get(t, s, "memory_mb", "number", 1024.0)
         if memory_mb <= 0:
             raise self.error("terrain.memory_mb", "must be positive")
-        return TerrainConfig(paths=tuple(dict.fromkeys(paths)), vertical_units=units, method=method, memory_mb=memory_mb)
+        offset = self.get(t, s, "datum_offset_ft", "number", 0.0)
+        return TerrainConfig(paths=tuple(dict.fromkeys(paths)), vertical_units=units, method=method, memory_mb=memory_mb,
+                             datum_offset_ft=offset)
 
     def zones(self, t: dict[str, Any]) -> ZonesConfig:
         s = "zones"

@@ -107,7 +107,7 @@ def service_bands(cfg: Config, zones: Zones, crs: CRS) -> Plan:
                 continue
             remaining = shapely.difference(remaining, box_here)
             piece_r = _to_crs(piece, crs, rcrs)
-            win = raster_io.read_dem_window(path, piece_r.bounds, cfg.terrain.vertical_units, cfg.terrain.memory_mb)
+            win = raster_io.read_dem_window(path, piece_r.bounds, cfg.terrain)
             if win is None:
                 continue
             b = band_mod.zone_band(win.array_ft, win.transform, piece_r, high, low, crit)

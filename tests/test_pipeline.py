@@ -702,3 +702,13 @@ def test_stale_temp_removal_takes_the_output_name_literally(tmp_path):
     other.write_text("x")
     assert write_io.remove_stale_temps(target) == [own]
     assert other.exists()
+
+
+def test_datum_offset_shifts_ground_onto_the_hgl_datum(world):
+    # HGLs kept on an older datum 3.25 ft below the DEM's: ground_ft = DEM (ft) + datum_offset_ft
+    plain = geopress.run(world.config_path, write=False).customers
+    world.write_config(BASE_CONFIG.replace('method = "bilinear"', 'method = "bilinear"\ndatum_offset_ft = -3.25'))
+    shifted = geopress.run(world.config_path, write=False).customers
+    np.testing.assert_array_equal(shifted["ground_ft"], plain["ground_ft"] - 3.25)
+    # 3.25 ft more head everywhere: 0.433 * 3.25 = 1.40725 psi more (float64 round-off ~1e-13, PSI_TOL)
+    np.testing.assert_allclose(shifted["psi_min"], plain["psi_min"] + 0.433 * 3.25, rtol=0, atol=PSI_TOL)

@@ -212,7 +212,7 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *
         # GDAL_NUM_THREADS: GeoTIFF blocks of one read are decompressed on every core
         with rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS"), open_group(group) as src:
             values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles])
-        ft = values * feet_per_unit(group.unit)
+        ft = values * feet_per_unit(group.unit) + cfg.datum_offset_ft
         lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
         result.ranges[group.label()] = (group.unit, float(lo), float(hi))
         ground[todo] = ft
@@ -253,9 +253,10 @@ def raster_footprint(path: Path) -> tuple[CRS, tuple[float, float, float, float]
         return CRS.from_wkt(src.crs.to_wkt()), tuple(src.bounds)
 
 
-def read_dem_window(path: Path, bounds: tuple[float, float, float, float], vertical_units: str | None,
-                    memory_mb: float) -> DemWindow | None:
+def read_dem_window(path: Path, bounds: tuple[float, float, float, float], terrain: TerrainConfig) -> DemWindow | None:
     """Read the raster over ``bounds`` (in its CRS) plus a one-pixel halo, as ground in ft.
+
+    ``terrain`` gives the vertical unit, the datum offset and the memory budget.
 
     Returns None when the bounds miss the raster. When the window would need
     more than ``memory_mb`` (at :data:`BAND_BYTES_PER_PIXEL`), it is read
@@ -266,7 +267,8 @@ def read_dem_window(path: Path, bounds: tuple[float, float, float, float], verti
     from rasterio.enums import Resampling
 
     with _open(path) as src:
-        unit = resolve_unit(src, path, vertical_units)
+        unit = resolve_unit(src, path, terrain.vertical_units)
+        memory_mb = terrain.memory_mb
         left, bottom, right, top = bounds
         cols, rows = ~src.transform @ (np.array([left, right, left, right]), np.array([bottom, bottom, top, top]))
         c0 = max(int(np.floor(cols.min())) - 1, 0)
@@ -287,6 +289,6 @@ def read_dem_window(path: Path, bounds: tuple[float, float, float, float], verti
         if factor > 1:
             log.info("%s: the %d x %d px zone window exceeds terrain.memory_mb = %g; read decimated by %d",
                      path, width, height, memory_mb, factor)
-        ground = np.ma.filled(arr.astype(np.float64), np.nan) * feet_per_unit(unit)
+        ground = np.ma.filled(arr.astype(np.float64), np.nan) * feet_per_unit(unit) + terrain.datum_offset_ft
         return DemWindow(path=str(path), crs=CRS.from_wkt(src.crs.to_wkt()), array_ft=ground,
                          transform=transform, decimation=factor)
