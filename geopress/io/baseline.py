@@ -14,6 +14,8 @@ from pathlib import Path
 from typing import Sequence
 
 import geopandas as gpd
+import numpy as np
+import pandas as pd
 import pyogrio
 from pyproj import CRS
 
@@ -27,10 +29,28 @@ LAYER = "customers"
 
 @dataclass
 class Baseline:
-    """The previous run's customers, geometry in the current run's CRS."""
+    """The previous run's customers (the read fields, no geometry; the index holds the feature ids).
+
+    :meth:`rows` gives chosen rows with their geometry in ``crs``, the current run's CRS.
+    """
 
     path: Path
-    frame: gpd.GeoDataFrame
+    frame: pd.DataFrame
+    columns: list[str]
+    crs: CRS
+
+    def rows(self, positions: np.ndarray) -> gpd.GeoDataFrame:
+        """The rows at ``positions`` of :attr:`frame`, in that order, with their geometry in :attr:`crs`."""
+        fids = self.frame.index.to_numpy()[positions]
+        if len(fids) == 0:
+            return gpd.GeoDataFrame(self.frame.iloc[positions].reset_index(drop=True),
+                                    geometry=gpd.GeoSeries([], crs=self.crs))
+        got = pyogrio.read_dataframe(self.path, layer=LAYER, columns=self.columns, fids=fids, fid_as_index=True,
+                                     use_arrow=True)
+        got = got.reindex(fids).reset_index(drop=True)
+        if got.crs is not None and not CRS.from_user_input(got.crs).equals(self.crs):
+            return got.to_crs(self.crs)
+        return got.set_crs(self.crs, allow_override=True)
 
 
 def read_baseline(
@@ -58,10 +78,8 @@ def read_baseline(
                 path=path, key=key,
             )
     columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in have]
-    frame = pyogrio.read_dataframe(path, layer=LAYER, columns=columns, use_arrow=True)
-    if frame.crs is not None and not CRS.from_user_input(frame.crs).equals(crs):
-        frame = frame.to_crs(crs)
-    else:
-        frame = frame.set_crs(crs, allow_override=True)
+    # no geometry here: only removed customers need theirs (:meth:`Baseline.rows`)
+    frame = pyogrio.read_dataframe(path, layer=LAYER, columns=columns, read_geometry=False, fid_as_index=True,
+                                   use_arrow=True)
     log.info("baseline: %d customers from %s", len(frame), path)
-    return Baseline(path=path, frame=frame)
+    return Baseline(path=path, frame=frame, columns=columns, crs=crs)
