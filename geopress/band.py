@@ -103,10 +103,28 @@ def contour_lines(dem_ft: NDArray[np.floating], transform: Affine, level_ft: flo
     PixelIsArea convention: centre of pixel ``(row, col)`` at ``(col + 0.5,
     row + 0.5)``); NaN pixels break the lines.
     """
-    dem = np.ma.masked_invalid(np.asarray(dem_ft, dtype=np.float64))
+    z = np.asarray(dem_ft, dtype=np.float64)
+    if z.shape[0] < 2 or z.shape[1] < 2:
+        return shapely.MultiLineString()
+    # only quads whose corners lie on both sides of the level hold the contour: trace it in
+    # the box around them, with the full grid's pixel indices as coordinates (same vertices)
+    with np.errstate(invalid="ignore"):
+        above = z >= level_ft
+        below = z < level_ft  # NaN is neither
+    rows = np.flatnonzero((above.any(axis=1)[:-1] | above.any(axis=1)[1:]) & (below.any(axis=1)[:-1] | below.any(axis=1)[1:]))
+    if rows.size == 0:
+        return shapely.MultiLineString()
+    r0, r1 = int(rows[0]), int(rows[-1]) + 2
+    cols_above, cols_below = above[r0:r1].any(axis=0), below[r0:r1].any(axis=0)
+    cols = np.flatnonzero((cols_above[:-1] | cols_above[1:]) & (cols_below[:-1] | cols_below[1:]))
+    if cols.size == 0:
+        return shapely.MultiLineString()
+    c0, c1 = int(cols[0]), int(cols[-1]) + 2
+    dem = np.ma.masked_invalid(z[r0:r1, c0:c1])
     if dem.shape[0] < 2 or dem.shape[1] < 2 or dem.mask.all():
         return shapely.MultiLineString()
-    gen = contourpy.contour_generator(z=dem, line_type=contourpy.LineType.Separate)
+    gen = contourpy.contour_generator(x=np.arange(c0, c1, dtype=np.float64), y=np.arange(r0, r1, dtype=np.float64),
+                                      z=dem, line_type=contourpy.LineType.Separate)
     lines = []
     for xy in gen.lines(level_ft):
         if len(xy) < 2:

@@ -57,10 +57,10 @@ def compare(
     """
     prev_keys = _keys(previous_ids)
     cur_keys = _keys(current_ids)
-    prev_pos = pd.Series(np.arange(len(prev_keys)), index=pd.Index(prev_keys))
-    prev_row = prev_pos.reindex(cur_keys).to_numpy()
-    known = ~np.isnan(prev_row)
-    prev_row = np.where(known, prev_row, -1).astype(np.int64)
+    # hash lookups on object arrays (ids are unique in each run): one pass each way
+    prev_index = pd.Index(prev_keys, dtype=object)
+    prev_row = prev_index.get_indexer(pd.Index(cur_keys, dtype=object)).astype(np.int64)
+    known = prev_row >= 0
     prev_stat = np.asarray(previous_status, dtype=object)
     cur_stat = np.asarray(current_status, dtype=object)
     before = np.where(known, prev_stat[np.where(known, prev_row, 0)] if len(prev_stat) else None, None)
@@ -74,7 +74,9 @@ def compare(
         default="status_changed",
     ).astype(object)
 
-    gone = np.flatnonzero(~pd.Index(prev_keys).isin(cur_keys))
+    seen = np.zeros(len(prev_keys), dtype=bool)
+    seen[prev_row[known]] = True
+    gone = np.flatnonzero(~seen)
     current = pd.DataFrame({
         "key": cur_keys, "previous_status": before, "status": cur_stat, "change": change,
         "current_row": np.arange(len(cur_keys)), "previous_row": prev_row,

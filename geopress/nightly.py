@@ -14,6 +14,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
+import numpy as np
 import pandas as pd
 
 from . import changes
@@ -94,8 +95,14 @@ def track(result, baseline: str | os.PathLike | None) -> None:
             DataWarning, stacklevel=2,
         )
     columns = [*cust_cfg.mail_fields, "zone", current.geometry.name]
-    result.changes = changes.changes_layer(table, current, None if prev is None else prev.frame,
-                                           id_field=cust_cfg.id_field, columns=columns)
+    # removed customers come from the baseline: read only their rows, geometry included
+    gone = table["current_row"].to_numpy() < 0
+    previous = None
+    if prev is not None:
+        previous = prev.rows(table["previous_row"].to_numpy()[gone])
+        table = table.copy()
+        table.loc[gone, "previous_row"] = np.arange(int(gone.sum()))
+    result.changes = changes.changes_layer(table, current, previous, id_field=cust_cfg.id_field, columns=columns)
     result.new_mailing = changes.new_mailing_lists(current, table, id_field=cust_cfg.id_field,
                                                    mail_fields=cust_cfg.mail_fields)
     result.info["changes"] = summary.to_dict()

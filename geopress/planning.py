@@ -204,7 +204,11 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
     geom = customers.geometry.to_numpy()
     status = customers["status"].to_numpy(dtype=object)
     for zt in (plan.terrain if plan is not None else []):
-        sel = (zone_col == zt.zone) & ~(shapely.is_missing(geom) | shapely.is_empty(geom))
+        sel = np.flatnonzero(zone_col == zt.zone)
+        sel = sel[~(shapely.is_missing(geom[sel]) | shapely.is_empty(geom[sel]))]
+        names, per = np.unique(status[sel].astype(str), return_counts=True)
+        counts = dict(zip(names.tolist(), per.tolist()))
+        sel = sel[report.map_sample(status[sel])]
         pts = gpd.GeoSeries(geom[sel], crs=customers.crs)
         if customers.crs is not None and not zt.crs.equals(customers.crs):
             pts = pts.to_crs(zt.crs)
@@ -212,7 +216,7 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         maps.append(report.ZoneMap(
             zone=zt.zone, dem_ft=zt.dem_ft, extent=zt.extent, pixel=zt.pixel, ft_per_map_unit=m_per_unit / M_PER_FT,
             zone_geom=zt.zone_geom, band_geom=zt.band_geom, limits=zt.limits,
-            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status[sel],
+            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status[sel], counts=counts,
         ))
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,

@@ -157,6 +157,31 @@ class ZoneMap:
     x: np.ndarray
     y: np.ndarray
     status: np.ndarray
+    #: customers per status in the zone when ``x``/``y``/``status`` are a sample of them (see :func:`map_sample`)
+    counts: Mapping[str, int] | None = None
+
+
+#: at most about this many customers are drawn per zone map; a status with at most
+#: MAP_RARE customers in the zone is always drawn whole.
+MAP_POINTS = 20_000
+MAP_RARE = 2_000
+
+
+def map_sample(status: np.ndarray) -> np.ndarray:
+    """Positions of the customers a zone map draws: every k-th of the common statuses, all of the rare ones.
+
+    Beyond :data:`MAP_POINTS` points a map shows no more (they overlap at
+    the figure's resolution) and drawing them costs seconds; the legend
+    still counts every customer.
+    """
+    n = status.size
+    if n <= MAP_POINTS:
+        return np.arange(n)
+    names, inverse, per = np.unique(status.astype(str), return_inverse=True, return_counts=True)
+    rare = per[inverse] <= MAP_RARE
+    step = int(np.ceil(n / MAP_POINTS))
+    keep = rare | (np.arange(n) % step == 0)
+    return np.flatnonzero(keep)
 
 
 def zone_map(m: ZoneMap) -> str:
@@ -185,7 +210,8 @@ def zone_map(m: ZoneMap) -> str:
             continue
         ax.scatter(m.x[sel], m.y[sel], s=10, c=colour, marker=marker, linewidths=0.6 if marker in "x+" else 0.2,
                    edgecolors=None if marker in "x+" else "black", zorder=4)
-        handles.append(Line2D([], [], color=colour, marker=marker, linestyle="none", label=f"{label} ({int(sel.sum())})"))
+        count = int(sel.sum()) if m.counts is None else int(m.counts.get(status, 0))
+        handles.append(Line2D([], [], color=colour, marker=marker, linestyle="none", label=f"{label} ({count})"))
     pad = 0.03 * max(right - left, top - bottom)
     ax.set_xlim(left - pad, right + pad)
     ax.set_ylim(bottom - pad, top + pad)

@@ -152,3 +152,20 @@ def test_decimated_window_keeps_the_georeferencing(tmp_path):
     # the datum offset is added to every elevation after the unit conversion
     shifted = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", datum_offset_ft=-3.25))
     np.testing.assert_array_equal(shifted.array_ft, full.array_ft - 3.25)
+
+
+def test_contour_traced_in_the_crossing_box_equals_contourpy_on_the_whole_grid():
+    # reference: contourpy over the full grid, vertices moved to pixel centres as contour_lines does
+    import contourpy
+
+    rng = np.random.default_rng(3)
+    v, u = np.mgrid[0:80, 0:90]
+    dem = 100.0 + 0.5 * v + 3.0 * np.sin(u / 7.0) + rng.normal(0, 0.2, v.shape)
+    dem[30:34, 40:44] = np.nan
+    t = Affine(2.0, 0.0, 500.0, 0.0, -2.0, 900.0)
+    gen = contourpy.contour_generator(z=np.ma.masked_invalid(dem), line_type=contourpy.LineType.Separate)
+    expected = shapely.MultiLineString([np.column_stack(t @ (xy[:, 0] + 0.5, xy[:, 1] + 0.5))
+                                        for xy in gen.lines(120.0) if len(xy) >= 2])
+    got = band.contour_lines(dem, t, 120.0)
+    assert got.wkb == expected.wkb  # vertex for vertex, in the same order
+    assert band.contour_lines(dem, t, 10.0).is_empty  # the level is below every pixel

@@ -14,18 +14,39 @@ from pathlib import Path
 from typing import Sequence
 
 import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyogrio
 from pyproj import CRS
 
-from .results import read_run_layer, run_layer_fields
+from .results import LAYER, read_run_layer, run_layer_fields
 
 log = logging.getLogger(__name__)
 
 @dataclass
 class Baseline:
-    """The previous run's customers, geometry in the current run's CRS."""
+    """The previous run's customers (the read fields, no geometry; the index holds the feature ids).
+
+    :meth:`rows` gives chosen rows with their geometry in ``crs``, the current run's CRS.
+    """
 
     path: Path
-    frame: gpd.GeoDataFrame
+    frame: pd.DataFrame
+    columns: list[str]
+    crs: CRS
+
+    def rows(self, positions: np.ndarray) -> gpd.GeoDataFrame:
+        """The rows at ``positions`` of :attr:`frame`, in that order, with their geometry in :attr:`crs`."""
+        fids = self.frame.index.to_numpy()[positions]
+        if len(fids) == 0:
+            return gpd.GeoDataFrame(self.frame.iloc[positions].reset_index(drop=True),
+                                    geometry=gpd.GeoSeries([], crs=self.crs))
+        got = pyogrio.read_dataframe(self.path, layer=LAYER, columns=self.columns, fids=fids, fid_as_index=True,
+                                     use_arrow=True)
+        got = got.reindex(fids).reset_index(drop=True)
+        if got.crs is not None and not CRS.from_user_input(got.crs).equals(self.crs):
+            return got.to_crs(self.crs)
+        return got.set_crs(self.crs, allow_override=True)
 
 
 def read_baseline(
@@ -38,11 +59,9 @@ def read_baseline(
     """
     hint = "pass --baseline with an earlier geopress GeoPackage, or move the file away to start a fresh history"
     fields = run_layer_fields(path, key=key, hint=hint)
-    frame = read_run_layer(path, fields, required=(id_field, "status"), optional=("zone", *mail_fields), key=key,
-                           hint=hint)
-    if frame.crs is not None and not CRS.from_user_input(frame.crs).equals(crs):
-        frame = frame.to_crs(crs)
-    else:
-        frame = frame.set_crs(crs, allow_override=True)
+    columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in fields]
+    # no geometry here: only removed customers need theirs (:meth:`Baseline.rows`)
+    frame = read_run_layer(path, fields, required=(id_field, "status"), optional=columns, key=key, hint=hint,
+                           read_geometry=False)
     log.info("baseline: %d customers from %s", len(frame), path)
-    return Baseline(path=path, frame=frame)
+    return Baseline(path=path, frame=frame, columns=columns, crs=crs)

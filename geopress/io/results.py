@@ -42,14 +42,18 @@ def run_layer_fields(path: Path, *, key: str, hint: str) -> list[str]:
 
 
 def read_run_layer(path: Path, fields: Sequence[str], *, required: Sequence[str], optional: Sequence[str] = (),
-                   key: str, hint: str) -> gpd.GeoDataFrame:
-    """The ``required`` fields (an InputError when one is missing) and whichever ``optional`` ones exist."""
+                   key: str, hint: str, read_geometry: bool = True) -> pd.DataFrame:
+    """The ``required`` fields (an InputError when one is missing) and whichever ``optional`` ones exist.
+
+    The index holds the feature ids. Without ``read_geometry`` a plain DataFrame, else a GeoDataFrame.
+    """
     for name in required:
         if name not in fields:
             raise InputError(f"layer '{LAYER}' of the GeoPackage (from {key}) has no field '{name}' "
                              f"(fields there: {_fmt_list(fields, 20)}); {hint}", path=path, key=key)
     columns = list(dict.fromkeys([*required, *(c for c in optional if c in fields)]))
-    return pyogrio.read_dataframe(path, layer=LAYER, columns=columns, use_arrow=True)
+    return pyogrio.read_dataframe(path, layer=LAYER, columns=columns, read_geometry=read_geometry, fid_as_index=True,
+                                  use_arrow=True)
 
 
 def read_run_customers(path: Path, id_field: str | None = None) -> tuple[gpd.GeoDataFrame, str]:
