@@ -71,6 +71,14 @@ def layer_info(path: Path, layer: str) -> dict:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
 
 
+def read_layer(path: Path, layer: str, columns: list[str]) -> gpd.GeoDataFrame:
+    """The ``columns`` and geometry of a layer (Arrow read), errors translated."""
+    try:
+        return pyogrio.read_dataframe(path, layer=layer, columns=columns, use_arrow=True)
+    except Exception as exc:
+        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+
+
 def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
     """Every configured field (``{config key: field}``) exists in the layer."""
     have = [str(f) for f in info["fields"]]
@@ -125,10 +133,7 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     if info["features"] == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
     columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
-    try:
-        df = pyogrio.read_dataframe(path, layer=layer, columns=columns, use_arrow=True)
-    except Exception as exc:
-        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+    df = read_layer(path, layer, columns)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
@@ -223,10 +228,7 @@ def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
     info = layer_info(path, layer)
     check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
     crs = _crs(path, layer, info["crs"])
-    try:
-        df = pyogrio.read_dataframe(path, layer=layer, columns=[cfg.id_field], use_arrow=True)
-    except Exception as exc:
-        raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+    df = read_layer(path, layer, [cfg.id_field])
     if len(df) == 0:
         raise InputError(f"layer '{layer}' has no zone polygons", path=path, key="zones.layer")
     ids = df[cfg.id_field]
@@ -255,7 +257,7 @@ def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
     for i, src in enumerate(cfg.sources):
         if src.zone not in present:
             raise ConfigError(
-                f"zones.source[{i}].zone: zone '{src.zone}' is not in {path} layer '{layer}' (zones there: {_fmt_list(present)}); fix the name",
+                f"zones.source[{i}].zone: zone '{src.zone}' is not in its layer '{layer}' (zones there: {_fmt_list(present)}); fix the name",
                 path=cfg.path, key=f"zones.source[{i}].zone",
             )
     no_source = [z for z in present if cfg.source_for(z) is None]
