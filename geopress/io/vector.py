@@ -257,7 +257,7 @@ def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
     for i, src in enumerate(cfg.sources):
         if src.zone not in present:
             raise ConfigError(
-                f"zones.source[{i}].zone: zone '{src.zone}' is not in its layer '{layer}' (zones there: {_fmt_list(present)}); fix the name",
+                f"zone '{src.zone}' of zones.source[{i}].zone is not in layer '{layer}' (zones there: {_fmt_list(present)}); fix the name",
                 path=cfg.path, key=f"zones.source[{i}].zone",
             )
     no_source = [z for z in present if cfg.source_for(z) is None]
