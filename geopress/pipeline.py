@@ -253,6 +253,7 @@ def run_json_path(config: Config) -> Path:
 def write_outputs(result: Result, clock: _Clock) -> list[Path]:
     """Stage every output, then rename them all into place."""
     out = result.config.output
+    t0 = time.perf_counter()
     with clock.step("write outputs"):
         write_io.ensure_dir(out.path.parent, "output.path")
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
@@ -265,12 +266,14 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
                 stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
             gpkg.result()
             info = dict(result.info)
-            info["timings_s"] = clock.timings
+            # run.json is written inside this step: it records the step up to its own writing
+            info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
             info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
             info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             _stage_report(result, info, stage)
             stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
             stage.commit()
+            result.info = info
             return list(stage.committed)
 
 

@@ -453,7 +453,8 @@ def test_run_json_records_the_run(crafted):
                                                     "kind": "tank"}
     assert info["terrain"][0]["vertical_unit"] == "ft" and info["terrain"][0]["customers_sampled"] == 11
     assert info["started"] <= info["finished"]
-    assert "sample terrain" in info["timings_s"]
+    assert "sample terrain" in info["timings_s"] and info["timings_s"]["write outputs"] > 0
+    assert json.loads(json.dumps(res.info, default=str)) == info  # the result says what run.json says
     assert set(info["versions"]) == {"gdal", "proj", "pyogrio"}
     assert sorted(res.outputs) == sorted(Path(p) for p in info["outputs"] + [str(root / "out/run.json")])
 
