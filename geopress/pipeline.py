@@ -258,18 +258,19 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         lists = {**result.mailing, **result.new_mailing}
         with write_io.Staging(journal_for=out.path) as stage, ThreadPoolExecutor(max_workers=1) as pool:
-            # the GeoPackage is written on a thread while the mailing lists are written here
+            # the GeoPackage is written by a child process (waited for on a thread) while the
+            # mailing lists, the report and run.json are written here
             gpkg = stage.write_in_background(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)),
                                              pool)
             for name, df in lists.items():
                 stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
-            gpkg.result()
             info = dict(result.info)
             info["timings_s"] = clock.timings
             info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
             info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             _stage_report(result, info, stage)
             stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+            gpkg.result()
             stage.commit()
             return list(stage.committed)
 
