@@ -31,8 +31,10 @@ from pathlib import Path
 from typing import Any, Callable, Mapping
 
 import geopandas as gpd
+import numpy as np
 import pandas as pd
 import pyogrio
+import shapely
 
 from ..errors import OutputError
 
@@ -276,11 +278,15 @@ def _pickled(exc: BaseException) -> bytes:
         return pickle.dumps((RuntimeError(f"{type(exc).__name__}: {exc}"), text))
 
 
+#: shapely.get_type_id of a missing geometry and of a Point
+MISSING, POINT = -1, 0
+
+
 def _write_layers(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
     for name, df in layers.items():
         if isinstance(df, gpd.GeoDataFrame):
             # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
-            points = set(df.geometry.dropna().geom_type) <= {"Point"}
+            points = bool(np.isin(shapely.get_type_id(df.geometry.to_numpy()), (MISSING, POINT)).all())
             pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
                                     geometry_type="Point" if points else None,
                                     layer_options={"SPATIAL_INDEX": "YES"})
