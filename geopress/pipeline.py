@@ -132,6 +132,11 @@ def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
 ENGINES = ("local", "dask")
 
 
+def _values(column: pd.Series) -> Any:
+    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row)."""
+    return column.array if column.dtype == "str" else column.to_numpy()
+
+
 def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
             partitions: int | None = None) -> Result:
     """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`."""
@@ -185,7 +190,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
         data = {
-            id_field: frame[id_field].to_numpy(),
+            id_field: _values(frame[id_field]),
             "zone": zone,
             "ground_ft": ground,
             "hgl_high_ft": hgl_high,
@@ -197,7 +202,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
             "reason": reason,
         }
         for c in extra:
-            data[c] = frame[c].to_numpy()
+            data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
     with clock.step("summarise"):
