@@ -204,6 +204,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
         for c in extra:
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
+        del data, reason  # the frame holds the reasons as Arrow text: free the Python strings
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
@@ -236,11 +237,11 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
                   plan=plan)
 
 
-def output_layers(result: Result) -> dict[str, pd.DataFrame]:
-    """The GeoPackage's layers, in writing order."""
-    layers: dict[str, pd.DataFrame] = {"customers": result.customers}
+def output_layers(result: Result) -> dict[str, write_io.Layer]:
+    """The GeoPackage's layers, in writing order (the flagged ones made by the writer, see write_io.Layer)."""
+    layers: dict[str, write_io.Layer] = {"customers": result.customers}
     for status, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = result.flagged(status)
+        layers[name] = lambda status=status: result.flagged(status)
     layers["zone_summary"] = result.zone_summary
     if result.plan is not None:
         layers["service_band"] = result.plan.bands

@@ -216,7 +216,12 @@ def recover(output: Path) -> bool:
 GPKG_CACHE_MB = 512
 
 
-def write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
+#: a layer to write: a frame, or a function that makes it (called in the writer process, so
+#: a layer derived from another takes no memory in the caller)
+Layer = pd.DataFrame | Callable[[], pd.DataFrame]
+
+
+def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
     """Write each frame as a layer (GeoDataFrames with a spatial index, others as plain tables).
 
     The writing runs in a forked child process (pyogrio holds the GIL while it
@@ -227,7 +232,7 @@ def write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
     in_forked_child(_write_geopackage, path, layers)
 
 
-def _write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
+def _write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
     pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})  # in the child only
     _write_layers(path, layers)
 
@@ -282,16 +287,20 @@ def _pickled(exc: BaseException) -> bytes:
 MISSING, POINT = -1, 0
 
 
-def _write_layers(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
-    for name, df in layers.items():
-        if isinstance(df, gpd.GeoDataFrame):
-            # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
-            points = bool(np.isin(shapely.get_type_id(df.geometry.to_numpy()), (MISSING, POINT)).all())
-            pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
-                                    geometry_type="Point" if points else None,
-                                    layer_options={"SPATIAL_INDEX": "YES"})
-        else:
-            pyogrio.write_dataframe(df, path, layer=name, driver="GPKG")
+def _write_layers(path: Path, layers: Mapping[str, Layer]) -> None:
+    for name, layer in layers.items():
+        _write_layer(path, name, layer() if callable(layer) else layer)  # a made frame is freed on return
+
+
+def _write_layer(path: Path, name: str, df: pd.DataFrame) -> None:
+    if isinstance(df, gpd.GeoDataFrame):
+        # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
+        points = bool(np.isin(shapely.get_type_id(df.geometry.to_numpy()), (MISSING, POINT)).all())
+        pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
+                                geometry_type="Point" if points else None,
+                                layer_options={"SPATIAL_INDEX": "YES"})
+    else:
+        pyogrio.write_dataframe(df, path, layer=name, driver="GPKG")
 
 
 def write_csv(path: Path, df: pd.DataFrame) -> None:
