@@ -120,11 +120,13 @@ def contour_lines(dem_ft: NDArray[np.floating], transform: Affine, level_ft: flo
     if cols.size == 0:
         return shapely.MultiLineString()
     c0, c1 = int(cols[0]), int(cols[-1]) + 2
-    dem = np.ma.masked_invalid(z[r0:r1, c0:c1])
-    if dem.shape[0] < 2 or dem.shape[1] < 2 or dem.mask.all():
+    del above, below
+    # a view: contourpy masks the NaN (and inf) pixels itself, as masked_invalid would
+    box = z[r0:r1, c0:c1]
+    if box.shape[0] < 2 or box.shape[1] < 2 or not np.isfinite(box).any():
         return shapely.MultiLineString()
     gen = contourpy.contour_generator(x=np.arange(c0, c1, dtype=np.float64), y=np.arange(r0, r1, dtype=np.float64),
-                                      z=dem, line_type=contourpy.LineType.Separate)
+                                      z=box, line_type=contourpy.LineType.Separate)
     lines = []
     for xy in gen.lines(level_ft):
         if len(xy) < 2:
@@ -170,9 +172,10 @@ def zone_band(dem_ft: NDArray[np.floating], transform: Affine, zone: shapely.Geo
     """
     lower, upper = limit_elevations(hgl_high_ft, hgl_low_ft, criteria)
     tol = pixel_size(transform)
-    inside = zone_mask(zone, dem_ft.shape, transform)
-    mask = band_mask(dem_ft, lower, upper, inside)
+    mask = band_mask(dem_ft, lower, upper, zone_mask(zone, dem_ft.shape, transform))
     polys = mask_polygons(mask, transform)
+    pixels = int(mask.sum())
+    del mask  # before the contours, which need the most memory
     if not polys.is_empty:
         polys = polygonal(shapely.intersection(shapely.make_valid(shapely.simplify(polys, tol)), zone))
     limits = {}
@@ -181,7 +184,7 @@ def zone_band(dem_ft: NDArray[np.floating], transform: Affine, zone: shapely.Geo
         if not line.is_empty:
             line = lineal(shapely.intersection(shapely.simplify(line, tol), zone))
         limits[name] = line
-    return Band(lower_ft=lower, upper_ft=upper, polygons=polys, limits=limits, pixels=int(mask.sum()))
+    return Band(lower_ft=lower, upper_ft=upper, polygons=polys, limits=limits, pixels=pixels)
 
 
 def area_sq_ft(geom: shapely.Geometry, crs: CRS) -> float:

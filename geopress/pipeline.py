@@ -132,6 +132,11 @@ def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
 ENGINES = ("local", "dask")
 
 
+def _values(column: pd.Series) -> Any:
+    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row)."""
+    return column.array if column.dtype == "str" else column.to_numpy()
+
+
 def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
             partitions: int | None = None) -> Result:
     """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`."""
@@ -185,7 +190,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
         data = {
-            id_field: frame[id_field].to_numpy(),
+            id_field: _values(frame[id_field]),
             "zone": zone,
             "ground_ft": ground,
             "hgl_high_ft": hgl_high,
@@ -197,8 +202,9 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
             "reason": reason,
         }
         for c in extra:
-            data[c] = frame[c].to_numpy()
+            data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
+        del data, reason  # the frame holds the reasons as Arrow text: free the Python strings
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
@@ -231,11 +237,11 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
                   plan=plan)
 
 
-def output_layers(result: Result) -> dict[str, pd.DataFrame]:
-    """The GeoPackage's layers, in writing order."""
-    layers: dict[str, pd.DataFrame] = {"customers": result.customers}
+def output_layers(result: Result) -> dict[str, write_io.Layer]:
+    """The GeoPackage's layers, in writing order (the flagged ones made by the writer, see write_io.Layer)."""
+    layers: dict[str, write_io.Layer] = {"customers": result.customers}
     for status, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = result.flagged(status)
+        layers[name] = lambda status=status: result.flagged(status)
     layers["zone_summary"] = result.zone_summary
     if result.plan is not None:
         layers["service_band"] = result.plan.bands
@@ -259,12 +265,12 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         lists = {**result.mailing, **result.new_mailing}
         with write_io.Staging(journal_for=out.path) as stage, ThreadPoolExecutor(max_workers=1) as pool:
-            # the GeoPackage is written on a thread while the mailing lists are written here
+            # the GeoPackage is written by a child process (waited for on a thread) while the
+            # mailing lists, the report and run.json are written here
             gpkg = stage.write_in_background(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)),
                                              pool)
             for name, df in lists.items():
                 stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
-            gpkg.result()
             info = dict(result.info)
             # run.json is written inside this step: it records the step up to its own writing
             info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
@@ -272,6 +278,7 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
             info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             _stage_report(result, info, stage)
             stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+            gpkg.result()
             stage.commit()
             result.info = info
             return list(stage.committed)

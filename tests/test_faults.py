@@ -101,6 +101,22 @@ def test_disk_full_after_a_partial_write(world, prior, monkeypatch, writer):
     assert snapshot(world.out.parent) == prior
 
 
+def killed(*args):
+    os.kill(os.getpid(), signal.SIGKILL)
+
+
+# The GeoPackage's layers are written in a forked child process: a fault there surfaces in the run.
+@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "No space left on device"), (bug, 1, "injected fault"),
+                                               (killed, 2, "the writer process was killed by signal 9")])
+def test_fault_in_the_geopackage_writer_process(world, prior, monkeypatch, fault, code, text):
+    parent = os.getpid()
+    monkeypatch.setattr(write_io, "_write_layers", lambda *a: fault() if os.getpid() != parent else None)
+    assert text in error_line(run(world), code)
+    assert snapshot(world.out.parent) == prior
+    monkeypatch.undo()
+    then_a_good_run_leaves_no_temporary(world)
+
+
 @pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "cannot write the commit journal (No space left"),
                                                (bug, 1, "injected fault")])
 def test_fault_writing_the_commit_journal(world, prior, monkeypatch, fault, code, text):

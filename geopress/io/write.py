@@ -22,15 +22,19 @@ from __future__ import annotations
 import json
 import logging
 import os
+import pickle
 import tempfile
+import traceback
 from concurrent.futures import Executor, Future
 from glob import escape as glob_escape
 from pathlib import Path
 from typing import Any, Callable, Mapping
 
 import geopandas as gpd
+import numpy as np
 import pandas as pd
 import pyogrio
+import shapely
 
 from ..errors import OutputError
 
@@ -89,9 +93,10 @@ class Staging:
         self._write_tmp(target, self.temp_for(target), writer)
 
     def write_in_background(self, target: Path, writer: Callable[[Path], None], pool: Executor) -> Future:
-        """Like :meth:`write`, run on ``pool`` (GDAL releases the GIL while writing, so the
-        other outputs can be written meanwhile); the temporary file keeps its place in the
-        commit order. Call :meth:`wait` on the returned future before committing."""
+        """Like :meth:`write`, run on ``pool`` (for a writer that works in another process
+        or releases the GIL, so the other outputs can be written meanwhile); the temporary
+        file keeps its place in the commit order. Wait for the returned future before
+        committing."""
         tmp = self.temp_for(target)
         return pool.submit(self._write_tmp, target, tmp, writer)
 
@@ -211,26 +216,91 @@ def recover(output: Path) -> bool:
 GPKG_CACHE_MB = 512
 
 
-def write_geopackage(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
-    """Write each frame as a layer (GeoDataFrames with a spatial index, others as plain tables)."""
-    previous = pyogrio.get_gdal_config_option("OGR_SQLITE_CACHE")
-    pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})
+#: a layer to write: a frame, or a function that makes it (called in the writer process, so
+#: a layer derived from another takes no memory in the caller)
+Layer = pd.DataFrame | Callable[[], pd.DataFrame]
+
+
+def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
+    """Write each frame as a layer (GeoDataFrames with a spatial index, others as plain tables).
+
+    The writing runs in a forked child process (pyogrio holds the GIL while it
+    converts and writes, so a thread would overlap nothing): this call waits
+    for it, then raises here whatever the child raised. The child shares the
+    frames with this process copy-on-write, so nothing is serialised.
+    """
+    in_forked_child(_write_geopackage, path, layers)
+
+
+def _write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
+    pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})  # in the child only
+    _write_layers(path, layers)
+
+
+def in_forked_child(fn: Callable[..., None], path: Path, *args: Any) -> None:
+    """Call ``fn(path, *args)`` in a forked child process and wait for it (POSIX only, as the output lock).
+
+    An exception in the child is raised again here, with the child's
+    traceback as a note; a child killed by a signal raises OutputError
+    naming ``path``.
+    """
+    read_fd, write_fd = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: never returns into the caller's code
+        code = 0
+        try:
+            os.close(read_fd)
+            fn(path, *args)
+        except BaseException as exc:
+            code = 1
+            try:
+                with os.fdopen(write_fd, "wb") as fh:
+                    fh.write(_pickled(exc))
+            except BaseException:
+                code = 3
+        finally:
+            os._exit(code)
+    os.close(write_fd)
+    with os.fdopen(read_fd, "rb") as fh:
+        payload = fh.read()
+    _, status = os.waitpid(pid, 0)
+    if payload:
+        exc, child_traceback = pickle.loads(payload)
+        exc.add_note(f"raised in the writer process {pid}:\n{child_traceback}")
+        raise exc
+    code = os.waitstatus_to_exitcode(status)
+    if code != 0:
+        how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
+        raise OutputError(f"the writer process {how}; check free memory and disk space, then run again",
+                          path=path)
+
+
+def _pickled(exc: BaseException) -> bytes:
+    text = "".join(traceback.format_exception(exc))
     try:
-        _write_layers(path, layers)
-    finally:
-        pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": previous})
+        return pickle.dumps((exc, text))
+    except Exception:  # an exception that cannot be pickled: send its type and message
+        return pickle.dumps((RuntimeError(f"{type(exc).__name__}: {exc}"), text))
 
 
-def _write_layers(path: Path, layers: Mapping[str, pd.DataFrame]) -> None:
-    for name, df in layers.items():
-        if isinstance(df, gpd.GeoDataFrame):
-            # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
-            points = set(df.geometry.dropna().geom_type) <= {"Point"}
-            pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
-                                    geometry_type="Point" if points else None,
-                                    layer_options={"SPATIAL_INDEX": "YES"})
-        else:
-            pyogrio.write_dataframe(df, path, layer=name, driver="GPKG")
+#: shapely.get_type_id of a missing geometry and of a Point
+MISSING, POINT = -1, 0
+
+
+def _write_layers(path: Path, layers: Mapping[str, Layer]) -> None:
+    for name, layer in layers.items():
+        _write_layer(path, name, layer() if callable(layer) else layer)  # a made frame is freed on return
+
+
+def _write_layer(path: Path, name: str, df: pd.DataFrame) -> None:
+    if isinstance(df, gpd.GeoDataFrame):
+        # an empty or all-null layer would otherwise be typed "Unknown"; customers are points
+        points = bool(np.isin(shapely.get_type_id(df.geometry.to_numpy()), (MISSING, POINT)).all())
+        pyogrio.write_dataframe(df, path, layer=name, driver="GPKG", use_arrow=True,
+                                geometry_type="Point" if points else None,
+                                layer_options={"SPATIAL_INDEX": "YES"})
+    else:
+        pyogrio.write_dataframe(df, path, layer=name, driver="GPKG")
 
 
 def write_csv(path: Path, df: pd.DataFrame) -> None:
