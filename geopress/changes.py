@@ -34,8 +34,6 @@ from .classify import FLAGGED_LAYERS
 from .tables import mailing_list
 
 CHANGES: tuple[str, ...] = ("new_customer", "removed", "unchanged", "newly_flagged", "cleared", "status_changed")
-#: the changes listed in the ``changes`` layer (every change but ``unchanged``).
-REPORTED: tuple[str, ...] = tuple(c for c in CHANGES if c != "unchanged")
 
 
 def _keys(ids: pd.Series) -> np.ndarray:

@@ -413,7 +413,7 @@ def compare(a: str | os.PathLike, b: str | os.PathLike, *, out: str | os.PathLik
     from .io import results
 
     left, key = results.read_run_customers(Path(a), id_field)
-    right, key_b = results.read_run_customers(Path(b), key)
+    right, _ = results.read_run_customers(Path(b), key)
     diff = compare_mod.status_differences(left, right, key)
     by_zone = compare_mod.counts_by_zone(diff)
     target = Path(out) if out is not None else Path(b).parent / "status_differences.gpkg"

@@ -30,7 +30,6 @@ KPA_PER_M_WATER = 1000.0 * STANDARD_GRAVITY / 1000.0
 #: pascals in one psi (NIST SP 811): 0.45359237 kg * 9.80665 / (0.0254 m)^2.
 PA_PER_PSI = 0.45359237 * STANDARD_GRAVITY / 0.0254**2
 
-VerticalUnit = Literal["m", "ft", "us_ft"]
 
 _FT_PER_UNIT: dict[str, float] = {
     "ft": 1.0,
