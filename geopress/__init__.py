@@ -13,22 +13,26 @@ estimate: local codes and a licensed engineer decide.
 from ._version import __version__
 from .classify import STATUSES, Criteria
 from .config import Config, load_config
-from .errors import ConfigError, GeopressError, GeopressWarning, InputError, OutputError
-from .pipeline import CheckReport, Result, check, run
+from .errors import ConfigError, GeopressError, GeopressWarning, InputError, LockError, MissingExtraError, OutputError
+from .pipeline import CheckReport, Comparison, Result, check, compare, run
 
 __all__ = [
     "__version__",
     "run",
     "check",
+    "compare",
     "load_config",
     "Config",
     "Criteria",
     "Result",
     "CheckReport",
+    "Comparison",
     "STATUSES",
     "GeopressError",
     "ConfigError",
     "InputError",
     "OutputError",
+    "LockError",
+    "MissingExtraError",
     "GeopressWarning",
 ]
