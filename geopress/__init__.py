@@ -14,19 +14,17 @@ from ._version import __version__
 from .classify import STATUSES, Criteria
 from .config import Config, load_config
 from .errors import ConfigError, GeopressError, GeopressWarning, InputError, LockError, MissingExtraError, OutputError
-from .pipeline import CheckReport, Comparison, Result, check, compare, run
+from .pipeline import CheckReport, Result, check, run
 
 __all__ = [
     "__version__",
     "run",
     "check",
-    "compare",
     "load_config",
     "Config",
     "Criteria",
     "Result",
     "CheckReport",
-    "Comparison",
     "STATUSES",
     "GeopressError",
     "ConfigError",
