@@ -18,7 +18,6 @@ import numpy as np
 import pandas as pd
 
 from . import changes
-from .classify import FLAGGED_LAYERS
 from .config import Config
 from .errors import DataWarning, InputError
 from .io import baseline as baseline_io
@@ -28,19 +27,12 @@ from .io.lock import OutputLock
 log = logging.getLogger(__name__)
 
 
-def output_targets(cfg: Config) -> list[Path]:
-    """Every file a run of ``cfg`` writes."""
-    out = cfg.output
-    names = [*FLAGGED_LAYERS.values(), *[f"new_{n}" for n in FLAGGED_LAYERS.values()]]
-    return [out.path, *[out.mailing_dir / f"{n}.csv" for n in names], out.path.parent / "run.json"]
-
-
 @contextmanager
-def guarded_outputs(cfg: Config) -> Iterator[OutputLock]:
-    """Hold the output lock; first undo a half-done commit and remove stale temporaries."""
+def guarded_outputs(cfg: Config, targets: list[Path]) -> Iterator[OutputLock]:
+    """Hold the output lock; first undo a half-done commit and remove stale temporaries of ``targets``."""
     with OutputLock(cfg.output.path) as lock:
         write_io.recover(cfg.output.path)
-        for target in output_targets(cfg):
+        for target in targets:
             for p in write_io.remove_stale_temps(target):
                 log.info("removed a temporary file left by an earlier run: %s", p)
         yield lock

@@ -284,6 +284,13 @@ def write_outputs(result: Result, clock: _Clock) -> list[Path]:
             return list(stage.committed)
 
 
+def output_targets(config: Config) -> list[Path]:
+    """Every file a run of ``config`` can write."""
+    out = config.output
+    names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
+    return [out.path, *[out.mailing_dir / f"{n}.csv" for n in names], report_path(config), run_json_path(config)]
+
+
 def report_path(config: Config) -> Path:
     """report.html sits beside the GeoPackage."""
     return config.output.path.parent / "report.html"
@@ -335,7 +342,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         check_writable(cfg.output.path.parent, "output.path")
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    with nightly.guarded_outputs(cfg) if write else nullcontext():
+    with nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext():
         inputs = nightly.snapshot(cfg.input_paths())
         result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions)
         nightly.check_unchanged(inputs)

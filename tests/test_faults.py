@@ -243,3 +243,12 @@ def test_read_only_output_file_is_replaced(world, prior):
     world.out.chmod(0o444)
     then_a_good_run_leaves_no_temporary(world)
     assert world.out.read_bytes() != prior["pressure.gpkg"]
+
+
+def test_a_stale_report_temporary_is_removed_even_by_a_run_that_fails(world, prior):
+    # a killed run can leave a report temporary; the next run removes it before it reads any input
+    stale = world.out.parent / f".report.html{write_io.TMP_MARK}killed.html"
+    stale.write_text("half a report")
+    world.customers_path.unlink()
+    assert run(world).exit_code == 2
+    assert not stale.exists()
