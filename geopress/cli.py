@@ -101,8 +101,13 @@ def guarded(fn: Callable) -> Callable:
     return wrapper
 
 
+def _counts_text(counts: dict[str, int], skip: tuple[str, ...] = ()) -> str:
+    """``ok 12, high 3`` for the non-zero counts (less ``skip``), or ``none``."""
+    return ", ".join(f"{k} {v}" for k, v in counts.items() if v and k not in skip) or "none"
+
+
 def _summary(result: pipeline.Result) -> str:
-    counts = ", ".join(f"{k} {v}" for k, v in result.counts.items() if v)
+    counts = _counts_text(result.counts)
     seconds = sum(result.timings.values())
     where = f" -> {result.config.output.path}" if result.outputs else ""
     return f"{len(result.customers)} customers: {counts} ({seconds:.1f} s){where}"
@@ -163,12 +168,11 @@ def _finish_log(ctx: click.Context, line: str) -> None:
 
 
 def _changes_text(result: pipeline.Result) -> str:
-    changed = ", ".join(f"{k} {v}" for k, v in result.info["changes"]["counts"].items() if v and k != "unchanged")
-    return changed or "none"
+    return _counts_text(result.info["changes"]["counts"], skip=("unchanged",))
 
 
 def _run_line(result: pipeline.Result) -> str:
-    counts = ", ".join(f"{k} {v}" for k, v in result.counts.items() if v)
+    counts = _counts_text(result.counts)
     return f"run done: exit {EXIT_OK}: {len(result.customers)} customers: {counts}; changes: {_changes_text(result)}"
 
 
