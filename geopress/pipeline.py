@@ -12,7 +12,6 @@ import logging
 import os
 import time
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -27,6 +26,7 @@ import pyproj
 import rasterio
 
 from . import classify as cls
+from . import forked
 from . import planning
 from ._compat import report_missing
 from . import nightly
@@ -137,16 +137,38 @@ def _values(column: pd.Series) -> Any:
     return column.array if column.dtype == "str" else column.to_numpy()
 
 
+def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
+    t0 = time.perf_counter()
+    value = fn(*args)
+    return value, round(time.perf_counter() - t0, 4)
+
+
 def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
-            partitions: int | None = None) -> Result:
-    """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`."""
+            partitions: int | None = None, on_customers: Callable[[gpd.GeoDataFrame], None] | None = None) -> Result:
+    """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`.
+
+    ``on_customers`` is called with the customers layer as soon as it is
+    final, before the zone summary, mailing lists and service band.
+    """
     cfg = config
-    crit = cfg.criteria
     with clock.step("read customers"):
         cust = vector_io.read_customers(cfg.customers)
     with clock.step("read zones"):
         zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
         overlap_info = _warn_overlaps(zones)
+    # the service band needs only the zones and the DEM: a child process computes it meanwhile
+    band = forked.start(_timed, planning.service_bands, cfg, zones, cust.crs, what="service band")
+    try:
+        return _compute(cfg, clock, cust, zones, overlap_info, band, engine=engine, scheduler=scheduler,
+                        partitions=partitions, on_customers=on_customers)
+    finally:
+        band.cancel()  # reaped already unless this failed
+
+
+def _compute(cfg: Config, clock: _Clock, cust: vector_io.Customers, zones: vector_io.Zones,
+             overlap_info: list[dict[str, Any]], band: forked.Forked, *, engine: str, scheduler: Any,
+             partitions: int | None, on_customers: Callable[[gpd.GeoDataFrame], None] | None) -> Result:
+    crit = cfg.criteria
     # --- scale-out engine: the zone join and terrain sampling per spatial partition on dask
     joined = None
     if engine == "dask":
@@ -206,14 +228,16 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         del data, reason  # the frame holds the reasons as Arrow text: free the Python strings
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+    if on_customers is not None:
+        on_customers(customers)
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
             customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields).items()}
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
-    with clock.step("service band"):
-        plan = planning.service_bands(cfg, zones, cust.crs)
+    with clock.step("service band"):  # the wait for the child, and the best HGLs
+        plan, clock.timings["service band (child process)"] = band.result()
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
     info = {
         "geopress_version": __version__,
@@ -237,12 +261,18 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
                   plan=plan)
 
 
-def output_layers(result: Result) -> dict[str, write_io.Layer]:
-    """The GeoPackage's layers, in writing order (the flagged ones made by the writer, see write_io.Layer)."""
-    layers: dict[str, write_io.Layer] = {"customers": result.customers}
+def customer_layers(customers: gpd.GeoDataFrame) -> dict[str, write_io.Layer]:
+    """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
+    and the flagged ones (made by the writer from it, see write_io.Layer)."""
+    layers: dict[str, write_io.Layer] = {"customers": customers}
     for status, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = lambda status=status: result.flagged(status)
-    layers["zone_summary"] = result.zone_summary
+        layers[name] = lambda status=status: customers[customers["status"] == status]
+    return layers
+
+
+def later_layers(result: Result) -> dict[str, write_io.Layer]:
+    """The GeoPackage's other layers, in writing order, added once :func:`customer_layers` are written."""
+    layers: dict[str, write_io.Layer] = {"zone_summary": result.zone_summary}
     if result.plan is not None:
         layers["service_band"] = result.plan.bands
         layers["band_limits"] = result.plan.limits
@@ -256,32 +286,28 @@ def run_json_path(config: Config) -> Path:
     return config.output.path.parent / "run.json"
 
 
-def write_outputs(result: Result, clock: _Clock) -> list[Path]:
-    """Stage every output, then rename them all into place."""
+def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, gpkg: write_io.Started) -> list[Path]:
+    """Stage the mailing lists and the report while the GeoPackage's first layers are written
+    (``gpkg``), add its other layers, stage run.json, then rename them all into place."""
     out = result.config.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
-        write_io.ensure_dir(out.path.parent, "output.path")
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         lists = {**result.mailing, **result.new_mailing}
-        with write_io.Staging(journal_for=out.path) as stage, ThreadPoolExecutor(max_workers=1) as pool:
-            # the GeoPackage is written by a child process (waited for on a thread) while the
-            # mailing lists, the report and run.json are written here
-            gpkg = stage.write_in_background(out.path, lambda tmp: write_io.write_geopackage(tmp, output_layers(result)),
-                                             pool)
-            for name, df in lists.items():
-                stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
-            info = dict(result.info)
-            # run.json is written inside this step: it records the step up to its own writing
-            info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
-            info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
-            info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-            _stage_report(result, info, stage)
-            stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
-            gpkg.result()
-            stage.commit()
-            result.info = info
-            return list(stage.committed)
+        for name, df in lists.items():
+            stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
+        info = dict(result.info)
+        info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
+        _stage_report(result, info, stage)
+        first = gpkg.finish()
+        info["geopackage_layers_s"] = {**first, **gpkg.add(lambda tmp: write_io.write_geopackage(tmp, later_layers(result)))}
+        # run.json is written inside this step: it records the step up to its own writing
+        info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
+        info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+        stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+        stage.commit()
+        result.info = info
+        return list(stage.committed)
 
 
 def output_targets(config: Config) -> list[Path]:
@@ -342,16 +368,24 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         check_writable(cfg.output.path.parent, "output.path")
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    with nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext():
+    with nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
+            write_io.Staging(journal_for=cfg.output.path) as stage:
         inputs = nightly.snapshot(cfg.input_paths())
-        result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions)
+        gpkg: list[write_io.Started] = []
+
+        def start_writing(customers: gpd.GeoDataFrame) -> None:
+            write_io.ensure_dir(cfg.output.path.parent, "output.path")
+            gpkg.append(stage.start(cfg.output.path, lambda tmp: write_io.start_geopackage(tmp, customer_layers(customers))))
+
+        result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions,
+                         on_customers=start_writing if write else None)
         nightly.check_unchanged(inputs)
         with clock.step("compare with baseline"):
             nightly.track(result, baseline)
         result.info["started"] = started
         result.info["engine"] = engine
         if write:
-            result.outputs = write_outputs(result, clock)
+            result.outputs = write_outputs(result, clock, stage, gpkg[0])
     result.timings = clock.timings
     log.debug("run finished in %.2f s: %s", time.perf_counter() - t0,
              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))

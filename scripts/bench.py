@@ -14,8 +14,11 @@ and N customer points in a GeoPackage (default 1,000,000). Then, alternating
 
 Both sample the containing pixel (``method = "nearest"``, which is what
 ``sample()`` does), so their statuses must agree; the script checks they do.
-It prints the median wall time and peak resident set size of each variant
-(``wait4`` on the child), their ratio, geopress's time per step, and the
+It prints the median wall time of each variant, its peak memory two ways
+(the resident set size of its largest process, from ``wait4``; and the
+proportional set size of all its processes together, sampled every 50 ms,
+which counts pages shared copy-on-write by geopress's forked children once),
+their ratio, geopress's time per step, and the
 in-process throughput of the bilinear kernel on the DEM in memory.
 
     python scripts/bench.py                 # N = 1,000,000
@@ -31,6 +34,7 @@ import statistics
 import subprocess
 import sys
 import textwrap
+import threading
 import time
 from pathlib import Path
 
@@ -219,17 +223,58 @@ def geopress_run(work: Path) -> None:
 # measuring
 
 
-def run_child(variant: str, work: Path) -> tuple[float, float]:
-    """Wall seconds and peak RSS (GB) of one variant in a fresh process."""
+def _tree(pid: int) -> list[int]:
+    """``pid`` and its descendants (geopress forks a service band and a writer process)."""
+    out, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        out.append(p)
+        for task in Path(f"/proc/{p}/task").glob("*"):
+            try:
+                todo.extend(int(c) for c in (task / "children").read_text().split())
+            except OSError:
+                pass
+    return out
+
+
+def _pss_gb(pids: list[int]) -> float:
+    """Proportional set size of ``pids`` together, GB: a page shared by n processes counts 1/n in each,
+    so the sum is the memory the tree really holds (RSS would count copy-on-write pages once per process)."""
+    kb = 0
+    for p in pids:
+        try:
+            for line in Path(f"/proc/{p}/smaps_rollup").read_text().splitlines():
+                if line.startswith("Pss:"):
+                    kb += int(line.split()[1])
+                    break
+        except OSError:  # the process ended meanwhile
+            pass
+    return kb / 1024 / 1024
+
+
+def run_child(variant: str, work: Path) -> tuple[float, float, float]:
+    """Wall seconds, peak RSS of the largest process (GB) and peak PSS of the whole process tree
+    (GB, sampled every 50 ms) of one variant in a fresh process."""
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     t0 = time.perf_counter()
     proc = subprocess.Popen([sys.executable, __file__, "--child", variant, "--work", str(work)], env=env)
+    peak = [0.0]
+    stop = threading.Event()
+
+    def sample() -> None:
+        while not stop.wait(0.05):
+            peak[0] = max(peak[0], _pss_gb(_tree(proc.pid)))
+
+    sampler = threading.Thread(target=sample, daemon=True)
+    sampler.start()
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
+    stop.set()
+    sampler.join()
     proc.returncode = os.waitstatus_to_exitcode(status)
     if proc.returncode not in (0, None):
         sys.exit(f"{variant} failed with exit code {proc.returncode}")
-    return wall, usage.ru_maxrss / 1024 / 1024  # ru_maxrss is KiB on Linux
+    return wall, usage.ru_maxrss / 1024 / 1024, peak[0]  # ru_maxrss is KiB on Linux
 
 
 def compare_statuses(work: Path) -> int:
@@ -280,20 +325,23 @@ def main() -> None:
         (geopress_run if args.child == "geopress" else baseline)(work)
         return
     prepare(work, args.n)
-    runs: dict[str, list[tuple[float, float]]] = {"geopress": [], "baseline": []}
+    runs: dict[str, list[tuple[float, float, float]]] = {"geopress": [], "baseline": []}
     for i in range(args.repeat):
         for variant in ("geopress", "baseline") if i % 2 == 0 else ("baseline", "geopress"):
-            wall, rss = run_child(variant, work)
-            runs[variant].append((wall, rss))
-            print(f"run {i + 1} {variant:9s} {wall:7.2f} s  peak RSS {rss:5.2f} GB", flush=True)
+            wall, rss, pss = run_child(variant, work)
+            runs[variant].append((wall, rss, pss))
+            print(f"run {i + 1} {variant:9s} {wall:7.2f} s  peak RSS {rss:5.2f} GB  peak PSS of all its processes "
+                  f"{pss:5.2f} GB", flush=True)
     n = compare_statuses(work)
     steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
-    med = {v: statistics.median(w for w, _ in r) for v, r in runs.items()}
-    peak = {v: max(m for _, m in r) for v, r in runs.items()}
+    med = {v: statistics.median(w for w, _, _ in r) for v, r in runs.items()}
+    rss = {v: max(m for _, m, _ in r) for v, r in runs.items()}
+    pss = {v: max(m for _, _, m in r) for v, r in runs.items()}
     rate = kernel_rate(work, args.repeat)
     print(f"\n{n:,} customers, statuses identical in both variants")
-    print(f"geopress run   median {med['geopress']:7.2f} s   peak RSS {peak['geopress']:.2f} GB")
-    print(f"baseline       median {med['baseline']:7.2f} s   peak RSS {peak['baseline']:.2f} GB")
+    for v, label in (("geopress", "geopress run"), ("baseline", "baseline")):
+        print(f"{label:14s} median {med[v]:7.2f} s   peak RSS (largest process) {rss[v]:.2f} GB   "
+              f"peak PSS (all processes) {pss[v]:.2f} GB")
     print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.1f}x faster")
     print("geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
     print(f"bilinear kernel in process: {rate / 1e6:.1f} million points per second")

@@ -1,6 +1,8 @@
 """Faults injected at each write step: earlier outputs stay byte-identical, no temporary file survives.
 
-The write steps of a run, in order: the GeoPackage, each mailing list CSV,
+The write steps of a run, in order: the GeoPackage's customer layers (by a
+child process started as soon as the customers are final, while the rest is
+computed), each mailing list CSV, the report, the GeoPackage's other layers,
 run.json (all into temporary files), the commit journal, then the renames
 (each earlier output to its backup, each new file into place, run.json
 last). Each is failed with an OSError (ENOSPC: disk full), with an
@@ -21,6 +23,7 @@ from pathlib import Path
 
 import pytest
 
+from geopress import forked, nightly, planning
 from geopress.io import write as write_io
 
 from nightly_support import error_line, good_run, run, snapshot
@@ -111,6 +114,35 @@ def killed(*args):
 def test_fault_in_the_geopackage_writer_process(world, prior, monkeypatch, fault, code, text):
     parent = os.getpid()
     monkeypatch.setattr(write_io, "_write_layers", lambda *a: fault() if os.getpid() != parent else None)
+    assert text in error_line(run(world), code)
+    assert snapshot(world.out.parent) == prior
+    monkeypatch.undo()
+    then_a_good_run_leaves_no_temporary(world)
+
+
+def test_a_failure_while_the_writer_process_works_stops_it(world, prior, monkeypatch):
+    # the GeoPackage writer starts before the baseline comparison: a fault there kills and reaps it
+    # and removes its temporary file at once, not only at the next run
+    started = []
+    real_start = forked.start
+    monkeypatch.setattr(forked, "start", lambda *a, **k: started.append(real_start(*a, **k)) or started[-1])
+    monkeypatch.setattr(nightly, "track", bug)
+    assert "injected fault" in error_line(run(world), 1)
+    assert [job.what for job in started] == ["service band", "writer"]
+    for job in started:
+        assert job.done
+        with pytest.raises(ProcessLookupError):
+            os.kill(job.pid, 0)  # reaped: not even a zombie
+    assert snapshot(world.out.parent) == prior
+
+
+# The service band is computed in a forked child process while the customers are sampled.
+@pytest.mark.parametrize("fault, code, text", [(bug, 1, "injected fault"),
+                                               (killed, 2, "the service band process was killed by signal 9")])
+def test_fault_in_the_service_band_process(world, prior, monkeypatch, fault, code, text):
+    parent = os.getpid()
+    real = planning.service_bands
+    monkeypatch.setattr(planning, "service_bands", lambda *a: fault() if os.getpid() != parent else real(*a))
     assert text in error_line(run(world), code)
     assert snapshot(world.out.parent) == prior
     monkeypatch.undo()

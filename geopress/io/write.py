@@ -22,10 +22,8 @@ from __future__ import annotations
 import json
 import logging
 import os
-import pickle
 import tempfile
-import traceback
-from concurrent.futures import Executor, Future
+import time
 from glob import escape as glob_escape
 from pathlib import Path
 from typing import Any, Callable, Mapping
@@ -36,6 +34,7 @@ import pandas as pd
 import pyogrio
 import shapely
 
+from .. import forked
 from ..errors import OutputError
 
 log = logging.getLogger(__name__)
@@ -77,6 +76,7 @@ class Staging:
 
     def __init__(self, journal_for: Path | None = None) -> None:
         self._pending: list[tuple[Path, Path]] = []
+        self._children: list[forked.Forked] = []
         self.committed: list[Path] = []
         self.journal_for = journal_for
         self.journal = None if journal_for is None else journal_path(journal_for)
@@ -92,17 +92,19 @@ class Staging:
         """Stage ``target`` by calling ``writer(tmp_path)``; OSErrors become OutputError."""
         self._write_tmp(target, self.temp_for(target), writer)
 
-    def write_in_background(self, target: Path, writer: Callable[[Path], None], pool: Executor) -> Future:
-        """Like :meth:`write`, run on ``pool`` (for a writer that works in another process
-        or releases the GIL, so the other outputs can be written meanwhile); the temporary
-        file keeps its place in the commit order. Wait for the returned future before
-        committing."""
+    def start(self, target: Path, starter: Callable[[Path], forked.Forked]) -> "Started":
+        """Stage ``target`` by a writer that works in a child process: ``starter(tmp_path)``
+        starts it and returns at once, so the other outputs can be made meanwhile; the
+        temporary file keeps its place in the commit order. Finish it with
+        :meth:`Started.finish` before committing; leaving the block kills it if still running."""
         tmp = self.temp_for(target)
-        return pool.submit(self._write_tmp, target, tmp, writer)
+        job = self._write_tmp(target, tmp, starter)
+        self._children.append(job)
+        return Started(self, target, tmp, job)
 
-    def _write_tmp(self, target: Path, tmp: Path, writer: Callable[[Path], None]) -> None:
+    def _write_tmp(self, target: Path, tmp: Path, writer: Callable[[Path], Any]) -> Any:
         try:
-            writer(tmp)
+            return writer(tmp)
         except OSError as exc:
             raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions", path=target) from exc
 
@@ -144,6 +146,8 @@ class Staging:
         self._pending.clear()
 
     def discard(self) -> None:
+        for job in self._children:
+            job.cancel()  # before its temporary file is removed
         for tmp, _ in self._pending:
             for p in [tmp, *tmp.parent.glob(glob_escape(tmp.name) + "*")]:
                 _unlink(p)  # with what a writer put beside it (e.g. a -journal file)
@@ -154,6 +158,21 @@ class Staging:
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.discard()
+
+
+class Started:
+    """An output being written by a child process (see :meth:`Staging.start`)."""
+
+    def __init__(self, stage: Staging, target: Path, tmp: Path, job: forked.Forked):
+        self.stage, self.target, self.tmp, self.job = stage, target, tmp, job
+
+    def finish(self) -> Any:
+        """Wait for the child and return its result (its OSErrors become OutputError)."""
+        return self.stage._write_tmp(self.target, self.tmp, lambda tmp: self.job.result())
+
+    def add(self, writer: Callable[[Path], Any]) -> Any:
+        """Once finished, add to the file: return ``writer(tmp_path)`` (OSErrors become OutputError)."""
+        return self.stage._write_tmp(self.target, self.tmp, writer)
 
 
 def _fresh_name(target: Path, tag: str) -> Path:
@@ -221,75 +240,40 @@ GPKG_CACHE_MB = 512
 Layer = pd.DataFrame | Callable[[], pd.DataFrame]
 
 
-def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
-    """Write each frame as a layer (GeoDataFrames with a spatial index, others as plain tables).
+def start_geopackage(path: Path, layers: Mapping[str, Layer]) -> forked.Forked:
+    """Start writing each frame as a layer of ``path`` (GeoDataFrames with a spatial index,
+    others as plain tables) in a forked child process, and return at once.
 
-    The writing runs in a forked child process (pyogrio holds the GIL while it
-    converts and writes, so a thread would overlap nothing): this call waits
-    for it, then raises here whatever the child raised. The child shares the
-    frames with this process copy-on-write, so nothing is serialised.
+    The child shares the frames with this process copy-on-write, so nothing
+    is serialised, and pyogrio (which holds the GIL while it converts and
+    writes) does not stop this process. ``.result()`` waits, raises here
+    whatever the child raised, and returns the seconds each layer took. A
+    path that already holds a GeoPackage gets the layers added.
     """
-    in_forked_child(_write_geopackage, path, layers)
+    return forked.start(_write_geopackage, path, layers, what="writer", path=path)
 
 
-def _write_geopackage(path: Path, layers: Mapping[str, Layer]) -> None:
+def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
+    """Like :func:`start_geopackage`, waiting for the child."""
+    return start_geopackage(path, layers).result()
+
+
+def _write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})  # in the child only
-    _write_layers(path, layers)
-
-
-def in_forked_child(fn: Callable[..., None], path: Path, *args: Any) -> None:
-    """Call ``fn(path, *args)`` in a forked child process and wait for it (POSIX only, as the output lock).
-
-    An exception in the child is raised again here, with the child's
-    traceback as a note; a child killed by a signal raises OutputError
-    naming ``path``.
-    """
-    read_fd, write_fd = os.pipe()
-    pid = os.fork()
-    if pid == 0:  # the child: never returns into the caller's code
-        code = 0
-        try:
-            os.close(read_fd)
-            fn(path, *args)
-        except BaseException as exc:
-            code = 1
-            try:
-                with os.fdopen(write_fd, "wb") as fh:
-                    fh.write(_pickled(exc))
-            except BaseException:
-                code = 3
-        finally:
-            os._exit(code)
-    os.close(write_fd)
-    with os.fdopen(read_fd, "rb") as fh:
-        payload = fh.read()
-    _, status = os.waitpid(pid, 0)
-    if payload:
-        exc, child_traceback = pickle.loads(payload)
-        exc.add_note(f"raised in the writer process {pid}:\n{child_traceback}")
-        raise exc
-    code = os.waitstatus_to_exitcode(status)
-    if code != 0:
-        how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
-        raise OutputError(f"the writer process {how}; check free memory and disk space, then run again",
-                          path=path)
-
-
-def _pickled(exc: BaseException) -> bytes:
-    text = "".join(traceback.format_exception(exc))
-    try:
-        return pickle.dumps((exc, text))
-    except Exception:  # an exception that cannot be pickled: send its type and message
-        return pickle.dumps((RuntimeError(f"{type(exc).__name__}: {exc}"), text))
+    return _write_layers(path, layers)
 
 
 #: shapely.get_type_id of a missing geometry and of a Point
 MISSING, POINT = -1, 0
 
 
-def _write_layers(path: Path, layers: Mapping[str, Layer]) -> None:
+def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
+    seconds = {}
     for name, layer in layers.items():
+        t0 = time.perf_counter()
         _write_layer(path, name, layer() if callable(layer) else layer)  # a made frame is freed on return
+        seconds[name] = round(time.perf_counter() - t0, 4)
+    return seconds
 
 
 def _write_layer(path: Path, name: str, df: pd.DataFrame) -> None:
