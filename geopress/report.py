@@ -170,15 +170,16 @@ MAP_RARE = 2_000
 def map_sample(status: np.ndarray) -> np.ndarray:
     """Positions of the customers a zone map draws: every k-th of the common statuses, all of the rare ones.
 
-    Beyond :data:`MAP_POINTS` points a map shows no more (they overlap at
-    the figure's resolution) and drawing them costs seconds; the legend
-    still counts every customer.
+    ``status`` holds one status per customer, as names or as integer codes
+    (the same selection either way). Beyond :data:`MAP_POINTS` points a map
+    shows no more (they overlap at the figure's resolution) and drawing
+    them costs seconds; the legend still counts every customer.
     """
     n = status.size
     if n <= MAP_POINTS:
         return np.arange(n)
-    names, inverse, per = np.unique(status.astype(str), return_inverse=True, return_counts=True)
-    rare = per[inverse] <= MAP_RARE
+    codes = pd.factorize(status)[0] + 1  # 0: missing statuses, counted together
+    rare = np.bincount(codes)[codes] <= MAP_RARE
     step = int(np.ceil(n / MAP_POINTS))
     keep = rare | (np.arange(n) % step == 0)
     return np.flatnonzero(keep)

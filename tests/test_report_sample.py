@@ -21,3 +21,18 @@ def test_large_zones_keep_every_rare_customer_and_about_map_points_in_all():
     # every 6th of the 100,050 customers (ceil(100,050 / 20,000) = 6) plus the rare ones
     assert len(drawn) <= report.MAP_POINTS + n_high
     assert np.all(np.diff(drawn) > 0)  # in input order, no repeats
+
+
+def test_status_codes_select_the_same_customers_as_status_names():
+    # the report passes integer codes (pd.factorize of the status column); the selection must not depend on it
+    rng = np.random.default_rng(1)
+    names = np.array(["ok", "high", "low", "above_hgl", "low_upper_floors"], dtype=object)
+    # two common statuses, one just at MAP_RARE (drawn whole), one just above it, one very rare
+    per = [3 * report.MAP_POINTS, report.MAP_POINTS, report.MAP_RARE, report.MAP_RARE + 1, 7]
+    codes = rng.permutation(np.repeat(np.arange(len(names)), per))
+    drawn = report.map_sample(codes)
+    assert np.array_equal(drawn, report.map_sample(names[codes]))
+    for code in (2, 4):  # the statuses with at most MAP_RARE customers are drawn whole
+        assert np.array_equal(drawn[codes[drawn] == code], np.flatnonzero(codes == code))
+    assert (codes[drawn] == 3).sum() < report.MAP_RARE + 1  # one more than MAP_RARE is sampled like the common ones
+
