@@ -60,8 +60,14 @@ CAUTIONS = (
 )
 
 
-def _png(fig: Figure) -> str:
+def _figure(figsize: tuple[float, float]) -> Figure:
+    """A figure on an Agg canvas from the start, so tight_layout and savefig share one renderer and its text metrics."""
+    fig = Figure(figsize=figsize)
     FigureCanvasAgg(fig)
+    return fig
+
+
+def _png(fig: Figure) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=100)
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
@@ -69,7 +75,7 @@ def _png(fig: Figure) -> str:
 
 def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> str:
     """PNG data URI: histograms of the zone's psi_min and psi_max with both thresholds drawn."""
-    fig = Figure(figsize=(6.4, 3.6))
+    fig = _figure((6.4, 3.6))
     ax = fig.add_subplot()
     pmin = units.pressure_from_psi(psi_min)
     pmax = units.pressure_from_psi(psi_max)
@@ -189,7 +195,7 @@ def zone_map(m: ZoneMap) -> str:
     """PNG data URI: customers coloured by status over a hillshade, with zone outline, band and limit lines."""
     left, bottom, right, top = m.zone_geom.bounds
     aspect = min(max((top - bottom) / max(right - left, 1e-9), 0.3), 2.0)
-    fig = Figure(figsize=(7.5, 5.6 * aspect + 2.0))
+    fig = _figure((7.5, 5.6 * aspect + 2.0))
     ax = fig.add_subplot()
     shade = hillshade(m.dem_ft, m.pixel, m.ft_per_map_unit)
     ax.imshow(np.ma.masked_invalid(shade), extent=m.extent, cmap="gray", vmin=0, vmax=1, interpolation="nearest",
