@@ -73,6 +73,15 @@ def _png(fig: Figure) -> str:
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
+def bin_counts(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
+    """``np.histogram(values, edges)[0]`` for equal-width ``edges`` from ``np.histogram_bin_edges(..., bins=n)``.
+
+    Counted by numpy's equal-width path, which needs no sort of ``values``:
+    the same counts, several times faster for a large zone.
+    """
+    return np.histogram(values, bins=edges.size - 1, range=(edges[0], edges[-1]))[0]
+
+
 def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> str:
     """PNG data URI: histograms of the zone's psi_min and psi_max with both thresholds drawn."""
     fig = _figure((6.4, 3.6))
@@ -84,15 +93,18 @@ def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Cri
     hi_t = float(units.pressure_from_psi(criteria.max_static_psi))
     both = np.concatenate([pmin, pmax, [lo_t, hi_t]])
     bins = np.histogram_bin_edges(both, bins=40)
+    # binned here (no sort), then drawn as one weighted value per bin: the same bars as ax.hist(values, bins=bins)
+    lefts = bins[:-1]
     if pmin.size and np.array_equal(pmin, pmax):  # one HGL (PRV, pump): the two histograms coincide
-        ax.hist(pmin, bins=bins, color=OKABE_ITO["bluish_green"], label="pressure at the zone's one HGL")
+        ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["bluish_green"],
+                label="pressure at the zone's one HGL")
     else:
         if pmin.size:
-            ax.hist(pmin, bins=bins, color=OKABE_ITO["blue"], histtype="stepfilled", alpha=0.5,
-                    label="pressure at low HGL (psi_min)")
+            ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["blue"], histtype="stepfilled",
+                    alpha=0.5, label="pressure at low HGL (psi_min)")
         if pmax.size:
-            ax.hist(pmax, bins=bins, color=OKABE_ITO["vermillion"], histtype="step", linewidth=1.8,
-                    label="pressure at high HGL (psi_max), outline")
+            ax.hist(lefts, bins=bins, weights=bin_counts(pmax, bins), color=OKABE_ITO["vermillion"], histtype="step",
+                    linewidth=1.8, label="pressure at high HGL (psi_max), outline")
     ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:.4g} {units.pressure}")
     ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:.4g} {units.pressure}")
     ax.set_xlabel(f"static pressure at ground, {units.pressure}")

@@ -1,4 +1,4 @@
-"""The zone maps draw a sample of a large zone's customers; rare statuses are drawn whole."""
+"""The zone maps draw a sample of a large zone's customers (rare statuses whole); the histograms count them all."""
 
 from __future__ import annotations
 
@@ -36,3 +36,10 @@ def test_status_codes_select_the_same_customers_as_status_names():
         assert np.array_equal(drawn[codes[drawn] == code], np.flatnonzero(codes == code))
     assert (codes[drawn] == 3).sum() < report.MAP_RARE + 1  # one more than MAP_RARE is sampled like the common ones
 
+
+def test_bin_counts_are_numpy_histogram_counts_also_on_the_edges():
+    rng = np.random.default_rng(2)
+    values = np.concatenate([rng.normal(60.0, 15.0, 50_000), [35.0, 80.0]])
+    edges = np.histogram_bin_edges(values, bins=40)
+    values = np.concatenate([values, edges, edges])  # values exactly on every edge, the outer two included
+    assert np.array_equal(report.bin_counts(values, edges), np.histogram(values, bins=edges)[0])
