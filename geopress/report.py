@@ -69,7 +69,8 @@ def _figure(figsize: tuple[float, float]) -> Figure:
 
 def _png(fig: Figure) -> str:
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100)
+    # zlib level 3, not Pillow's default 6: the same pixels, encoded in about half the time, a few per cent larger
+    fig.savefig(buf, format="png", dpi=100, pil_kwargs={"compress_level": 3})
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
