@@ -196,19 +196,25 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
     from .units import units_for
 
     units = units_for(cfg.output.units)
-    zone_col = customers["zone"].to_numpy(dtype=object)
-    pressures = {z: (customers["psi_min"].to_numpy(dtype=np.float64)[zone_col == z],
-                     customers["psi_max"].to_numpy(dtype=np.float64)[zone_col == z])
-                 for z in summary["zone"].tolist()}
+    # zones and statuses as integer codes into their names (unzoned -> -1): compared as integers, not as strings
+    zone_code, zone_names = pd.factorize(customers["zone"])
+    code_of = {z: i for i, z in enumerate(zone_names.tolist())}
+    status_code, status_names = pd.factorize(customers["status"])  # every customer has a status
+    status_names = np.asarray(status_names, dtype=object)
+    psi_min = customers["psi_min"].to_numpy(dtype=np.float64)
+    psi_max = customers["psi_max"].to_numpy(dtype=np.float64)
+    pressures = {}
+    for z in summary["zone"].tolist():
+        sel = zone_code == code_of.get(z, -2)
+        pressures[z] = (psi_min[sel], psi_max[sel])
     maps = []
     geom = customers.geometry.to_numpy()
-    status = customers["status"].to_numpy(dtype=object)
+    drawable = ~(shapely.is_missing(geom) | shapely.is_empty(geom))
     for zt in (plan.terrain if plan is not None else []):
-        sel = np.flatnonzero(zone_col == zt.zone)
-        sel = sel[~(shapely.is_missing(geom[sel]) | shapely.is_empty(geom[sel]))]
-        names, per = np.unique(status[sel].astype(str), return_counts=True)
-        counts = dict(zip(names.tolist(), per.tolist()))
-        sel = sel[report.map_sample(status[sel])]
+        sel = np.flatnonzero((zone_code == code_of.get(zt.zone, -2)) & drawable)
+        per = np.bincount(status_code[sel], minlength=len(status_names))
+        counts = {status_names[i]: int(per[i]) for i in np.flatnonzero(per)}
+        sel = sel[report.map_sample(status_code[sel])]
         pts = gpd.GeoSeries(geom[sel], crs=customers.crs)
         if customers.crs is not None and not zt.crs.equals(customers.crs):
             pts = pts.to_crs(zt.crs)
@@ -216,7 +222,8 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         maps.append(report.ZoneMap(
             zone=zt.zone, dem_ft=zt.dem_ft, extent=zt.extent, pixel=zt.pixel, ft_per_map_unit=m_per_unit / M_PER_FT,
             zone_geom=zt.zone_geom, band_geom=zt.band_geom, limits=zt.limits,
-            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status[sel], counts=counts,
+            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status_names[status_code[sel]],
+            counts=counts,
         ))
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,

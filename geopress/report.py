@@ -60,16 +60,32 @@ CAUTIONS = (
 )
 
 
-def _png(fig: Figure) -> str:
+def _figure(figsize: tuple[float, float]) -> Figure:
+    """A figure on an Agg canvas from the start, so tight_layout and savefig share one renderer and its text metrics."""
+    fig = Figure(figsize=figsize)
     FigureCanvasAgg(fig)
+    return fig
+
+
+def _png(fig: Figure) -> str:
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100)
+    # zlib level 3, not Pillow's default 6: the same pixels, encoded in about half the time, a few per cent larger
+    fig.savefig(buf, format="png", dpi=100, pil_kwargs={"compress_level": 3})
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def bin_counts(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
+    """``np.histogram(values, edges)[0]`` for equal-width ``edges`` from ``np.histogram_bin_edges(..., bins=n)``.
+
+    Counted by numpy's equal-width path, which needs no sort of ``values``:
+    the same counts, several times faster for a large zone.
+    """
+    return np.histogram(values, bins=edges.size - 1, range=(edges[0], edges[-1]))[0]
 
 
 def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> str:
     """PNG data URI: histograms of the zone's psi_min and psi_max with both thresholds drawn."""
-    fig = Figure(figsize=(6.4, 3.6))
+    fig = _figure((6.4, 3.6))
     ax = fig.add_subplot()
     pmin = units.pressure_from_psi(psi_min)
     pmax = units.pressure_from_psi(psi_max)
@@ -78,15 +94,18 @@ def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Cri
     hi_t = float(units.pressure_from_psi(criteria.max_static_psi))
     both = np.concatenate([pmin, pmax, [lo_t, hi_t]])
     bins = np.histogram_bin_edges(both, bins=40)
+    # binned here (no sort), then drawn as one weighted value per bin: the same bars as ax.hist(values, bins=bins)
+    lefts = bins[:-1]
     if pmin.size and np.array_equal(pmin, pmax):  # one HGL (PRV, pump): the two histograms coincide
-        ax.hist(pmin, bins=bins, color=OKABE_ITO["bluish_green"], label="pressure at the zone's one HGL")
+        ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["bluish_green"],
+                label="pressure at the zone's one HGL")
     else:
         if pmin.size:
-            ax.hist(pmin, bins=bins, color=OKABE_ITO["blue"], histtype="stepfilled", alpha=0.5,
-                    label="pressure at low HGL (psi_min)")
+            ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["blue"], histtype="stepfilled",
+                    alpha=0.5, label="pressure at low HGL (psi_min)")
         if pmax.size:
-            ax.hist(pmax, bins=bins, color=OKABE_ITO["vermillion"], histtype="step", linewidth=1.8,
-                    label="pressure at high HGL (psi_max), outline")
+            ax.hist(lefts, bins=bins, weights=bin_counts(pmax, bins), color=OKABE_ITO["vermillion"], histtype="step",
+                    linewidth=1.8, label="pressure at high HGL (psi_max), outline")
     ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:.4g} {units.pressure}")
     ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:.4g} {units.pressure}")
     ax.set_xlabel(f"static pressure at ground, {units.pressure}")
@@ -170,15 +189,16 @@ MAP_RARE = 2_000
 def map_sample(status: np.ndarray) -> np.ndarray:
     """Positions of the customers a zone map draws: every k-th of the common statuses, all of the rare ones.
 
-    Beyond :data:`MAP_POINTS` points a map shows no more (they overlap at
-    the figure's resolution) and drawing them costs seconds; the legend
-    still counts every customer.
+    ``status`` holds one status per customer, as names or as integer codes
+    (the same selection either way). Beyond :data:`MAP_POINTS` points a map
+    shows no more (they overlap at the figure's resolution) and drawing
+    them costs seconds; the legend still counts every customer.
     """
     n = status.size
     if n <= MAP_POINTS:
         return np.arange(n)
-    names, inverse, per = np.unique(status.astype(str), return_inverse=True, return_counts=True)
-    rare = per[inverse] <= MAP_RARE
+    codes = pd.factorize(status)[0] + 1  # 0: missing statuses, counted together
+    rare = np.bincount(codes)[codes] <= MAP_RARE
     step = int(np.ceil(n / MAP_POINTS))
     keep = rare | (np.arange(n) % step == 0)
     return np.flatnonzero(keep)
@@ -188,7 +208,7 @@ def zone_map(m: ZoneMap) -> str:
     """PNG data URI: customers coloured by status over a hillshade, with zone outline, band and limit lines."""
     left, bottom, right, top = m.zone_geom.bounds
     aspect = min(max((top - bottom) / max(right - left, 1e-9), 0.3), 2.0)
-    fig = Figure(figsize=(7.5, 5.6 * aspect + 2.0))
+    fig = _figure((7.5, 5.6 * aspect + 2.0))
     ax = fig.add_subplot()
     shade = hillshade(m.dem_ft, m.pixel, m.ft_per_map_unit)
     ax.imshow(np.ma.masked_invalid(shade), extent=m.extent, cmap="gray", vmin=0, vmax=1, interpolation="nearest",
