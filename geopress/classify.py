@@ -22,8 +22,11 @@ Classification is monotone: lowering a customer's ground never moves it from
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
+import pandas as pd
+import pyarrow as pa
 from numpy.typing import ArrayLike, NDArray
 
 from .pressure import DEFAULT_PSI_PER_FT
@@ -101,13 +104,50 @@ def status_names(codes: ArrayLike) -> NDArray[np.str_]:
     return np.asarray(STATUSES)[np.asarray(codes, dtype=np.intp)]
 
 
-def _num(values: NDArray[np.float64]) -> NDArray[np.str_]:
-    """Values rounded to 0.1 as text, without a negative zero."""
-    return (np.round(values, 1) + 0.0).astype(str)
+def _rounded(values: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Values rounded to 0.1, without a negative zero."""
+    return np.round(values, 1) + 0.0
+
+
+def _distinct(columns: list[NDArray], n: int) -> tuple[NDArray[np.intp], int, list[NDArray]]:
+    """For ``n`` rows of ``columns``: each row's index among the distinct rows, their count, and the distinct rows.
+
+    Values compare as numbers, every NaN equal to every other (all print as ``nan``). The distinct rows are
+    in order of first appearance, as columns.
+    """
+    key = np.zeros(n, dtype=np.int64)
+    uniques = []
+    for col in columns:
+        code, u = pd.factorize(col, use_na_sentinel=False)
+        key = key * len(u) + code  # below n ** len(columns): no overflow for two columns of up to 3e9 rows
+        uniques.append(u)
+    index, keys = pd.factorize(key)
+    count = len(keys)
+    values = []
+    for u in reversed(uniques):
+        keys, code = np.divmod(keys, len(u))
+        values.append(u[code])
+    return index, count, values[::-1]
 
 
 def _g(value: float) -> str:
     return f"{value:g}"
+
+
+#: each status's sentence: a template for str.format with the criteria as ``lo`` and ``hi``, and the
+#: numbers (keys of the ``numbers`` in :func:`reasons`) that fill its ``{}`` in order
+_SENTENCES: dict[str, tuple[str, tuple[str, ...]]] = {
+    "no_geometry": ("no usable geometry: location unknown", ()),
+    "no_terrain": ("no ground elevation here (outside every DEM or on nodata)", ()),
+    "unzoned": ("outside every pressure zone", ()),
+    "above_hgl": ("ground at {} ft is at or above the low HGL of {} ft: no service by gravity, booster service needed",
+                  ("ground", "hgl_low")),
+    "low": ("static pressure down to {} psi is below {lo} psi: low service pressure", ("pmin",)),
+    "high": ("static pressure up to {} psi exceeds {hi} psi: individual PRV expected", ("pmax",)),
+    "low_upper_floors": ("top floor of {} stories down to {} psi is below {lo} psi: upper floors need a booster",
+                         ("stories", "ptop")),
+    "ok": ("static pressure {} to {} psi, within {lo} to {hi} psi", ("pmin", "pmax")),
+}
 
 
 def reasons(
@@ -120,48 +160,35 @@ def reasons(
     psi_top: ArrayLike,
     floors: ArrayLike,
     criteria: Criteria,
-) -> NDArray[np.object_]:
-    """One sentence per customer saying why it has its status, with the numbers."""
+) -> pd.api.extensions.ExtensionArray:
+    """One sentence per customer saying why it has its status, with the numbers, as pandas text (``"str"``).
+
+    Numbers are rounded to 0.1 (stories to whole ones) and printed as numpy prints them. Each distinct
+    sentence is made once: the numbers repeat (a million customers have a few thousand distinct ones),
+    so the text of the rows is one Arrow take from that small table, with no Python string per row.
+    """
     codes = np.asarray(codes)
-    out = np.empty(codes.shape, dtype=object)
-    lo, hi = _g(criteria.min_static_psi), _g(criteria.max_static_psi)
     cols = {
         "ground": np.asarray(ground_ft, dtype=np.float64),
         "hgl_low": np.asarray(hgl_low_ft, dtype=np.float64),
         "pmin": np.asarray(psi_min, dtype=np.float64),
         "pmax": np.asarray(psi_max, dtype=np.float64),
         "ptop": np.asarray(psi_top, dtype=np.float64),
-        "floors": np.asarray(floors, dtype=np.float64),
     }
-    add = np.strings.add
-
-    def sel(name: str, mask: NDArray[np.bool_]) -> NDArray[np.str_]:
-        return _num(cols[name][mask])
-
-    fixed = {
-        "no_geometry": "no usable geometry: location unknown",
-        "no_terrain": "no ground elevation here (outside every DEM or on nodata)",
-        "unzoned": "outside every pressure zone",
+    floors_arr = np.asarray(floors, dtype=np.float64)
+    # the numbers of the rows selected by a mask; stories only where needed (floors may be NaN elsewhere)
+    numbers: dict[str, Callable[[NDArray[np.bool_]], NDArray]] = {
+        name: (lambda m, v=values: _rounded(v[m])) for name, values in cols.items()
     }
-    for name, text in fixed.items():
-        out[codes == CODE[name]] = text
-    m = codes == CODE["above_hgl"]
-    if m.any():
-        out[m] = add(add(add(add("ground at ", sel("ground", m)), " ft is at or above the low HGL of "), sel("hgl_low", m)),
-                     " ft: no service by gravity, booster service needed")
-    m = codes == CODE["low"]
-    if m.any():
-        out[m] = add(add("static pressure down to ", sel("pmin", m)), f" psi is below {lo} psi: low service pressure")
-    m = codes == CODE["high"]
-    if m.any():
-        out[m] = add(add("static pressure up to ", sel("pmax", m)), f" psi exceeds {hi} psi: individual PRV expected")
-    m = codes == CODE["low_upper_floors"]
-    if m.any():
-        stories = np.round(cols["floors"][m]).astype(np.int64).astype(str)
-        out[m] = add(add(add(add("top floor of ", stories), " stories down to "), sel("ptop", m)),
-                     f" psi is below {lo} psi: upper floors need a booster")
-    m = codes == CODE["ok"]
-    if m.any():
-        out[m] = add(add(add(add("static pressure ", sel("pmin", m)), " to "), sel("pmax", m)),
-                     f" psi, within {lo} to {hi} psi")
-    return out
+    numbers["stories"] = lambda m: np.round(floors_arr[m]).astype(np.int64)
+    lo, hi = _g(criteria.min_static_psi), _g(criteria.max_static_psi)
+    sentence = np.full(codes.shape, -1, dtype=np.intp)  # index into table; a code of no status fails the take
+    table: list[str] = []
+    for status, (template, names) in _SENTENCES.items():
+        m = codes == CODE[status]
+        if m.any():
+            index, count, values = _distinct([numbers[name](m) for name in names], int(np.count_nonzero(m)))
+            texts = [v.astype(str) for v in values]
+            sentence[m] = len(table) + index
+            table.extend(template.format(*(t[i] for t in texts), lo=lo, hi=hi) for i in range(count))
+    return pd.array(pa.array(table, type=pa.large_string()).take(sentence), dtype="str")

@@ -144,6 +144,56 @@ def test_reasons_never_print_negative_zero():
     assert "-0.0" not in text[0]
 
 
+def reference_reason(code, ground, hgl_low, pmin, pmax, ptop, floors, crit) -> str:
+    """The reason sentence formatted one customer at a time (numbers as numpy prints a rounded float64)."""
+    def num(v):
+        return str(np.round(np.float64(v), 1) + 0.0)  # + 0.0: no negative zero
+
+    lo, hi = f"{crit.min_static_psi:g}", f"{crit.max_static_psi:g}"
+    status = STATUSES[code]
+    if status == "no_geometry":
+        return "no usable geometry: location unknown"
+    if status == "no_terrain":
+        return "no ground elevation here (outside every DEM or on nodata)"
+    if status == "unzoned":
+        return "outside every pressure zone"
+    if status == "above_hgl":
+        return (f"ground at {num(ground)} ft is at or above the low HGL of {num(hgl_low)} ft: "
+                "no service by gravity, booster service needed")
+    if status == "low":
+        return f"static pressure down to {num(pmin)} psi is below {lo} psi: low service pressure"
+    if status == "high":
+        return f"static pressure up to {num(pmax)} psi exceeds {hi} psi: individual PRV expected"
+    if status == "low_upper_floors":
+        return (f"top floor of {int(np.round(floors))} stories down to {num(ptop)} psi is below {lo} psi: "
+                "upper floors need a booster")
+    return f"static pressure {num(pmin)} to {num(pmax)} psi, within {lo} to {hi} psi"
+
+
+# repeated values (so rows share table entries), halves of 0.1 and near-zero negatives (rounding, negative
+# zero), NaN and infinities, and any float small enough that rounding to 0.1 cannot overflow
+number = st.one_of(
+    st.integers(-40, 40).map(lambda k: k / 20),
+    st.sampled_from([float("nan"), float("inf"), float("-inf"), -0.0, -0.04, 2.675, 1e-7, 1e15, 123456.75]),
+    st.floats(-1e12, 1e12),
+)
+reason_row = st.tuples(st.integers(0, len(STATUSES) - 1), number, number, number, number, number,
+                       st.one_of(st.sampled_from([1.0, 2.0, 2.5, 3.5, float("nan")]), st.floats(1.0, 500.0)))
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(reason_row, max_size=60), st.floats(0.0, 60.0), st.floats(0.0, 100.0))
+def test_reasons_equal_the_sentences_formatted_one_customer_at_a_time(rows, lo, span):
+    crit = Criteria(min_static_psi=lo, max_static_psi=lo + span)
+    # floors may be NaN (no floors field), but a customer with low upper floors has a number of stories
+    rows = [r[:6] + (1.0 if r[0] == CODE["low_upper_floors"] and np.isnan(r[6]) else r[6],) for r in rows]
+    codes, ground, hgl_low, pmin, pmax, ptop, floors = (np.array(c) for c in zip(*rows)) if rows else [[]] * 7
+    got = reasons(np.asarray(codes, dtype=np.int8), ground_ft=ground, hgl_low_ft=hgl_low, psi_min=pmin,
+                  psi_max=pmax, psi_top=ptop, floors=floors, criteria=crit)
+    assert got.dtype == "str"
+    assert got.tolist() == [reference_reason(*r, crit) for r in rows]
+
+
 def test_default_thresholds_are_the_code_values():
     crit = Criteria()
     # 80 psi maximum static: Uniform Plumbing Code 608.2 (confirmed); International Plumbing Code 604.8 and
