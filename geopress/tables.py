@@ -12,6 +12,8 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from .classify import FLAGGED_LAYERS, STATUSES
 from .pressure import Source
@@ -47,9 +49,38 @@ def neutralise_frame(df: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-def _join_runs(values: list[str], starts: np.ndarray, ends: np.ndarray) -> list[str]:
-    """``"; "``-joined ``values[s:e]`` for each run."""
-    return ["; ".join(values[s:e]) for s, e in zip(starts.tolist(), ends.tolist())]
+def _join_runs(values: pa.Array, starts: np.ndarray) -> pa.Array:
+    """``"; "``-joined ``values[s:e]`` for each run, runs starting at ``starts`` and ending where the next starts."""
+    offsets = pa.array(np.r_[starts, len(values)], type=pa.int64())
+    return pc.binary_join(pa.LargeListArray.from_arrays(offsets, values), pa.scalar("; ", values.type))
+
+
+def _group_key(column: pd.Series) -> pa.Array:
+    """A column to sort rows into groups by: Arrow text as it is (equal strings, or both missing, group
+    together), any other dtype as the codes of pandas' factorize (its equality, as in a pandas groupby)."""
+    if isinstance(column.array, pd.arrays.ArrowStringArray):
+        return pa.array(column)
+    return pa.array(pd.factorize(column, use_na_sentinel=False)[0])
+
+
+def _changes(values: pa.Array) -> np.ndarray:
+    """For each value after the first: whether it differs from the one before (two missing are equal)."""
+    after, before = values[1:], values[:-1]
+    both_valid_differ = pc.not_equal(after, before)
+    one_missing = pc.xor(pc.is_null(after), pc.is_null(before))
+    return pc.fill_null(both_valid_differ, one_missing).to_numpy(zero_copy_only=False)
+
+
+def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """``column.map(str)`` as the distinct texts, sorted, and each row's index among them."""
+    if column.dtype == "str":  # text already: the same texts from the few distinct values
+        code, uniques = pd.factorize(column, use_na_sentinel=False)
+        texts = np.asarray([str(u) for u in uniques], dtype=str)
+    else:
+        code, uniques = pd.factorize(column.map(str), use_na_sentinel=False)
+        texts = np.asarray(uniques, dtype=str)
+    distinct, rank = np.unique(texts, return_inverse=True)
+    return distinct, rank[code]
 
 
 def mailing_list(
@@ -60,41 +91,55 @@ def mailing_list(
     Columns: the mail fields, ``accounts`` (ids joined by "; ", sorted),
     ``customer_count``, ``zones`` and ``worst_psi`` (the highest psi_max for
     high pressure, the lowest psi_min or psi_top otherwise). Rows are sorted
-    most severe first, then by first account. Without mail fields, one row per
-    customer.
+    most severe first, then by first account (then by first appearance of the
+    address). Without mail fields, one row per customer.
     """
     col, how = WORST[status]
-    # the id field may also be a mail field: select each column once
-    sub = customers.loc[customers["status"] == status, list(dict.fromkeys([id_field, *mail_fields, "zone", col]))]
     keys = list(mail_fields) or [id_field]
     cols = [*keys, "accounts", "customer_count", "zones", "worst_psi"]
-    if sub.empty:
+    rows = np.flatnonzero((customers["status"] == status).to_numpy(dtype=bool))
+    if rows.size == 0:
         return pd.DataFrame(columns=cols)
-    # vectorised group-by: one integer code per address, then runs of a sort by (code, text)
-    code = sub.groupby(keys, dropna=False, sort=False).ngroup().to_numpy()
-    n_groups = int(code.max()) + 1
-    ids = np.asarray(sub[id_field].astype(str).to_numpy(dtype=object), dtype=str)
-    order = np.lexsort((ids, code))
-    sorted_code = code[order]
-    starts = np.flatnonzero(np.r_[True, sorted_code[1:] != sorted_code[:-1]])
-    ends = np.r_[starts[1:], sorted_code.size]
-    accounts = _join_runs(ids[order].tolist(), starts, ends)
-    zones = np.asarray(sub["zone"].map(str).to_numpy(dtype=object), dtype=str)
-    zorder = np.lexsort((zones, code))
-    zc, zs = code[zorder], zones[zorder]
-    first = np.r_[True, (zc[1:] != zc[:-1]) | (zs[1:] != zs[:-1])]  # distinct zones per address
-    zc, zs = zc[first], zs[first]
-    zstarts = np.flatnonzero(np.r_[True, zc[1:] != zc[:-1]])
-    zends = np.r_[zstarts[1:], zc.size]
-    first_row = order[starts]  # rows sorted by code, so group g's first row is at starts[g]
-    out = sub.iloc[first_row][keys].reset_index(drop=True)
-    out["accounts"] = accounts
-    out["customer_count"] = np.bincount(code, minlength=n_groups)
-    out["zones"] = _join_runs(zs.tolist(), zstarts, zends)
-    worst = pd.Series(sub[col].to_numpy(dtype=np.float64)).groupby(code).agg(how)
-    out["worst_psi"] = worst.reindex(range(n_groups)).to_numpy().round(1)
-    ascending = how == "min"
-    out = out.sort_values(["worst_psi", "accounts"], ascending=[ascending, True], kind="stable").reset_index(drop=True)
+    # the id field may also be a mail field: select each column once
+    sub = customers[list(dict.fromkeys([id_field, *mail_fields, "zone", col]))].iloc[rows]
+    n = len(sub)
+    # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
+    ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
+    group_keys = [_group_key(sub[k]) for k in keys]
+    table = pa.table({**{f"key{i}": k for i, k in enumerate(group_keys)}, "id": ids})
+    order = pc.sort_indices(table, sort_keys=[(c, "ascending") for c in table.column_names]).to_numpy()
+    new = np.zeros(n, dtype=bool)
+    new[0] = True
+    for k in group_keys:
+        new[1:] |= _changes(k.take(order))
+    starts = np.flatnonzero(new)
+    n_groups = starts.size
+    group = np.empty(n, dtype=np.intp)  # each row's address, numbered in sorted order
+    group[order] = np.cumsum(new) - 1
+    accounts = _join_runs(ids.take(order), starts)
+    distinct, zone = _texts(sub["zone"])
+    pairs = np.sort(group * distinct.size + zone)  # zones per address, by address then text
+    pairs = pairs[np.r_[True, pairs[1:] != pairs[:-1]]]  # each distinct once
+    pair_group, pair_zone = np.divmod(pairs, distinct.size)
+    zones = _join_runs(pa.array(distinct, type=pa.large_string()).take(pair_zone),
+                       np.flatnonzero(np.r_[True, pair_group[1:] != pair_group[:-1]]))
+    # pandas' min/max (NaN skipped; of equal values the first row's); unsorted groups are much faster
+    by_group = pd.Series(sub[col].to_numpy(dtype=np.float64)).groupby(group, sort=False).agg(how)
+    worst = np.empty(n_groups)
+    worst[by_group.index.to_numpy()] = by_group.to_numpy().round(1)
+    # most severe first (missing last), then by accounts, then as the addresses first appear: stable
+    # sorts by the last of these first
+    by_text = pa.table({"accounts": accounts, "first_seen": np.minimum.reduceat(order, starts)})
+    out_order = pc.sort_indices(by_text, sort_keys=[("accounts", "ascending"), ("first_seen", "ascending")]).to_numpy()
+    severity = np.where(np.isnan(worst), 0.0, worst if how == "min" else -worst)[out_order]
+    out_order = out_order[np.argsort(severity, kind="stable")]
+    missing = np.isnan(worst[out_order])
+    out_order = np.r_[out_order[~missing], out_order[missing]]
+    out = sub[keys].iloc[order[starts[out_order]]].reset_index(drop=True)  # the address as its first id has it
+    out["accounts"] = pd.array(accounts.take(out_order), dtype="str")
+    out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
+    out["zones"] = pd.array(zones.take(out_order), dtype="str")
+    out["worst_psi"] = worst[out_order]
     return neutralise_frame(out[cols])
 
 
