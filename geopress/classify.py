@@ -112,8 +112,9 @@ def _rounded(values: NDArray[np.float64]) -> NDArray[np.float64]:
 def _distinct(columns: list[NDArray], n: int) -> tuple[NDArray[np.intp], int, list[NDArray]]:
     """For ``n`` rows of ``columns``: each row's index among the distinct rows, their count, and the distinct rows.
 
-    Values compare as numbers, every NaN equal to every other (all print as ``nan``). The distinct rows are
-    in order of first appearance, as columns.
+    Values compare as numbers, every NaN equal to every other (all print as ``nan``), -0.0 equal to 0.0
+    (so the numbers passed have no negative zero). The distinct rows are in order of first appearance,
+    as columns.
     """
     key = np.zeros(n, dtype=np.int64)
     uniques = []
