@@ -226,7 +226,6 @@ def _compute(cfg: Config, clock: _Clock, cust: vector_io.Customers, zones: vecto
         for c in extra:
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
-        del data, reason  # the frame holds the reasons as Arrow text: free the Python strings
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
     if on_customers is not None:
         on_customers(customers)
