@@ -55,14 +55,32 @@ def test_newly_in_status_counts_new_customers_and_changed_statuses_not_repeats()
 
 
 status = st.sampled_from(STATUSES)
+run_statuses = st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12)
 
 
-@given(st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12),
-       st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12))
-def test_every_customer_of_either_run_gets_exactly_one_change(prev, cur):
+@st.composite
+def two_runs(draw):
+    """Two runs: the same customers in the same order (as on most nights) or in another order, or any two."""
+    prev = draw(run_statuses)
+    how = draw(st.sampled_from(["same", "reordered", "any"]))
+    if how == "any":
+        return prev, draw(run_statuses)
+    keys = list(prev) if how == "same" else draw(st.permutations(list(prev)))
+    return prev, {key: draw(status) for key in keys}
+
+
+@given(two_runs())
+def test_every_customer_of_either_run_gets_exactly_one_change(runs):
+    prev, cur = runs
     t = table(prev, cur)
-    assert sorted(t["key"]) == sorted(set(prev) | set(cur))  # one row per customer
+    # one row per customer: the current ones in order, then the removed ones in their previous order
+    assert list(t["key"]) == [*cur, *(key for key in prev if key not in cur)]
     assert set(t["change"]) <= set(changes.CHANGES)
+    for row in t.itertuples():
+        assert (list(cur)[row.current_row] if row.current_row >= 0 else None) == (row.key if row.key in cur else None)
+        assert (list(prev)[row.previous_row] if row.previous_row >= 0 else None) == (row.key if row.key in prev else None)
+        assert (None if pd.isna(row.previous_status) else row.previous_status) == prev.get(row.key)
+        assert (None if pd.isna(row.status) else row.status) == cur.get(row.key)
     for key, change in kinds(t).items():
         before, now = prev.get(key), cur.get(key)
         expected = ("new_customer" if before is None else "removed" if now is None else "unchanged" if before == now
