@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 
 from geopress import changes
 from geopress.classify import FLAGGED_LAYERS, STATUSES
+from geopress.tables import mailing_lists
 
 from conftest import customer_records
 from nightly_support import assert_bad, good_run, run
@@ -52,6 +53,26 @@ def test_newly_in_status_counts_new_customers_and_changed_statuses_not_repeats()
     assert sorted(cur_keys[rows["high"]]) == ["a", "n"]  # b was already high: not mailed again
     assert list(cur_keys[rows["above_hgl"]]) == ["c"]
     assert rows["low"].size == 0 and rows["low_upper_floors"].size == 0
+
+
+def test_new_lists_reuse_the_full_lists_only_where_every_customer_is_new():
+    customers = pd.DataFrame({
+        "acct": ["a", "b", "c", "d"], "owner": ["O1", "O2", "O1", "O3"], "addr": ["1 Row", "2 Row", "1 Row", "3 Row"],
+        "zone": ["Z1", "Z1", "Z2", "Z2"], "status": ["high", "high", "low", "ok"],
+        "psi_max": [95.0, 90.0, 50.0, 60.0], "psi_min": [85.0, 80.0, 30.0, 50.0], "psi_top": [80.0, 75.0, 25.0, 45.0],
+    })
+    fields = dict(id_field="acct", mail_fields=["owner", "addr"])
+    full = mailing_lists(customers, **fields)
+    cur = customers["acct"], customers["status"]
+    first = changes.compare(pd.Series([], dtype=object), pd.Series([], dtype=object), *cur)
+    later = changes.compare(pd.Series(["a"]), pd.Series(["high"]), *cur)  # a was already high: only b is new
+    for t in (first, later):
+        got = changes.new_mailing_lists(customers, t, **fields, full=full)
+        built = changes.new_mailing_lists(customers, t, **fields)
+        assert list(got) == list(built)
+        for name in built:
+            pd.testing.assert_frame_equal(got[name], built[name], check_exact=True)  # a copy: no tolerance
+    assert changes.new_mailing_lists(customers, later, **fields, full=full)["new_high_pressure"]["accounts"].tolist() == ["b"]
 
 
 status = st.sampled_from(STATUSES)
