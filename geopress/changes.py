@@ -212,7 +212,7 @@ def _take(frame: pd.DataFrame, positions: np.ndarray, columns: list[str]) -> pd.
     """The ``columns`` of ``frame`` (missing ones empty) at ``positions``."""
     part = frame.reindex(columns=columns)
     if positions.size == len(frame) and np.array_equal(positions, np.arange(len(frame))):
-        return part  # every row in order (a first run): no copy
+        return part  # every row in order (a first run): nothing to take
     return part.iloc[positions]
 
 
