@@ -1,4 +1,4 @@
-"""What changed since the previous run: pure pandas over ids and statuses.
+"""What changed since the previous run: pure pandas and Arrow over ids and statuses.
 
 Customers are matched by the configured id field, compared as text (so an
 id stored as 1 in one run and "1" in the next is the same customer). Each
@@ -25,19 +25,57 @@ same finding.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from .classify import FLAGGED_LAYERS
 from .tables import mailing_list
 
 CHANGES: tuple[str, ...] = ("new_customer", "removed", "unchanged", "newly_flagged", "cleared", "status_changed")
+#: the dtype a frame gives text inserted as Python objects: ``str`` (Arrow, NaN where missing) in pandas 3
+_TEXT = pd.Series(np.array(["x", None], dtype=object)).dtype
+_ARROW_TEXT = isinstance(_TEXT, pd.StringDtype) and _TEXT.storage == "pyarrow"
 
 
-def _keys(ids: pd.Series) -> np.ndarray:
-    return ids.astype(str).to_numpy(dtype=object)
+def _arrow(values: pd.Series) -> pa.Array:
+    """``values`` as one Arrow array (no copy for Arrow-backed text), null where missing."""
+    arr = pa.array(values, from_pandas=True)
+    return arr.combine_chunks() if isinstance(arr, pa.ChunkedArray) else arr
+
+
+def _codes(values: pd.Series) -> tuple[np.ndarray, list]:
+    """An integer code per value (-1 where missing) and the distinct values the codes index."""
+    enc = pc.dictionary_encode(_arrow(values))
+    return pc.fill_null(enc.indices, -1).to_numpy().astype(np.int64), enc.dictionary.to_pylist()
+
+
+def _recode(codes: np.ndarray, own: list, vocab: list) -> np.ndarray:
+    """``codes`` into ``own`` as codes into ``vocab`` (which holds every value of ``own``); -1 stays -1."""
+    if own == vocab[: len(own)]:
+        return codes
+    where = np.array([vocab.index(v) for v in own] + [-1], dtype=np.int64)
+    return where[codes]  # -1 picks the trailing -1
+
+
+def _previous_rows(prev_keys: pa.Array, cur_keys: pa.Array) -> np.ndarray:
+    """For each current key, the position of the same key among the previous ones, -1 where absent."""
+    if len(prev_keys) == 0:
+        return np.full(len(cur_keys), -1, dtype=np.int64)
+    if prev_keys.equals(cur_keys):  # the same customers in the same order: the usual nightly run
+        return np.arange(len(cur_keys), dtype=np.int64)
+    # one hash pass over both runs' keys (missing ids match each other, as in a pandas Index)
+    enc = pc.dictionary_encode(pa.concat_arrays([prev_keys, cur_keys]), null_encoding="encode")
+    codes = enc.indices.to_numpy()
+    prev_codes, cur_codes = codes[: len(prev_keys)], codes[len(prev_keys):]
+    if np.bincount(prev_codes, minlength=len(enc.dictionary)).max() > 1:
+        raise ValueError("the previous run's ids are not unique")
+    where = np.full(len(enc.dictionary), -1, dtype=np.int64)
+    where[prev_codes] = np.arange(len(prev_keys))
+    return where[cur_codes]
 
 
 def compare(
@@ -48,43 +86,50 @@ def compare(
 ) -> pd.DataFrame:
     """One row per customer of either run, current customers first (in order), then removed ones.
 
-    Columns: ``key`` (the id as text), ``previous_status`` (None for new
-    customers), ``status`` (None for removed ones), ``change`` and
+    Columns: ``key`` (the id as text), ``previous_status`` (missing for new
+    customers), ``status`` (missing for removed ones), ``change`` and
     ``current_row`` / ``previous_row`` (positions in the inputs, -1 where
-    absent).
+    absent). The statuses and the change are categoricals; a missing status
+    is never the same as another. Ids must be unique in each run (the
+    current run's reader checks them; ValueError when the previous ids are
+    not).
     """
-    prev_keys = _keys(previous_ids)
-    cur_keys = _keys(current_ids)
-    # hash lookups on object arrays (ids are unique in each run): one pass each way
-    prev_index = pd.Index(prev_keys, dtype=object)
-    prev_row = prev_index.get_indexer(pd.Index(cur_keys, dtype=object)).astype(np.int64)
+    prev_keys = previous_ids.astype(str)
+    cur_keys = current_ids.astype(str)
+    prev_row = _previous_rows(_arrow(prev_keys).cast(pa.large_string()), _arrow(cur_keys).cast(pa.large_string()))
     known = prev_row >= 0
-    prev_stat = np.asarray(previous_status, dtype=object)
-    cur_stat = np.asarray(current_status, dtype=object)
-    before = np.where(known, prev_stat[np.where(known, prev_row, 0)] if len(prev_stat) else None, None)
+    n_cur, n_prev = len(cur_keys), len(prev_keys)
 
-    flagged = list(FLAGGED_LAYERS)
-    was = np.isin(before.astype(str), flagged) & known
-    now = np.isin(cur_stat.astype(str), flagged)
+    # statuses as integer codes into one vocabulary of both runs' values
+    prev_code, prev_vals = _codes(previous_status)
+    cur_code, cur_vals = _codes(current_status)
+    vocab = list(dict.fromkeys([*prev_vals, *cur_vals]))
+    prev_code, cur_code = _recode(prev_code, prev_vals, vocab), _recode(cur_code, cur_vals, vocab)
+    before = prev_code[prev_row] if n_prev else np.full(n_cur, -1, dtype=np.int64)
+    before[~known] = -1
+    flagged = np.array([v in FLAGGED_LAYERS for v in vocab] + [False])  # the last entry is for -1
+    ok = vocab.index("ok") if "ok" in vocab else -2
+    was, now = flagged[before], flagged[cur_code]
+    code = {c: np.int8(i) for i, c in enumerate(CHANGES)}
     change = np.select(
-        [~known, before == cur_stat, ~was & now, was & (cur_stat == "ok")],
-        ["new_customer", "unchanged", "newly_flagged", "cleared"],
-        default="status_changed",
-    ).astype(object)
+        [~known, (before == cur_code) & (cur_code >= 0), ~was & now, was & (cur_code == ok)],
+        [code["new_customer"], code["unchanged"], code["newly_flagged"], code["cleared"]],
+        default=code["status_changed"],
+    ).astype(np.int8)
 
-    seen = np.zeros(len(prev_keys), dtype=bool)
+    seen = np.zeros(n_prev, dtype=bool)
     seen[prev_row[known]] = True
     gone = np.flatnonzero(~seen)
-    current = pd.DataFrame({
-        "key": cur_keys, "previous_status": before, "status": cur_stat, "change": change,
-        "current_row": np.arange(len(cur_keys)), "previous_row": prev_row,
+    n_gone = gone.size
+    statuses = pd.Index(vocab, dtype=object)
+    return pd.DataFrame({
+        "key": pd.concat([cur_keys, prev_keys.iloc[gone]], ignore_index=True),
+        "previous_status": pd.Categorical.from_codes(np.r_[before, prev_code[gone]], categories=statuses),
+        "status": pd.Categorical.from_codes(np.r_[cur_code, np.full(n_gone, -1)], categories=statuses),
+        "change": pd.Categorical.from_codes(np.r_[change, np.full(n_gone, code["removed"])], categories=CHANGES),
+        "current_row": np.r_[np.arange(n_cur), np.full(n_gone, -1)].astype(np.int64),
+        "previous_row": np.r_[prev_row, gone].astype(np.int64),
     })
-    removed = pd.DataFrame({
-        "key": prev_keys[gone], "previous_status": prev_stat[gone], "status": np.full(gone.size, None, dtype=object),
-        "change": np.full(gone.size, "removed", dtype=object),
-        "current_row": np.full(gone.size, -1), "previous_row": gone,
-    })
-    return pd.concat([current, removed], ignore_index=True)
 
 
 def counts(table: pd.DataFrame) -> dict[str, int]:
@@ -94,24 +139,32 @@ def counts(table: pd.DataFrame) -> dict[str, int]:
 
 
 def newly_in_status(table: pd.DataFrame) -> dict[str, np.ndarray]:
-    """For each flagged status, the current rows that have it now and did not before."""
-    cur = table[table["current_row"] >= 0]
-    fresh = cur["previous_status"].to_numpy(dtype=object) != cur["status"].to_numpy(dtype=object)
-    return {
-        status: cur.loc[fresh & (cur["status"] == status).to_numpy(), "current_row"].to_numpy(dtype=np.int64)
-        for status in FLAGGED_LAYERS
-    }
+    """For each flagged status, the current rows that have it now and did not before (in order)."""
+    rows = table["current_row"].to_numpy()
+    fresh = (rows >= 0) & (table["change"] != "unchanged").to_numpy()
+    status = table["status"]
+    return {s: rows[fresh & (status == s).to_numpy()].astype(np.int64) for s in FLAGGED_LAYERS}
 
 
 def new_mailing_lists(
-    customers: pd.DataFrame, table: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str]
+    customers: pd.DataFrame, table: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
+    full: Mapping[str, pd.DataFrame] | None = None,
 ) -> dict[str, pd.DataFrame]:
-    """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the newly-in-status customers."""
+    """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the newly-in-status customers.
+
+    ``full`` may hold the run's own lists by name (``high_pressure`` ...),
+    as :func:`geopress.tables.mailing_lists` makes them from ``customers``
+    with the same fields: a status whose every customer is newly in it (a
+    first run) then takes a copy of its list instead of building it again.
+    """
     out = {}
+    status_col = customers["status"]
     for status, rows in newly_in_status(table).items():
-        out[f"new_{FLAGGED_LAYERS[status]}"] = mailing_list(
-            customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields
-        )
+        name = FLAGGED_LAYERS[status]
+        if full is not None and name in full and rows.size and rows.size == int((status_col == status).sum()):
+            out[f"new_{name}"] = full[name].copy()
+            continue
+        out[f"new_{name}"] = mailing_list(customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields)
     return out
 
 
@@ -141,6 +194,27 @@ def summarise(table: pd.DataFrame, baseline: str | None) -> Summary:
     )
 
 
+def _stored_text(values: pd.Series) -> pd.api.extensions.ExtensionArray | np.ndarray:
+    """A categorical of text as a frame stores it when inserted as Python objects (None where missing).
+
+    Where pandas makes such text Arrow ``str``, it is built from Arrow
+    without Python strings, unless no value is present (e.g.
+    ``previous_status`` on a first run): those stay objects, all None.
+    """
+    codes = values.cat.codes.to_numpy()
+    if _ARROW_TEXT and (codes >= 0).any():
+        text = pa.array(values.cat.categories.to_numpy(dtype=object), pa.large_string())
+        return pd.array(text.take(pa.array(codes, mask=codes < 0)), dtype=_TEXT)
+    return values.to_numpy(dtype=object, na_value=None)
+
+
+def _take(frame: pd.DataFrame, positions: np.ndarray, columns: list[str]) -> pd.DataFrame:
+    """The ``columns`` of ``frame`` (missing ones empty) at ``positions``."""
+    part = frame.reindex(columns=columns)
+    if positions.size == len(frame) and np.array_equal(positions, np.arange(len(frame))):
+        return part  # every row in order (a first run): nothing to take
+    return part.iloc[positions]
+
 
 def changes_layer(
     table: pd.DataFrame,
@@ -152,25 +226,27 @@ def changes_layer(
 ) -> pd.DataFrame:
     """The customers that changed: id, ``previous_status``, ``status``, ``change``, then ``columns``.
 
-    ``current`` and ``previous`` are both runs' customers (``previous`` may be
-    None when ``table`` has no removed customers). ``columns`` (e.g. mail
-    fields, zone, geometry) come from the current run where the customer is
-    in it, else from the previous run, empty where that run lacks them. Pass
-    GeoDataFrames in one CRS to get a GeoDataFrame.
+    ``table`` is a :func:`compare` table. ``current`` and ``previous`` are
+    both runs' customers (``previous`` may be None when ``table`` has no
+    removed customers). ``columns`` (e.g. mail fields, zone, geometry) come
+    from the current run where the customer is in it, else from the previous
+    run, empty where that run lacks them. Pass GeoDataFrames in one CRS to
+    get a GeoDataFrame.
     """
-    rep = table[table["change"] != "unchanged"]
-    cur = rep[rep["current_row"] >= 0]
-    gone = rep[rep["current_row"] < 0]
+    rows = table["current_row"].to_numpy()
+    rep = (table["change"] != "unchanged").to_numpy()
+    cur = np.flatnonzero(rep & (rows >= 0))
+    gone = np.flatnonzero(rep & (rows < 0))
     take = list(dict.fromkeys([id_field, *columns]))
-    parts = [current.iloc[cur["current_row"].to_numpy()].reindex(columns=take)]
-    if len(gone):
+    parts = [_take(current, rows[cur], take)]
+    if gone.size:
         if previous is None:
             raise ValueError("the table has removed customers but no previous frame was given")
-        parts.append(previous.iloc[gone["previous_row"].to_numpy()].reindex(columns=take))
+        parts.append(_take(previous, table["previous_row"].to_numpy()[gone], take))
     if len(parts) == 2 and parts[0][id_field].dtype != parts[1][id_field].dtype:
         parts = [p.assign(**{id_field: p[id_field].astype(str)}) for p in parts]
     out = pd.concat(parts, ignore_index=True)
-    both = pd.concat([cur, gone], ignore_index=True)
+    both = np.r_[cur, gone]
     for pos, col in enumerate(("previous_status", "status", "change"), start=1):
-        out.insert(pos, col, both[col].to_numpy(dtype=object))
+        out.insert(pos, col, _stored_text(table[col].iloc[both]))
     return out

@@ -95,7 +95,10 @@ def track(result, baseline: str | os.PathLike | None) -> None:
         table = table.copy()
         table.loc[gone, "previous_row"] = np.arange(int(gone.sum()))
     result.changes = changes.changes_layer(table, current, previous, id_field=cust_cfg.id_field, columns=columns)
+    # in US units the run's lists are made from these very customers (geopress.units leaves them as they are),
+    # so a first run copies them; SI lists are made from kPa and so cannot stand in for the new ones
+    full = result.mailing if cfg.output.units == "us" else None
     result.new_mailing = changes.new_mailing_lists(current, table, id_field=cust_cfg.id_field,
-                                                   mail_fields=cust_cfg.mail_fields)
+                                                   mail_fields=cust_cfg.mail_fields, full=full)
     result.info["changes"] = summary.to_dict()
     log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())

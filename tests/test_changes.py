@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 
 from geopress import changes
 from geopress.classify import FLAGGED_LAYERS, STATUSES
+from geopress.tables import mailing_lists
 
 from conftest import customer_records
 from nightly_support import assert_bad, good_run, run
@@ -54,15 +55,53 @@ def test_newly_in_status_counts_new_customers_and_changed_statuses_not_repeats()
     assert rows["low"].size == 0 and rows["low_upper_floors"].size == 0
 
 
+def test_new_lists_reuse_the_full_lists_only_where_every_customer_is_new():
+    customers = pd.DataFrame({
+        "acct": ["a", "b", "c", "d"], "owner": ["O1", "O2", "O1", "O3"], "addr": ["1 Row", "2 Row", "1 Row", "3 Row"],
+        "zone": ["Z1", "Z1", "Z2", "Z2"], "status": ["high", "high", "low", "ok"],
+        "psi_max": [95.0, 90.0, 50.0, 60.0], "psi_min": [85.0, 80.0, 30.0, 50.0], "psi_top": [80.0, 75.0, 25.0, 45.0],
+    })
+    fields = dict(id_field="acct", mail_fields=["owner", "addr"])
+    full = mailing_lists(customers, **fields)
+    cur = customers["acct"], customers["status"]
+    first = changes.compare(pd.Series([], dtype=object), pd.Series([], dtype=object), *cur)
+    later = changes.compare(pd.Series(["a"]), pd.Series(["high"]), *cur)  # a was already high: only b is new
+    for t in (first, later):
+        got = changes.new_mailing_lists(customers, t, **fields, full=full)
+        built = changes.new_mailing_lists(customers, t, **fields)
+        assert list(got) == list(built)
+        for name in built:
+            pd.testing.assert_frame_equal(got[name], built[name], check_exact=True)  # a copy: no tolerance
+    assert changes.new_mailing_lists(customers, later, **fields, full=full)["new_high_pressure"]["accounts"].tolist() == ["b"]
+
+
 status = st.sampled_from(STATUSES)
+run_statuses = st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12)
 
 
-@given(st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12),
-       st.dictionaries(st.text("abcdef", min_size=1, max_size=3), status, max_size=12))
-def test_every_customer_of_either_run_gets_exactly_one_change(prev, cur):
+@st.composite
+def two_runs(draw):
+    """Two runs: the same customers in the same order (as on most nights) or in another order, or any two."""
+    prev = draw(run_statuses)
+    how = draw(st.sampled_from(["same", "reordered", "any"]))
+    if how == "any":
+        return prev, draw(run_statuses)
+    keys = list(prev) if how == "same" else draw(st.permutations(list(prev)))
+    return prev, {key: draw(status) for key in keys}
+
+
+@given(two_runs())
+def test_every_customer_of_either_run_gets_exactly_one_change(runs):
+    prev, cur = runs
     t = table(prev, cur)
-    assert sorted(t["key"]) == sorted(set(prev) | set(cur))  # one row per customer
+    # one row per customer: the current ones in order, then the removed ones in their previous order
+    assert list(t["key"]) == [*cur, *(key for key in prev if key not in cur)]
     assert set(t["change"]) <= set(changes.CHANGES)
+    for row in t.itertuples():
+        assert (list(cur)[row.current_row] if row.current_row >= 0 else None) == (row.key if row.key in cur else None)
+        assert (list(prev)[row.previous_row] if row.previous_row >= 0 else None) == (row.key if row.key in prev else None)
+        assert (None if pd.isna(row.previous_status) else row.previous_status) == prev.get(row.key)
+        assert (None if pd.isna(row.status) else row.status) == cur.get(row.key)
     for key, change in kinds(t).items():
         before, now = prev.get(key), cur.get(key)
         expected = ("new_customer" if before is None else "removed" if now is None else "unchanged" if before == now

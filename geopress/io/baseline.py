@@ -2,8 +2,9 @@
 
 The baseline is the ``customers`` layer of an earlier geopress GeoPackage:
 by default the one at ``output.path`` before this run replaces it, or one
-chosen with ``geopress run --baseline PATH``. Only the id field, ``status``,
-``zone``, the mail fields it has and the geometry are read.
+chosen with ``geopress run --baseline PATH``. The id field and ``status``
+are read for every customer; ``zone``, the mail fields it has and the
+geometry only for the removed ones.
 """
 
 from __future__ import annotations
@@ -25,9 +26,9 @@ log = logging.getLogger(__name__)
 
 @dataclass
 class Baseline:
-    """The previous run's customers (the read fields, no geometry; the index holds the feature ids).
+    """The previous run's customers: id and status (the index holds the feature ids).
 
-    :meth:`rows` gives chosen rows with their geometry in ``crs``, the current run's CRS.
+    :meth:`rows` gives chosen rows with ``columns`` and their geometry in ``crs``, the current run's CRS.
     """
 
     path: Path
@@ -39,7 +40,7 @@ class Baseline:
         """The rows at ``positions`` of :attr:`frame`, in that order, with their geometry in :attr:`crs`."""
         fids = self.frame.index.to_numpy()[positions]
         if len(fids) == 0:
-            return gpd.GeoDataFrame(self.frame.iloc[positions].reset_index(drop=True),
+            return gpd.GeoDataFrame({c: pd.Series([], dtype=object) for c in self.columns},
                                     geometry=gpd.GeoSeries([], crs=self.crs))
         got = pyogrio.read_dataframe(self.path, layer=LAYER, columns=self.columns, fids=fids, fid_as_index=True,
                                      use_arrow=True)
@@ -60,8 +61,7 @@ def read_baseline(
     hint = "pass --baseline with an earlier geopress GeoPackage, or move the file away to start a fresh history"
     fields = run_layer_fields(path, key=key, hint=hint)
     columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in fields]
-    # no geometry here: only removed customers need theirs (:meth:`Baseline.rows`)
-    frame = read_run_layer(path, fields, required=(id_field, "status"), optional=columns, key=key, hint=hint,
-                           read_geometry=False)
+    # only what the comparison needs: removed customers' other fields and geometry come from :meth:`Baseline.rows`
+    frame = read_run_layer(path, fields, required=(id_field, "status"), key=key, hint=hint, read_geometry=False)
     log.info("baseline: %d customers from %s", len(frame), path)
     return Baseline(path=path, frame=frame, columns=columns, crs=crs)
