@@ -61,6 +61,10 @@ def _recode(codes: np.ndarray, own: list, vocab: list) -> np.ndarray:
     return where[codes]  # -1 picks the trailing -1
 
 
+class DuplicatePreviousIds(ValueError):
+    """The previous run lists an id more than once."""
+
+
 def _previous_rows(prev_keys: pa.Array, cur_keys: pa.Array) -> np.ndarray:
     """For each current key, the position of the same key among the previous ones, -1 where absent."""
     if len(prev_keys) == 0:
@@ -72,7 +76,7 @@ def _previous_rows(prev_keys: pa.Array, cur_keys: pa.Array) -> np.ndarray:
     codes = enc.indices.to_numpy()
     prev_codes, cur_codes = codes[: len(prev_keys)], codes[len(prev_keys):]
     if np.bincount(prev_codes, minlength=len(enc.dictionary)).max() > 1:
-        raise ValueError("the previous run's ids are not unique")
+        raise DuplicatePreviousIds("the previous run's ids are not unique")
     where = np.full(len(enc.dictionary), -1, dtype=np.int64)
     where[prev_codes] = np.arange(len(prev_keys))
     return where[cur_codes]
@@ -91,8 +95,8 @@ def compare(
     ``current_row`` / ``previous_row`` (positions in the inputs, -1 where
     absent). The statuses and the change are categoricals; a missing status
     is never the same as another. Ids must be unique in each run (the
-    current run's reader checks them; ValueError when the previous ids are
-    not).
+    current run's reader checks them; :class:`DuplicatePreviousIds` when the
+    previous ids are not).
     """
     prev_keys = previous_ids.astype(str)
     cur_keys = current_ids.astype(str)

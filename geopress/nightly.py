@@ -23,6 +23,7 @@ from .errors import DataWarning, InputError
 from .io import baseline as baseline_io
 from .io import write as write_io
 from .io.lock import OutputLock
+from .units import customers_in_units, mailing_columns_in_units, units_for
 
 log = logging.getLogger(__name__)
 
@@ -77,7 +78,13 @@ def track(result, baseline: str | os.PathLike | None) -> None:
     else:
         prev = None
     frame = prev.frame if prev is not None else pd.DataFrame({cust_cfg.id_field: [], "status": []}, dtype=object)
-    table = changes.compare(frame[cust_cfg.id_field], frame["status"], current[cust_cfg.id_field], current["status"])
+    try:
+        table = changes.compare(frame[cust_cfg.id_field], frame["status"], current[cust_cfg.id_field],
+                                current["status"])
+    except changes.DuplicatePreviousIds as exc:
+        raise InputError(f"the baseline's field '{cust_cfg.id_field}' has duplicate ids, so it cannot be compared "
+                         "with this run; pass --baseline with another geopress GeoPackage", path=prev.path,
+                         key="--baseline" if baseline is not None else "output.path") from exc
     summary = changes.summarise(table, None if prev is None else str(prev.path))
     removed = summary.counts["removed"]
     if prev is not None and removed * 2 > len(prev.frame):
@@ -95,10 +102,10 @@ def track(result, baseline: str | os.PathLike | None) -> None:
         table = table.copy()
         table.loc[gone, "previous_row"] = np.arange(int(gone.sum()))
     result.changes = changes.changes_layer(table, current, previous, id_field=cust_cfg.id_field, columns=columns)
-    # in US units the run's lists are made from these very customers (geopress.units leaves them as they are),
-    # so a first run copies them; SI lists are made from kPa and so cannot stand in for the new ones
-    full = result.mailing if cfg.output.units == "us" else None
-    result.new_mailing = changes.new_mailing_lists(current, table, id_field=cust_cfg.id_field,
-                                                   mail_fields=cust_cfg.mail_fields, full=full)
+    # in the display units, as the run's own lists (which a first run copies)
+    units = units_for(cfg.output.units)
+    result.new_mailing = {name: mailing_columns_in_units(df, units) for name, df in changes.new_mailing_lists(
+        customers_in_units(current, units), table, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields,
+        full=result.mailing).items()}
     result.info["changes"] = summary.to_dict()
     log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())

@@ -222,6 +222,15 @@ def test_baseline_that_is_not_a_geopress_output(world):
                "layers there: zones", "--baseline")
 
 
+def test_baseline_with_duplicate_ids(world):
+    good_run(world)
+    edited = world.read()
+    edited.loc[1, "account"] = edited.loc[0, "account"]  # someone edited the output: two customers share an id
+    saved = world.root / "edited.gpkg"
+    edited.to_file(saved, layer="customers", driver="GPKG")
+    assert_bad(run(world, "--baseline", saved), str(saved), "--baseline", "field 'account' has duplicate ids")
+
+
 def test_previous_output_without_the_id_field(world):
     good_run(world)
     import geopandas as gpd

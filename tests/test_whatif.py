@@ -124,6 +124,15 @@ def test_si_units_convert_the_mailing_lists(world, tmp_path):
     np.testing.assert_array_equal(us.customers["psi_max"], si.customers["psi_max"])
 
 
+def test_si_units_convert_the_new_mailing_lists_too(world):
+    # a first run: every flagged customer is new, so each new_* list is the run's list, in the same units
+    si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"]), write=False)
+    assert si.new_mailing
+    for name, df in si.new_mailing.items():
+        assert "worst_kpa" in df.columns and "worst_psi" not in df.columns
+        pd.testing.assert_frame_equal(df, si.mailing[name.removeprefix("new_")])
+
+
 def test_units_are_validated(world):
     with pytest.raises(ConfigError, match="output.units"):
         load_scenario(world.config_path, ["output.units=metric"])
