@@ -15,10 +15,8 @@ and N customer points in a GeoPackage (default 1,000,000). Then, alternating
 Both sample the containing pixel (``method = "nearest"``, which is what
 ``sample()`` does), so their statuses must agree; the script checks they do.
 It prints the median wall time of each variant, its peak memory two ways
-(the resident set size of its largest process, from ``wait4``; and the
-proportional set size of all its processes together, sampled every 50 ms,
-which counts pages shared copy-on-write by geopress's forked children once),
-their ratio, geopress's time per step, and the
+(see _measure.py: the resident set size of its largest process, and the
+proportional set size of all its processes together), their ratio, geopress's time per step, and the
 in-process throughput of the bilinear kernel on the DEM in memory.
 
     python scripts/bench.py                 # N = 1,000,000
@@ -34,13 +32,13 @@ import statistics
 import subprocess
 import sys
 import textwrap
-import threading
 import time
 from pathlib import Path
 
 os.environ.setdefault("OGR_CURRENT_DATE", "2026-01-01T00:00:00Z")
 
 import numpy as np  # noqa: E402
+from _measure import Measured, measure  # noqa: E402  (scripts/ is on the path when run as a script)
 
 ROOT = Path(__file__).resolve().parents[1]
 CRS = "EPSG:32631"
@@ -223,58 +221,13 @@ def geopress_run(work: Path) -> None:
 # measuring
 
 
-def _tree(pid: int) -> list[int]:
-    """``pid`` and its descendants (geopress forks a service band and a writer process)."""
-    out, todo = [], [pid]
-    while todo:
-        p = todo.pop()
-        out.append(p)
-        for task in Path(f"/proc/{p}/task").glob("*"):
-            try:
-                todo.extend(int(c) for c in (task / "children").read_text().split())
-            except OSError:
-                pass
-    return out
-
-
-def _pss_gb(pids: list[int]) -> float:
-    """Proportional set size of ``pids`` together, GB: a page shared by n processes counts 1/n in each,
-    so the sum is the memory the tree really holds (RSS would count copy-on-write pages once per process)."""
-    kb = 0
-    for p in pids:
-        try:
-            for line in Path(f"/proc/{p}/smaps_rollup").read_text().splitlines():
-                if line.startswith("Pss:"):
-                    kb += int(line.split()[1])
-                    break
-        except OSError:  # the process ended meanwhile
-            pass
-    return kb / 1024 / 1024
-
-
-def run_child(variant: str, work: Path) -> tuple[float, float, float]:
-    """Wall seconds, peak RSS of the largest process (GB) and peak PSS of the whole process tree
-    (GB, sampled every 50 ms) of one variant in a fresh process."""
+def run_child(variant: str, work: Path) -> Measured:
+    """One variant in a fresh process, measured (see _measure.py)."""
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, __file__, "--child", variant, "--work", str(work)], env=env)
-    peak = [0.0]
-    stop = threading.Event()
-
-    def sample() -> None:
-        while not stop.wait(0.05):
-            peak[0] = max(peak[0], _pss_gb(_tree(proc.pid)))
-
-    sampler = threading.Thread(target=sample, daemon=True)
-    sampler.start()
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    stop.set()
-    sampler.join()
-    proc.returncode = os.waitstatus_to_exitcode(status)
-    if proc.returncode not in (0, None):
-        sys.exit(f"{variant} failed with exit code {proc.returncode}")
-    return wall, usage.ru_maxrss / 1024 / 1024, peak[0]  # ru_maxrss is KiB on Linux
+    m = measure([sys.executable, __file__, "--child", variant, "--work", str(work)], env)
+    if m.exit_code != 0:
+        sys.exit(f"{variant} failed with exit code {m.exit_code}")
+    return m
 
 
 def compare_statuses(work: Path) -> int:
@@ -325,18 +278,18 @@ def main() -> None:
         (geopress_run if args.child == "geopress" else baseline)(work)
         return
     prepare(work, args.n)
-    runs: dict[str, list[tuple[float, float, float]]] = {"geopress": [], "baseline": []}
+    runs: dict[str, list[Measured]] = {"geopress": [], "baseline": []}
     for i in range(args.repeat):
         for variant in ("geopress", "baseline") if i % 2 == 0 else ("baseline", "geopress"):
-            wall, rss, pss = run_child(variant, work)
-            runs[variant].append((wall, rss, pss))
-            print(f"run {i + 1} {variant:9s} {wall:7.2f} s  peak RSS {rss:5.2f} GB  peak PSS of all its processes "
-                  f"{pss:5.2f} GB", flush=True)
+            m = run_child(variant, work)
+            runs[variant].append(m)
+            print(f"run {i + 1} {variant:9s} {m.wall_s:7.2f} s  peak RSS {m.rss_gb:5.2f} GB  peak PSS of all its "
+                  f"processes {m.pss_gb:5.2f} GB", flush=True)
     n = compare_statuses(work)
     steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
-    med = {v: statistics.median(w for w, _, _ in r) for v, r in runs.items()}
-    rss = {v: max(m for _, m, _ in r) for v, r in runs.items()}
-    pss = {v: max(m for _, _, m in r) for v, r in runs.items()}
+    med = {v: statistics.median(m.wall_s for m in r) for v, r in runs.items()}
+    rss = {v: max(m.rss_gb for m in r) for v, r in runs.items()}
+    pss = {v: max(m.pss_gb for m in r) for v, r in runs.items()}
     rate = kernel_rate(work, args.repeat)
     print(f"\n{n:,} customers, statuses identical in both variants")
     for v, label in (("geopress", "geopress run"), ("baseline", "baseline")):
