@@ -96,6 +96,12 @@ def mask_polygons(mask: NDArray[np.bool_], transform: Affine) -> shapely.Geometr
     return shapely.MultiPolygon(parts)
 
 
+#: bytes contourpy allocates per grid point it traces on: the x and y grids it makes from 1-D
+#: coordinates (float64 each) and its per-point cache (uint32); z is used in place when it is
+#: C-contiguous float64 (contourpy 1.3: contour_generator, common.h, base_impl.h)
+CONTOUR_GRID_BYTES = 8 + 8 + 4
+
+
 def contour_lines(dem_ft: NDArray[np.floating], transform: Affine, level_ft: float) -> shapely.Geometry:
     """The DEM's contour at ``level_ft`` as a MultiLineString in map coordinates.
 
@@ -121,7 +127,13 @@ def contour_lines(dem_ft: NDArray[np.floating], transform: Affine, level_ft: flo
         return shapely.MultiLineString()
     c0, c1 = int(cols[0]), int(cols[-1]) + 2
     del above, below
-    # a view: contourpy masks the NaN (and inf) pixels itself, as masked_invalid would
+    # contourpy copies a z that is not C-contiguous (a column slice of the grid is not) and
+    # allocates CONTOUR_GRID_BYTES for every point it traces on; whole rows are a view, and the
+    # quads outside the box cross no level, so tracing on them gives the same lines: take whole
+    # rows unless the column box saves more than the copy costs
+    if z.flags.c_contiguous and (c1 - c0) * (CONTOUR_GRID_BYTES + z.itemsize) >= z.shape[1] * CONTOUR_GRID_BYTES:
+        c0, c1 = 0, z.shape[1]
+    # contourpy masks the NaN (and inf) pixels itself, as masked_invalid would
     box = z[r0:r1, c0:c1]
     if box.shape[0] < 2 or box.shape[1] < 2 or not np.isfinite(box).any():
         return shapely.MultiLineString()

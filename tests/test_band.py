@@ -169,3 +169,28 @@ def test_contour_traced_in_the_crossing_box_equals_contourpy_on_the_whole_grid()
     got = band.contour_lines(dem, t, 120.0)
     assert got.wkb == expected.wkb  # vertex for vertex, in the same order
     assert band.contour_lines(dem, t, 10.0).is_empty  # the level is below every pixel
+
+
+@pytest.mark.parametrize("half_width, whole_rows", [(4.0, False), (40.0, True)])
+def test_contour_on_whole_rows_or_on_the_column_box_equals_contourpy_on_the_whole_grid(monkeypatch, half_width,
+                                                                                        whole_rows):
+    # a hill whose contour spans a few columns (traced on the column box, copied by contourpy) or most
+    # of them (traced on whole rows, a view); NaN beside the box in its rows, and across the contour (which
+    # opens the loop)
+    import contourpy
+
+    v, u = np.mgrid[0:80, 0:90]
+    dem = 100.0 + 10.0 * np.exp(-(((u - 45.0) / half_width) ** 2 + ((v - 40.0) / 12.0) ** 2)) + 0.01 * u
+    dem[38:41, 0:2] = np.nan
+    dem[29:32, 44:47] = np.nan
+    t = Affine(2.0, 0.0, 500.0, 0.0, -2.0, 900.0)
+    gen = contourpy.contour_generator(z=np.ma.masked_invalid(dem), line_type=contourpy.LineType.Separate)
+    expected = shapely.MultiLineString([np.column_stack(t @ (xy[:, 0] + 0.5, xy[:, 1] + 0.5))
+                                        for xy in gen.lines(105.0) if len(xy) >= 2])
+    assert shapely.get_coordinates(expected)[:, 0].min() > t.c + 10 * t.a  # the box is narrower than the grid
+    traced = []
+    real = contourpy.contour_generator
+    monkeypatch.setattr(contourpy, "contour_generator", lambda **kw: traced.append(kw["z"].shape) or real(**kw))
+    got = band.contour_lines(dem, t, 105.0)
+    assert got.wkb == expected.wkb  # vertex for vertex, in the same order
+    assert (traced[0][1] == dem.shape[1]) == whole_rows and traced[0][0] < dem.shape[0]
