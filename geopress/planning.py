@@ -73,7 +73,7 @@ def _to_crs(geom: shapely.Geometry, src: CRS, dst: CRS) -> shapely.Geometry:
 
 def _preview(win: raster_io.DemWindow) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
     step = max(1, int(np.ceil(max(win.array_ft.shape) / PREVIEW_PX)))
-    arr = win.array_ft[::step, ::step]
+    arr = win.array_ft[::step, ::step].copy()  # a copy: a view would keep the whole window alive
     t = win.transform
     h, w = arr.shape
     extent = (t.c, t.c + t.a * step * w, t.f + t.e * step * h, t.f)
@@ -120,6 +120,7 @@ def service_bands(cfg: Config, zones: Zones, crs: CRS) -> Plan:
                 arr, extent, px = _preview(win)
                 first = ZoneTerrain(zone=zone, crs=rcrs, dem_ft=arr, extent=extent, pixel=px,
                                     zone_geom=piece_r, band_geom=b.polygons, limits=dict(b.limits))
+            del win  # before the next window is read
         merged = band_mod.polygonal(shapely.union_all(polys)) if polys else shapely.MultiPolygon()
         sq_ft = band_mod.area_sq_ft(merged, crs)
         decimation = max((u["decimation"] for u in used), default=1)
