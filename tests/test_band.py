@@ -11,7 +11,7 @@ from pyproj import CRS
 from geopress import band
 from geopress.classify import Criteria
 from geopress.config import TerrainConfig
-from geopress.io.raster import read_dem_window
+from geopress.io.raster import BAND_BYTES_PER_PIXEL, read_dem_window
 
 from conftest import write_raster
 
@@ -136,10 +136,10 @@ def test_decimated_window_keeps_the_georeferencing(tmp_path):
     full = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=1024))
     assert full.decimation == 1
     # budget of ~1/10 of the window's working size forces decimation by ceil(sqrt(10)) or so
-    need_mb = full.array_ft.size * 24 / 2**20
+    need_mb = full.array_ft.size * BAND_BYTES_PER_PIXEL / 2**20
     small = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=need_mb / 10))
     assert small.decimation >= 3
-    assert small.array_ft.size * 24 / 2**20 <= need_mb / 10 * 1.0001
+    assert small.array_ft.size * BAND_BYTES_PER_PIXEL / 2**20 <= need_mb / 10 * 1.0001
     rows, cols = np.mgrid[0:small.array_ft.shape[0], 0:small.array_ft.shape[1]]
     x, y = small.transform @ (cols + 0.5, rows + 0.5)
     # The average of a plane over a block is the plane at the block's centre. The window is not a whole

@@ -226,8 +226,12 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *
 # --------------------------------------------------------------------------
 # DEM windows over zones (for the serviceable band and the report's maps)
 
-#: working bytes per DEM pixel when a zone's band is computed (float64 ground, masks, contour scratch).
-BAND_BYTES_PER_PIXEL = 24
+#: peak working bytes per DEM pixel while a zone's window is read and its band computed: the
+#: float64 ground (8) and, at the peak, contourpy's x and y grids and cache (20, see
+#: geopress.band.CONTOUR_GRID_BYTES) and its nodata mask (1). Measured with
+#: scripts/measure_band_memory.py (peak RSS of service_bands in a fresh process, slope between
+#: a 1500 x 1500 and a 4000 x 4000 window): 30.8 B/px, rounded up.
+BAND_BYTES_PER_PIXEL = 32
 
 
 @dataclass
