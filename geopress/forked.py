@@ -16,6 +16,7 @@ whose result is no longer wanted.
 
 from __future__ import annotations
 
+import ctypes
 import os
 import pickle
 import signal
@@ -80,6 +81,7 @@ def start(fn: Callable[..., Any], *args: Any, what: str, path: Path | None = Non
     ``path`` is the file an error about it names.
     """
     read_fd, write_fd = os.pipe()
+    _trim_heap()
     pid = os.fork()
     if pid == 0:  # the child: never returns into the caller's code
         code = 0
@@ -97,6 +99,20 @@ def start(fn: Callable[..., Any], *args: Any, what: str, path: Path | None = Non
             os._exit(code)
     os.close(write_fd)
     return Forked(pid, read_fd, what, path)
+
+
+def _trim_heap() -> None:
+    """Give the C heap's free pages back to the system (glibc's ``malloc_trim``); elsewhere nothing.
+
+    A forked child shares every page its parent holds, freed but unreturned
+    heap pages included (0.55 GB of them when a run of 2,000,000 customers
+    starts writing), and each page either process then reuses is copied.
+    """
+    try:
+        trim = ctypes.CDLL(None).malloc_trim
+    except (OSError, AttributeError):  # not glibc (macOS, musl)
+        return
+    trim(0)
 
 
 def _pickled(exc: BaseException) -> bytes:

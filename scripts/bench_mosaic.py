@@ -8,10 +8,10 @@ budget; one pressure zone covering both; and customers in 40 invented towns
 inside the first 20 km square, so both mosaics hold the same customers on
 the same pixels.
 
-Each case runs ``geopress run`` in a fresh subprocess (``wait4`` gives the
-peak resident set size); GDAL's block cache is held at 64 MB so that
+Each case runs ``geopress run`` in a fresh subprocess, as a first run (its
+earlier outputs are removed first), measured as _measure.py says; GDAL's block cache is held at 64 MB so that
 repeating one tile cannot serve the reads from cache. It prints wall time,
-peak RSS, the time of the terrain step and the pixels read, for
+peak memory, the time of the terrain step and the pixels read, for
 
 * 2,000,000 customers on the 100,000 x 100,000 mosaic,
 * 1,000,000 customers drawn the same way (same towns) on the same mosaic,
@@ -27,7 +27,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
+import shutil
 import sys
 import textwrap
 import time
@@ -36,6 +36,7 @@ from pathlib import Path
 os.environ.setdefault("OGR_CURRENT_DATE", "2026-01-01T00:00:00Z")
 
 import numpy as np  # noqa: E402
+from _measure import measure  # noqa: E402  (scripts/ is on the path when run as a script)
 
 ROOT = Path(__file__).resolve().parents[1]
 CRS = "EPSG:32631"
@@ -156,17 +157,14 @@ def prepare(work: Path, n: int) -> None:
 
 
 def run_case(cfg: Path) -> dict:
+    shutil.rmtree(cfg.parent / f"out-{cfg.stem}", ignore_errors=True)  # a first run, every time
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""), GDAL_CACHEMAX="64")
-    t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-c", "from geopress.cli import main; main()", "-q", "run", str(cfg)],
-                            env=env)
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    if os.waitstatus_to_exitcode(status) != 0:
+    m = measure([sys.executable, "-c", "from geopress.cli import main; main()", "-q", "run", str(cfg)], env)
+    if m.exit_code != 0:
         sys.exit(f"geopress run {cfg} failed")
     info = json.loads((cfg.parent / f"out-{cfg.stem}" / "run.json").read_text())
     terrain = info["terrain"][0]
-    return {"wall": wall, "rss_gb": usage.ru_maxrss / 1024 / 1024, "terrain_s": info["timings_s"]["sample terrain"],
+    return {"wall": m.wall_s, "rss_gb": m.rss_gb, "pss_gb": m.pss_gb, "terrain_s": info["timings_s"]["sample terrain"],
             "pixels_read": terrain["pixels_read"], "windows": terrain["windows_read"], "shape": terrain["shape"],
             "customers": info["customers"]["total"]}
 
@@ -184,7 +182,7 @@ def main() -> None:
         r = run_case(write_config(work, name, dem, cust))
         h, w = r["shape"]
         print(f"{name:12s} {r['customers']:>9,} customers on {w:,} x {h:,} px: {r['wall']:6.1f} s, "
-              f"peak RSS {r['rss_gb']:.2f} GB, terrain {r['terrain_s']:.1f} s, {r['windows']:,} windows, "
+              f"peak RSS (largest process) {r['rss_gb']:.2f} GB, peak PSS (all processes) {r['pss_gb']:.2f} GB, terrain {r['terrain_s']:.1f} s, {r['windows']:,} windows, "
               f"{r['pixels_read'] / 1e6:,.0f} Mpx read ({100 * r['pixels_read'] / (h * w):.2f}% of the mosaic)",
               flush=True)
 
