@@ -108,7 +108,7 @@ def _counts_text(counts: dict[str, int], skip: tuple[str, ...] = ()) -> str:
 
 def _summary(result: pipeline.Result) -> str:
     counts = _counts_text(result.counts)
-    seconds = sum(result.timings.values())
+    seconds = result.elapsed_s
     where = f" -> {result.config.output.path}" if result.outputs else ""
     return f"{len(result.customers)} customers: {counts} ({seconds:.1f} s){where}"
 

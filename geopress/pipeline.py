@@ -64,7 +64,10 @@ class Result:
     counts: dict[str, int]
     mailing: dict[str, pd.DataFrame]
     info: dict[str, Any]
+    #: seconds per step; a step run in a child process, "(child process)", overlaps the others
     timings: dict[str, float] = field(default_factory=dict)
+    #: wall-clock seconds of the whole run
+    elapsed_s: float = 0.0
     outputs: list[Path] = field(default_factory=list)
     #: the service_band / band_limits layers and the report's terrain (geopress.planning)
     plan: planning.Plan | None = None
@@ -151,24 +154,25 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
     final, before the zone summary, mailing lists and service band.
     """
     cfg = config
-    with clock.step("read customers"):
-        cust = vector_io.read_customers(cfg.customers)
     with clock.step("read zones"):
-        zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
+        crs = vector_io.customers_crs(cfg.customers)
+        zones = vector_io.read_zones(cfg.zones, target_crs=crs)
         overlap_info = _warn_overlaps(zones)
     # the service band needs only the zones and the DEM: a child process computes it meanwhile
-    band = forked.start(_timed, planning.service_bands, cfg, zones, cust.crs, what="service band")
+    band = forked.start(_timed, planning.service_bands, cfg, zones, crs, what="service band")
     try:
-        return _compute(cfg, clock, cust, zones, overlap_info, band, engine=engine, scheduler=scheduler,
+        return _compute(cfg, clock, zones, overlap_info, band, engine=engine, scheduler=scheduler,
                         partitions=partitions, on_customers=on_customers)
     finally:
         band.cancel()  # reaped already unless this failed
 
 
-def _compute(cfg: Config, clock: _Clock, cust: vector_io.Customers, zones: vector_io.Zones,
-             overlap_info: list[dict[str, Any]], band: forked.Forked, *, engine: str, scheduler: Any,
-             partitions: int | None, on_customers: Callable[[gpd.GeoDataFrame], None] | None) -> Result:
+def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
+             band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
+             on_customers: Callable[[gpd.GeoDataFrame], None] | None) -> Result:
     crit = cfg.criteria
+    with clock.step("read customers"):
+        cust = vector_io.read_customers(cfg.customers)
     # --- scale-out engine: the zone join and terrain sampling per spatial partition on dask
     joined = None
     if engine == "dask":
@@ -386,6 +390,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         if write:
             result.outputs = write_outputs(result, clock, stage, gpkg[0])
     result.timings = clock.timings
+    result.elapsed_s = time.perf_counter() - t0
     log.debug("run finished in %.2f s: %s", time.perf_counter() - t0,
              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
     return result

@@ -496,7 +496,7 @@ def test_input_error_leaves_previous_outputs(crafted):
     before = output_files(root)
     (root / "zones.gpkg").unlink()
     with pytest.raises(InputError, match="file not found"):
-        run_crafted(crafted)
+        geopress.run(crafted)  # the zones are read before the customers, so no geometry warning comes first
     assert output_files(root) == before
 
 

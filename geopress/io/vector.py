@@ -119,6 +119,12 @@ class Customers:
     no_geometry: int
 
 
+def customers_crs(cfg: CustomersConfig) -> CRS:
+    """The customers layer's CRS, from its metadata (an InputError when it has none)."""
+    layer = resolve_layer(cfg.path, cfg.layer, "customers")
+    return _crs(cfg.path, layer, layer_info(cfg.path, layer)["crs"])
+
+
 def read_customers(cfg: CustomersConfig) -> Customers:
     """Read and check the customers layer; polygons become shapely's point_on_surface."""
     path = cfg.path
