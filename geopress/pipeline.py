@@ -266,10 +266,11 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
 
 def customer_layers(customers: gpd.GeoDataFrame) -> dict[str, write_io.Layer]:
     """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
-    and the flagged ones (made by the writer from it, see write_io.Layer)."""
+    and the flagged ones (taken from it by the writer, see write_io.Subset)."""
     layers: dict[str, write_io.Layer] = {"customers": customers}
-    for status, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = lambda status=status: customers[customers["status"] == status]
+    status = customers["status"]
+    for code, name in cls.FLAGGED_LAYERS.items():
+        layers[name] = write_io.Subset("customers", (status == code).to_numpy(dtype=bool))
     return layers
 
 
