@@ -150,8 +150,9 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
             partitions: int | None = None, on_customers: Callable[[gpd.GeoDataFrame], None] | None = None) -> Result:
     """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`.
 
-    ``on_customers`` is called with the customers layer as soon as it is
-    final, before the zone summary, mailing lists and service band.
+    ``on_customers`` is called with the customers layer once it is final
+    and the service band's child process is done, before the zone summary
+    and the mailing lists are made.
     """
     cfg = config
     with clock.step("read zones"):
@@ -231,6 +232,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+    # the writer starts only once the service band's child is done, so that at most two processes
+    # hold working memory at once (the band's window is budgeted like the terrain's, by memory_mb)
+    with clock.step("wait for the service band"):
+        plan, clock.timings["service band (child process)"] = band.result()
     if on_customers is not None:
         on_customers(customers)
     with clock.step("summarise"):
@@ -239,8 +244,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
             customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields).items()}
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
-    with clock.step("service band"):  # the wait for the child, and the best HGLs
-        plan, clock.timings["service band (child process)"] = band.result()
+    with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
     info = {
         "geopress_version": __version__,

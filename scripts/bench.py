@@ -295,7 +295,7 @@ def main() -> None:
     for v, label in (("geopress", "geopress run"), ("baseline", "baseline")):
         print(f"{label:14s} median {med[v]:7.2f} s   peak RSS (largest process) {rss[v]:.2f} GB   "
               f"peak PSS (all processes) {pss[v]:.2f} GB")
-    print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.1f}x faster")
+    print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.2f}x faster")
     print("geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
     print(f"bilinear kernel in process: {rate / 1e6:.1f} million points per second")
 
