@@ -75,10 +75,6 @@ class Result:
     changes: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
 
-    def flagged(self, status: str) -> gpd.GeoDataFrame:
-        """Customers with ``status``."""
-        return self.customers[self.customers["status"] == status]
-
 
 class _Clock:
     def __init__(self, progress: Progress | None):
@@ -396,7 +392,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
             result.outputs = write_outputs(result, clock, stage, gpkg[0])
     result.timings = clock.timings
     result.elapsed_s = time.perf_counter() - t0
-    log.debug("run finished in %.2f s: %s", time.perf_counter() - t0,
+    log.debug("run finished in %.2f s: %s", result.elapsed_s,
              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
     return result
 

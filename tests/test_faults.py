@@ -109,11 +109,19 @@ def killed(*args):
 
 
 # The GeoPackage's layers are written in a forked child process: a fault there surfaces in the run.
-@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "No space left on device"), (bug, 1, "injected fault"),
-                                               (killed, 2, "the writer process was killed by signal 9")])
-def test_fault_in_the_geopackage_writer_process(world, prior, monkeypatch, fault, code, text):
-    parent = os.getpid()
-    monkeypatch.setattr(write_io, "_write_layers", lambda *a: fault() if os.getpid() != parent else None)
+# Forked children: the service band is computed while the customers are sampled, the GeoPackage's
+# layers are written while the rest is made. A fault in either surfaces in the run.
+@pytest.mark.parametrize("owner, name, fault, code, text", [
+    pytest.param(write_io, "_write_layers", disk_full, 2, "No space left on device", id="writer-disk-full"),
+    pytest.param(write_io, "_write_layers", bug, 1, "injected fault", id="writer-bug"),
+    pytest.param(write_io, "_write_layers", killed, 2, "the writer process was killed by signal 9", id="writer-killed"),
+    pytest.param(planning, "service_bands", bug, 1, "injected fault", id="band-bug"),
+    pytest.param(planning, "service_bands", killed, 2, "the service band process was killed by signal 9",
+                 id="band-killed"),
+])
+def test_fault_in_a_child_process(world, prior, monkeypatch, owner, name, fault, code, text):
+    parent, real = os.getpid(), getattr(owner, name)
+    monkeypatch.setattr(owner, name, lambda *a: fault() if os.getpid() != parent else real(*a))
     assert text in error_line(run(world), code)
     assert snapshot(world.out.parent) == prior
     monkeypatch.undo()
@@ -134,19 +142,6 @@ def test_a_failure_while_the_writer_process_works_stops_it(world, prior, monkeyp
         with pytest.raises(ProcessLookupError):
             os.kill(job.pid, 0)  # reaped: not even a zombie
     assert snapshot(world.out.parent) == prior
-
-
-# The service band is computed in a forked child process while the customers are sampled.
-@pytest.mark.parametrize("fault, code, text", [(bug, 1, "injected fault"),
-                                               (killed, 2, "the service band process was killed by signal 9")])
-def test_fault_in_the_service_band_process(world, prior, monkeypatch, fault, code, text):
-    parent = os.getpid()
-    real = planning.service_bands
-    monkeypatch.setattr(planning, "service_bands", lambda *a: fault() if os.getpid() != parent else real(*a))
-    assert text in error_line(run(world), code)
-    assert snapshot(world.out.parent) == prior
-    monkeypatch.undo()
-    then_a_good_run_leaves_no_temporary(world)
 
 
 @pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "cannot write the commit journal (No space left"),
