@@ -143,10 +143,11 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
 
 
 def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
-            partitions: int | None = None, on_customers: Callable[[gpd.GeoDataFrame], None] | None = None) -> Result:
+            partitions: int | None = None, on_customers: Callable[[gpd.GeoDataFrame | write_io.Encoded], None] | None = None) -> Result:
     """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`.
 
-    ``on_customers`` is called with the customers layer once it is final
+    ``on_customers`` is called with the customers layer to write (with the
+    file's WKB when its geometries pass through unchanged) once it is final
     and the service band's child process is done, before the zone summary
     and the mailing lists are made.
     """
@@ -166,7 +167,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
 
 def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
              band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
-             on_customers: Callable[[gpd.GeoDataFrame], None] | None) -> Result:
+             on_customers: Callable[[gpd.GeoDataFrame | write_io.Encoded], None] | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
         cust = vector_io.read_customers(cfg.customers)
@@ -233,7 +234,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     if on_customers is not None:
-        on_customers(customers)
+        on_customers(customers if cust.wkb is None else write_io.Encoded(customers, cust.wkb))
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -264,11 +265,12 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   plan=plan)
 
 
-def customer_layers(customers: gpd.GeoDataFrame) -> dict[str, write_io.Layer]:
+def customer_layers(customers: gpd.GeoDataFrame | write_io.Encoded) -> dict[str, write_io.Layer]:
     """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
     and the flagged ones (taken from it by the writer, see write_io.Subset)."""
     layers: dict[str, write_io.Layer] = {"customers": customers}
-    status = customers["status"]
+    frame = customers.frame if isinstance(customers, write_io.Encoded) else customers
+    status = frame["status"]
     for code, name in cls.FLAGGED_LAYERS.items():
         layers[name] = write_io.Subset("customers", (status == code).to_numpy(dtype=bool))
     return layers
@@ -377,7 +379,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         inputs = nightly.snapshot(cfg.input_paths())
         gpkg: list[write_io.Started] = []
 
-        def start_writing(customers: gpd.GeoDataFrame) -> None:
+        def start_writing(customers: gpd.GeoDataFrame | write_io.Encoded) -> None:
             write_io.ensure_dir(cfg.output.path.parent, "output.path")
             gpkg.append(stage.start(cfg.output.path, lambda tmp: write_io.start_geopackage(tmp, customer_layers(customers))))
 

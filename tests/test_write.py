@@ -9,6 +9,7 @@ import pyogrio
 import pytest
 import shapely
 
+from geopress.io import vector as vector_io
 from geopress.io import write as write_io
 
 
@@ -43,3 +44,20 @@ def test_subsets_are_written_as_the_filtered_frames(tmp_path, frame, monkeypatch
         assert info["crs"] == "EPSG:32631"
         assert list(info["fields"]) == ["account", "zone", "psi_max", "status"]
         assert list(info["dtypes"]) == ["object", "object", "float64", "object"]
+
+
+def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
+    # geometries passed through as the file's WKB give the same layer as encoding the frame's
+    source = tmp_path / "in.gpkg"
+    write_io._write_layers(source, {"customers": frame})
+    read, wkb = vector_io.read_layer(source, "customers", list(frame.columns.drop("geometry")))
+    status = read["status"].to_numpy(dtype=object)
+    for layers, out in (({"customers": read}, tmp_path / "encoded-here.gpkg"),
+                        ({"customers": write_io.Encoded(read, wkb)}, tmp_path / "passed-through.gpkg")):
+        write_io._write_layers(out, {**layers, "high": write_io.Subset("customers", status == "high")})
+    for name in ("customers", "high"):
+        here = pyogrio.read_dataframe(tmp_path / "encoded-here.gpkg", layer=name)
+        through = pyogrio.read_dataframe(tmp_path / "passed-through.gpkg", layer=name)
+        pd.testing.assert_frame_equal(through, here)
+        assert pyogrio.read_info(tmp_path / "passed-through.gpkg", layer=name)["geometry_type"] == "Point"
+    assert shapely.equals(through.geometry.to_numpy(), frame.geometry[frame["status"] == "high"].to_numpy()).all()

@@ -14,6 +14,7 @@ from pathlib import Path
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyogrio
 import shapely
 from pyproj import CRS
@@ -71,12 +72,33 @@ def layer_info(path: Path, layer: str) -> dict:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
 
 
-def read_layer(path: Path, layer: str, columns: list[str]) -> gpd.GeoDataFrame:
-    """The ``columns`` and geometry of a layer (Arrow read), errors translated."""
+#: how Arrow text becomes pandas text: as pyogrio.read_dataframe does, pandas' own string dtype from
+#: pandas 3 on (so text stays Arrow-backed, no Python string per row), object before
+_TEXT = ({pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.StringDtype(na_value=np.nan)}.get
+         if int(pd.__version__.split(".")[0]) >= 3 else None)
+
+
+def read_layer(path: Path, layer: str, columns: list[str]) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
+    """The ``columns`` and geometry of a layer, errors translated, and its geometries as the file's WKB.
+
+    The same frame as ``pyogrio.read_dataframe(use_arrow=True)``, made without
+    a Python bytes object per row: the WKB goes straight from Arrow to
+    shapely, and is returned too, so that a writer can pass unchanged
+    geometries through instead of encoding them again.
+    """
     try:
-        return pyogrio.read_dataframe(path, layer=layer, columns=columns, use_arrow=True)
+        meta, table = pyogrio.read_arrow(path, layer=layer, columns=columns)
+        name = meta["geometry_name"] or "wkb_geometry"
+        if name not in table.column_names:
+            raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
+        wkb = table[name]
+        geometry = shapely.from_wkb(wkb.to_numpy(zero_copy_only=False))
+        frame = table.drop_columns([name]).to_pandas(types_mapper=_TEXT)
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
+    return gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(geometry, crs=meta["crs"])), wkb
 
 
 def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
@@ -106,7 +128,9 @@ class Customers:
     ``frame`` has the id field, mail fields and floors (float, NaN unknown) and
     a point geometry in the layer's CRS; rows without a usable geometry have a
     None geometry and ``has_geometry`` False. ``x``/``y`` are the point
-    coordinates (NaN where there is none).
+    coordinates (NaN where there is none). ``wkb`` is the frame's geometries
+    as the file's WKB when they are exactly the file's (every one a 2D point
+    or missing), for writers to pass through; None otherwise.
     """
 
     frame: gpd.GeoDataFrame
@@ -117,6 +141,7 @@ class Customers:
     layer: str
     from_polygons: int
     no_geometry: int
+    wkb: pa.ChunkedArray | None = None
 
 
 def customers_crs(cfg: CustomersConfig) -> CRS:
@@ -139,7 +164,7 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     if info["features"] == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
     columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
-    df = read_layer(path, layer, columns)
+    df, wkb = read_layer(path, layer, columns)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
@@ -210,8 +235,11 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     if cfg.floors_field:
         frame[cfg.floors_field] = floors
     log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
+    # the file's WKB is what shapely would encode only for 2D points (an empty one became missing above)
+    unchanged = not areal.any() and not (missing & ~shapely.is_missing(geom)).any() and not shapely.has_z(points[has]).any()
     return Customers(
-        frame=frame, x=x, y=y, has_geometry=has, crs=crs, layer=layer, from_polygons=int(areal.sum()), no_geometry=int(missing.sum())
+        frame=frame, x=x, y=y, has_geometry=has, crs=crs, layer=layer, from_polygons=int(areal.sum()),
+        no_geometry=int(missing.sum()), wkb=wkb if unchanged else None,
     )
 
 
@@ -234,7 +262,7 @@ def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
     info = layer_info(path, layer)
     check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
     crs = _crs(path, layer, info["crs"])
-    df = read_layer(path, layer, [cfg.id_field])
+    df, _ = read_layer(path, layer, [cfg.id_field])
     if len(df) == 0:
         raise InputError(f"layer '{layer}' has no zone polygons", path=path, key="zones.layer")
     ids = df[cfg.id_field]

@@ -250,8 +250,18 @@ class Subset:
     mask: np.ndarray
 
 
-#: a layer to write: a frame, or a subset of an earlier layer
-Layer = pd.DataFrame | Subset
+@dataclass(frozen=True)
+class Encoded:
+    """A point layer whose geometries are given already encoded: ``wkb``, row for row
+    (the file's own WKB, as :func:`geopress.io.vector.read_layer` returns it), so the
+    writer passes them through instead of encoding ``frame``'s geometries again."""
+
+    frame: gpd.GeoDataFrame
+    wkb: pa.ChunkedArray | pa.Array
+
+
+#: a layer to write: a frame, a point layer with its WKB, or a subset of an earlier layer
+Layer = pd.DataFrame | Encoded | Subset
 
 #: rows per Arrow batch of a subset layer: bounds the memory the subset takes while written
 BATCH_ROWS = 65_536
@@ -293,9 +303,9 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
         if isinstance(layer, Subset):
             table, geometry, crs = tables[layer.of]
             _write_points(path, name, _filtered(table, layer.mask), geometry, crs)
-        elif name in sources:  # a point layer (the customers): converted once, kept for its subsets
-            table = pa.table(layer.to_arrow(index=False, geometry_encoding="WKB"))
-            tables[name] = table, layer.geometry.name, _crs_text(layer.crs)
+        elif isinstance(layer, Encoded) or name in sources:
+            # a point layer (the customers): converted once, kept for its subsets
+            tables[name] = _point_table(layer)
             _write_points(path, name, *tables[name])
         elif isinstance(layer, gpd.GeoDataFrame):
             # an empty or all-null layer would otherwise be typed "Unknown"
@@ -306,6 +316,18 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
             pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
         seconds[name] = round(time.perf_counter() - t0, 4)
     return seconds
+
+
+def _point_table(layer: gpd.GeoDataFrame | Encoded) -> tuple[pa.Table, str, str | None]:
+    """A point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
+    frame = layer.frame if isinstance(layer, Encoded) else layer
+    geometry = frame.geometry.name
+    if isinstance(layer, Encoded):
+        attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
+        table = attributes.add_column(frame.columns.get_loc(geometry), geometry, layer.wkb)
+    else:
+        table = pa.table(frame.to_arrow(index=False, geometry_encoding="WKB"))
+    return table, geometry, _crs_text(frame.crs)
 
 
 def _all_points(df: gpd.GeoDataFrame) -> bool:

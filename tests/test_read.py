@@ -1,0 +1,54 @@
+"""geopress.io.vector.read_layer / read_customers: the frame, and the file's WKB kept only where it is the output's."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import shapely
+
+from conftest import customer_records, write_layer
+from geopress.config import CustomersConfig
+from geopress.errors import InputError
+from geopress.io import vector as vector_io
+
+
+def test_read_layer_gives_the_frame_pyogrio_reads(tmp_path):
+    # reference: pyogrio.read_dataframe(use_arrow=True), the reader this one replaces
+    path = write_layer(tmp_path / "c.gpkg", "parcels", {
+        "account": ["A1", "A2", "A3"], "owner": ["Ann", None, "Cy, Jr."], "floors": [1, 2, 3], "area": [1.5, np.nan, 3.0],
+    }, [shapely.Point(1, 2), None, shapely.box(0, 0, 1, 1)])
+    got, wkb = vector_io.read_layer(path, "parcels", ["account", "owner", "floors", "area"])
+    expected = pyogrio.read_dataframe(path, layer="parcels", columns=["account", "owner", "floors", "area"], use_arrow=True)
+    pd.testing.assert_frame_equal(got, expected)
+    assert got.crs == expected.crs
+    assert wkb.to_pylist() == [shapely.to_wkb(g) if g is not None else None for g in expected.geometry]
+
+
+def test_a_layer_without_geometry_is_an_input_error(tmp_path):
+    path = tmp_path / "c.gpkg"
+    pyogrio.write_dataframe(pd.DataFrame({"account": ["A1"]}), path, layer="table", driver="GPKG")
+    with pytest.raises(InputError, match="layer 'table' has no geometry"):
+        vector_io.read_layer(path, "table", ["account"])
+
+
+POINT = shapely.Point(10, 20)
+
+
+@pytest.mark.filterwarnings("ignore::geopress.errors.GeometryWarning")  # the missing ones are reported
+@pytest.mark.parametrize("other, passed_through", [
+    (shapely.Point(30, 40), True),
+    (None, True),  # a missing geometry stays missing
+    (shapely.Point(), False),  # an empty point becomes missing
+    (shapely.box(0, 0, 2, 2), False),  # a parcel becomes a point on its surface
+    (shapely.MultiPoint([(1, 1), (2, 2)]), False),
+    (shapely.Point(30, 40, 5), False),  # the output layers are 2D
+])
+def test_the_files_wkb_is_kept_only_when_it_is_the_customers_points(tmp_path, other, passed_through):
+    path = write_layer(tmp_path / "c.gpkg", "parcels", customer_records([0, 0], [0, 0]), [POINT, other])
+    cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account"))
+    if passed_through:
+        assert cust.wkb.to_pylist() == list(shapely.to_wkb(cust.frame.geometry.to_numpy()))
+    else:
+        assert cust.wkb is None
