@@ -8,6 +8,7 @@ every input and says what a run would process, writing nothing.
 
 from __future__ import annotations
 
+import gc
 import logging
 import os
 import time
@@ -89,6 +90,28 @@ class _Clock:
         yield
         self.timings[name] = round(time.perf_counter() - t0, 4)
         log.debug("step %s took %.3f s", name, self.timings[name])
+
+
+@contextmanager
+def _cycle_collection_paused() -> Iterator[None]:
+    """Pause CPython's cycle collector for a run, then restore it as it was.
+
+    A run holds a million GC-tracked shapely geometries per million
+    customers, and every full collection walks them all: eight times while
+    they are decoded (0.5 s at 1,000,000 customers, measured with
+    gc.callbacks), and again after each fork, where writing their GC
+    headers copies pages the child processes share. The run's large
+    objects are freed by reference counting; a collection after a run of
+    1,000,000 customers found 33,000 objects in cycles, too few to matter
+    for its peak memory.
+    """
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def _as_config(config: Config | str | os.PathLike) -> Config:
@@ -374,7 +397,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         check_writable(cfg.output.path.parent, "output.path")
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    with nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
+    with _cycle_collection_paused(), nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
             write_io.Staging(journal_for=cfg.output.path) as stage:
         inputs = nightly.snapshot(cfg.input_paths())
         gpkg: list[write_io.Started] = []

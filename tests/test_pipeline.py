@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import errno
+import gc
 import json
 import sqlite3
 import subprocess
@@ -713,3 +714,23 @@ def test_datum_offset_shifts_ground_onto_the_hgl_datum(world):
     np.testing.assert_array_equal(shifted["ground_ft"], plain["ground_ft"] - 3.25)
     # 3.25 ft more head everywhere: 0.433 * 3.25 = 1.40725 psi more (float64 round-off ~1e-13, PSI_TOL)
     np.testing.assert_allclose(shifted["psi_min"], plain["psi_min"] + 0.433 * 3.25, rtol=0, atol=PSI_TOL)
+
+
+def test_a_run_pauses_the_cycle_collector_and_restores_it(world, monkeypatch):
+    seen = []
+    real = pipeline.compute
+
+    def spy(*args, **kwargs):
+        seen.append(gc.isenabled())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "compute", spy)
+    assert gc.isenabled()
+    geopress.run(world.config_path)
+    assert seen == [False] and gc.isenabled()
+    gc.disable()
+    try:
+        geopress.run(world.config_path)
+        assert not gc.isenabled()  # left as the caller had it
+    finally:
+        gc.enable()
