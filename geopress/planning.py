@@ -168,12 +168,12 @@ def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
     crit = cfg.criteria
     floors_all = (customers[cfg.customers.floors_field].to_numpy(dtype=np.float64) if cfg.customers.floors_field
                   else np.full(len(customers), np.nan))
-    zone_col = customers["zone"].to_numpy(dtype=object)
+    zone_col = customers["zone"]
     ground_all = customers["ground_ft"].to_numpy(dtype=np.float64)
     flagged_all = customers["status"].isin(list(FLAGGED_LAYERS)).to_numpy()
     rows = []
     for src in cfg.zones.sources:
-        sel = zone_col == src.zone
+        sel = (zone_col == src.zone).to_numpy(dtype=bool)  # compared as the column's own text, no Python str per row
         row: dict[str, Any] = {"zone": src.zone, **{c: np.nan for c in BEST_COLUMNS}}
         high, low = src.hgl_range(crit.psi_per_ft)
         best = best_range(ground_all[sel], floors_all[sel], high - low, crit)

@@ -154,21 +154,23 @@ def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequen
 def zone_summary(customers: pd.DataFrame, sources: Sequence[Source], psi_per_ft: float) -> pd.DataFrame:
     """Per zone: source kind, HGL range, customer count, count by status, ground and psi_max spread."""
     rows = []
+    zone, status = customers["zone"], customers["status"]
+    values = {col: customers[col].to_numpy(dtype=np.float64) for col in ("ground_ft", "psi_max")}
     for src in sources:
         high, low = src.hgl_range(psi_per_ft)
-        sub = customers[customers["zone"] == src.zone]
+        sel = (zone == src.zone).to_numpy(dtype=bool)  # only the columns summarised, not a copy of every one
         row: dict[str, object] = {
             "zone": src.zone,
             "source_kind": src.kind,
             "hgl_high_ft": high,
             "hgl_low_ft": low,
-            "customers": int(len(sub)),
+            "customers": int(sel.sum()),
         }
-        counts = sub["status"].value_counts()
-        for status in STATUSES:
-            row[f"n_{status}"] = int(counts.get(status, 0))
-        for col in ("ground_ft", "psi_max"):
-            vals = sub[col].to_numpy(dtype=np.float64)
+        counts = status[sel].value_counts()
+        for name in STATUSES:
+            row[f"n_{name}"] = int(counts.get(name, 0))
+        for col, all_vals in values.items():
+            vals = all_vals[sel]
             vals = vals[~np.isnan(vals)]
             for stat, fn in (("min", np.min), ("median", np.median), ("max", np.max)):
                 row[f"{col}_{stat}"] = float(np.round(fn(vals), 2)) if vals.size else np.nan
