@@ -16,8 +16,9 @@ Both sample the containing pixel (``method = "nearest"``, which is what
 ``sample()`` does), so their statuses must agree; the script checks they do.
 It prints the median wall time of each variant, its peak memory two ways
 (see _measure.py: the resident set size of its largest process, and the
-proportional set size of all its processes together), their ratio, geopress's time per step, and the
-in-process throughput of the bilinear kernel on the DEM in memory.
+proportional set size of all its processes together), their ratio, the ratio within each pair of
+runs (run back to back, so under much the same load), geopress's time per step, and the in-process
+throughput of the bilinear kernel on the DEM in memory.
 
     python scripts/bench.py                 # N = 1,000,000
     python scripts/bench.py --n 100000      # a quick check
@@ -296,6 +297,10 @@ def main() -> None:
         print(f"{label:14s} median {med[v]:7.2f} s   peak RSS (largest process) {rss[v]:.2f} GB   "
               f"peak PSS (all processes) {pss[v]:.2f} GB")
     print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.2f}x faster")
+    # the two runs of a pair follow each other, so they share the machine's load more than the medians do
+    pairs = [b.wall_s / g.wall_s for g, b in zip(runs["geopress"], runs["baseline"])]
+    print(f"ratio within each pair of runs: median {statistics.median(pairs):.2f}x "
+          f"({', '.join(f'{r:.2f}x' for r in pairs)})")
     print("geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
     print(f"bilinear kernel in process: {rate / 1e6:.1f} million points per second")
 
