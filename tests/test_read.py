@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import struct
+
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyogrio
 import pytest
 import shapely
@@ -52,3 +55,14 @@ def test_the_files_wkb_is_kept_only_when_it_is_the_customers_points(tmp_path, ot
         assert cust.wkb.to_pylist() == list(shapely.to_wkb(cust.frame.geometry.to_numpy()))
     else:
         assert cust.wkb is None
+
+
+def test_a_point_with_an_m_value_is_not_passed_through(tmp_path):
+    # ISO WKB of POINT M (1 2 3), type 2001 (OGC Simple Features), written by GDAL as it is
+    point_m = struct.pack("<BIddd", 1, 2001, 1.0, 2.0, 3.0)
+    table = pa.table({"account": ["A1", "A2"], "geom": [shapely.to_wkb(POINT), point_m]})
+    path = tmp_path / "c.gpkg"
+    pyogrio.write_arrow(table, path, layer="parcels", driver="GPKG", geometry_name="geom", geometry_type="Unknown",
+                        crs="EPSG:32631")
+    cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account"))
+    assert cust.wkb is None

@@ -15,6 +15,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyogrio
 import shapely
 from pyproj import CRS
@@ -235,8 +236,11 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     if cfg.floors_field:
         frame[cfg.floors_field] = floors
     log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
-    # the file's WKB is what shapely would encode only for 2D points (an empty one became missing above)
-    unchanged = not areal.any() and not (missing & ~shapely.is_missing(geom)).any() and not shapely.has_z(points[has]).any()
+    # the file's WKB is what shapely would encode only for 2D points: 21 bytes each (byte order, type and
+    # two doubles, as OGC's WKB lays them out), none where missing; an empty point became missing above
+    lengths = pc.binary_length(wkb)
+    two_d = pc.all(pc.or_kleene(pc.equal(lengths, 21), pc.is_null(lengths))).as_py()
+    unchanged = two_d and not areal.any() and not (missing & ~shapely.is_missing(geom)).any()
     return Customers(
         frame=frame, x=x, y=y, has_geometry=has, crs=crs, layer=layer, from_polygons=int(areal.sum()),
         no_geometry=int(missing.sum()), wkb=wkb if unchanged else None,
