@@ -22,6 +22,7 @@ from typing import Any, Callable, Iterator
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyogrio
 import pyproj
 import rasterio
@@ -166,11 +167,12 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
 
 
 def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
-            partitions: int | None = None, on_customers: Callable[[gpd.GeoDataFrame | write_io.Encoded], None] | None = None) -> Result:
+            partitions: int | None = None,
+            on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None = None) -> Result:
     """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`.
 
-    ``on_customers`` is called with the customers layer to write (with the
-    file's WKB when its geometries pass through unchanged) once it is final
+    ``on_customers`` is called with the customers layer and its geometries
+    as the file's WKB (None unless they pass through unchanged) once it is final
     and the service band's child process is done, before the zone summary
     and the mailing lists are made.
     """
@@ -190,7 +192,7 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
 
 def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
              band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
-             on_customers: Callable[[gpd.GeoDataFrame | write_io.Encoded], None] | None) -> Result:
+             on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
         cust = vector_io.read_customers(cfg.customers)
@@ -257,7 +259,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     if on_customers is not None:
-        on_customers(customers if cust.wkb is None else write_io.Encoded(customers, cust.wkb))
+        on_customers(customers, cust.wkb)
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -288,12 +290,12 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   plan=plan)
 
 
-def customer_layers(customers: gpd.GeoDataFrame | write_io.Encoded) -> dict[str, write_io.Layer]:
+def customer_layers(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None = None) -> dict[str, write_io.Layer]:
     """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
-    and the flagged ones (taken from it by the writer, see write_io.Subset)."""
-    layers: dict[str, write_io.Layer] = {"customers": customers}
-    frame = customers.frame if isinstance(customers, write_io.Encoded) else customers
-    status = frame["status"]
+    (with ``wkb``, its geometries as read, when given: see write_io.Encoded) and the flagged
+    ones (taken from it by the writer, see write_io.Subset)."""
+    layers: dict[str, write_io.Layer] = {"customers": customers if wkb is None else write_io.Encoded(customers, wkb)}
+    status = customers["status"]
     for code, name in cls.FLAGGED_LAYERS.items():
         layers[name] = write_io.Subset("customers", (status == code).to_numpy(dtype=bool))
     return layers
@@ -402,9 +404,10 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         inputs = nightly.snapshot(cfg.input_paths())
         gpkg: list[write_io.Started] = []
 
-        def start_writing(customers: gpd.GeoDataFrame | write_io.Encoded) -> None:
+        def start_writing(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None) -> None:
             write_io.ensure_dir(cfg.output.path.parent, "output.path")
-            gpkg.append(stage.start(cfg.output.path, lambda tmp: write_io.start_geopackage(tmp, customer_layers(customers))))
+            gpkg.append(stage.start(cfg.output.path,
+                                    lambda tmp: write_io.start_geopackage(tmp, customer_layers(customers, wkb))))
 
         result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions,
                          on_customers=start_writing if write else None)

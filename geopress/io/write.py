@@ -320,12 +320,13 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
 
 def _point_table(layer: gpd.GeoDataFrame | Encoded) -> tuple[pa.Table, str, str | None]:
     """A point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
-    frame = layer.frame if isinstance(layer, Encoded) else layer
-    geometry = frame.geometry.name
     if isinstance(layer, Encoded):
+        frame = layer.frame
+        geometry = frame.geometry.name
         attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
         table = attributes.add_column(frame.columns.get_loc(geometry), geometry, layer.wkb)
     else:
+        frame, geometry = layer, layer.geometry.name
         table = pa.table(frame.to_arrow(index=False, geometry_encoding="WKB"))
     return table, geometry, _crs_text(frame.crs)
 
