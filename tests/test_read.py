@@ -58,7 +58,8 @@ def test_the_files_wkb_is_kept_only_when_it_is_the_customers_points(tmp_path, ot
 
 
 def test_a_point_with_an_m_value_is_not_passed_through(tmp_path):
-    # ISO WKB of POINT M (1 2 3), type 2001 (OGC Simple Features), written by GDAL as it is
+    # ISO WKB of POINT M (1 2 3): type 2001 (OGC Simple Features, ISO 19125; from memory, and the bytes
+    # shapely.to_wkb(flavor="iso") writes for it), written by GDAL as it is
     point_m = struct.pack("<BIddd", 1, 2001, 1.0, 2.0, 3.0)
     table = pa.table({"account": ["A1", "A2"], "geom": [shapely.to_wkb(POINT), point_m]})
     path = tmp_path / "c.gpkg"
