@@ -22,7 +22,7 @@ Classification is monotone: lowering a customer's ground never moves it from
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import Callable, Sequence
 
 import numpy as np
 import pandas as pd
@@ -99,9 +99,16 @@ def classify(
     return np.select(conditions, [CODE[s] for s in STATUSES[:-1]], default=CODE["ok"]).astype(np.int8)
 
 
-def status_names(codes: ArrayLike) -> NDArray[np.str_]:
-    """Status names for an array of codes."""
-    return np.asarray(STATUSES)[np.asarray(codes, dtype=np.intp)]
+def names_at(names: Sequence[str], index: ArrayLike, valid: ArrayLike | None = None) -> pd.api.extensions.ExtensionArray:
+    """``names[index]`` as pandas text (``"str"``), missing where not ``valid``: one Arrow take, no Python string per row."""
+    table = pa.array([str(n) for n in names], type=pa.large_string())
+    mask = None if valid is None else ~np.asarray(valid, dtype=bool)
+    return pd.array(table.take(pa.array(np.asarray(index, dtype=np.intp), mask=mask)), dtype="str")
+
+
+def status_names(codes: ArrayLike) -> pd.api.extensions.ExtensionArray:
+    """Status names for an array of codes, as pandas text."""
+    return names_at(STATUSES, codes)
 
 
 def _rounded(values: NDArray[np.float64]) -> NDArray[np.float64]:

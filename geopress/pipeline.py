@@ -208,7 +208,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         pts = cust.frame.geometry.to_numpy()
         zi = joined.zone_index if joined else assign(pts, zones.polygons, zones.priority)
         zoned = zi >= 0
-        zone = np.where(zoned, zones.zone_ids[np.where(zoned, zi, 0)], None)
+        zone = cls.names_at(zones.zone_ids, zi, zoned)
         hgl = {s.zone: s.hgl_range(crit.psi_per_ft) for s in cfg.zones.sources}
         zone_high = np.array([hgl[z][0] for z in zones.zone_ids] or [0.0])
         zone_low = np.array([hgl[z][1] for z in zones.zone_ids] or [0.0])

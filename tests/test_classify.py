@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from geopress.classify import CODE, FLAGGED_LAYERS, STATUSES, Criteria, classify, reasons, status_names
+from geopress.classify import CODE, FLAGGED_LAYERS, STATUSES, Criteria, classify, names_at, reasons, status_names
 from geopress.pressure import customer_pressures
 
 CRIT = Criteria()
@@ -211,3 +212,16 @@ def test_default_thresholds_are_the_code_values():
 @pytest.mark.parametrize("status", STATUSES)
 def test_status_names_round_trip(status):
     assert status_names([CODE[status]]).tolist() == [status]
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.text(min_size=1, max_size=8), min_size=1, max_size=5, unique=True).flatmap(
+    lambda names: st.tuples(st.just(names), st.lists(st.tuples(st.integers(0, len(names) - 1), st.booleans()),
+                                                     max_size=30))))
+def test_names_at_is_the_names_by_index_missing_where_not_valid(case):
+    names, rows = case
+    index = np.array([i for i, _ in rows], dtype=np.intp)
+    valid = np.array([v for _, v in rows], dtype=bool)
+    got = pd.Series(names_at(np.array(names, dtype=object), index, valid))
+    assert str(got.dtype) == str(pd.Series(["a"], dtype="str").dtype)
+    assert [None if pd.isna(g) else g for g in got] == [names[i] if v else None for i, v in rows]
