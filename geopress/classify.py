@@ -199,4 +199,4 @@ def reasons(
             texts = [v.astype(str) for v in values]
             sentence[m] = len(table) + index
             table.extend(template.format(*(t[i] for t in texts), lo=lo, hi=hi) for i in range(count))
-    return pd.array(pa.array(table, type=pa.large_string()).take(sentence), dtype="str")
+    return names_at(table, sentence)
