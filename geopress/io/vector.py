@@ -179,8 +179,8 @@ def read_customers(cfg: CustomersConfig) -> Customers:
         )
     # counting distinct ids hashes each once; finding the duplicates themselves costs twice that,
     # so only a layer that has some pays for it
-    dup = ids[ids.duplicated(keep=False)] if ids.nunique() < len(ids) else ids[:0]
-    if len(dup):
+    if ids.nunique() < len(ids):
+        dup = ids[ids.duplicated(keep=False)]
         raise InputError(
             f"field '{cfg.id_field}' (customers.id_field) has duplicate ids: {_fmt_list(pd.unique(dup))}; ids must be unique",
             path=path,
