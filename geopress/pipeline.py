@@ -293,11 +293,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
 def customer_layers(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None = None) -> dict[str, write_io.Layer]:
     """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
     (with ``wkb``, its geometries as read, when given: see write_io.Encoded) and the flagged
-    ones (taken from it by the writer, see write_io.Subset)."""
+    ones (views of it, see write_io.View)."""
     layers: dict[str, write_io.Layer] = {"customers": customers if wkb is None else write_io.Encoded(customers, wkb)}
-    status = customers["status"]
     for code, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = write_io.Subset("customers", (status == code).to_numpy(dtype=bool))
+        layers[name] = write_io.View("customers", "status", code)
     return layers
 
 

@@ -1,6 +1,8 @@
-"""geopress.io.write: point layers and their subsets streamed to GDAL as Arrow batches."""
+"""geopress.io.write: point layers written to GDAL as Arrow, and views of them."""
 
 from __future__ import annotations
+
+import sqlite3
 
 import numpy as np
 import pandas as pd
@@ -27,23 +29,41 @@ def frame() -> gpd.GeoDataFrame:
     }, geometry=gpd.GeoSeries(geoms, crs="EPSG:32631"))
 
 
-def test_subsets_are_written_as_the_filtered_frames(tmp_path, frame, monkeypatch):
-    # batches of 7 rows: several batches, some of which select nothing
-    monkeypatch.setattr(write_io, "BATCH_ROWS", 7)
+def test_views_read_as_the_filtered_frames(tmp_path, frame):
     status = frame["status"].to_numpy(dtype=object)
-    layers = {"customers": frame, "high": write_io.Subset("customers", status == "high"),
-              "none": write_io.Subset("customers", np.zeros(len(frame), dtype=bool))}
+    # a value with a quote selects nothing, and must not break the view's SQL
+    layers = {"customers": frame, "high": write_io.View("customers", "status", "high"),
+              "none": write_io.View("customers", "status", "it's")}
     out = tmp_path / "out.gpkg"
     write_io._write_layers(out, layers)
-    for name, expected in (("customers", frame), ("high", frame[status == "high"]), ("none", frame.iloc[:0])):
-        got = pyogrio.read_dataframe(out, layer=name)
+    fids = pyogrio.read_dataframe(out, layer="customers", fid_as_index=True).index.to_numpy()
+    for name, sel in (("customers", np.ones(len(frame), bool)), ("high", status == "high"),
+                      ("none", np.zeros(len(frame), bool))):
+        got = pyogrio.read_dataframe(out, layer=name, fid_as_index=True)
         # values compared; read back without Arrow the text columns are object, not "str"
-        pd.testing.assert_frame_equal(got, expected.reset_index(drop=True), check_dtype=False)
+        pd.testing.assert_frame_equal(got.reset_index(drop=True), frame[sel].reset_index(drop=True), check_dtype=False)
+        np.testing.assert_array_equal(got.index.to_numpy(), fids[sel])  # a view's fids are the customers'
         info = pyogrio.read_info(out, layer=name)
         assert info["geometry_type"] == "Point"  # an empty layer too
         assert info["crs"] == "EPSG:32631"
         assert list(info["fields"]) == ["account", "zone", "psi_max", "status"]
         assert list(info["dtypes"]) == ["object", "object", "float64", "object"]
+    with sqlite3.connect(out) as db:
+        extent = dict((r[0], r[1:]) for r in db.execute("SELECT table_name, min_x, min_y, max_x, max_y FROM gpkg_contents"))
+    high = frame.geometry[status == "high"]
+    np.testing.assert_array_equal(extent["high"], high[high.notna()].total_bounds)
+    assert extent["none"] == (None, None, None, None)
+
+
+def test_a_view_is_filtered_by_its_base_layers_spatial_index(tmp_path, frame):
+    out = tmp_path / "out.gpkg"
+    write_io._write_layers(out, {"customers": frame, "high": write_io.View("customers", "status", "high")})
+    bbox = (200.0, 200.0, 800.0, 800.0)
+    got = pyogrio.read_dataframe(out, layer="high", bbox=bbox)
+    x, y = frame.geometry.x.to_numpy(), frame.geometry.y.to_numpy()
+    inside = (frame["status"] == "high").to_numpy() & (x >= 200) & (x <= 800) & (y >= 200) & (y <= 800)
+    assert 0 < inside.sum() < (frame["status"] == "high").sum()  # the box selects some of them, not all
+    assert sorted(got["account"]) == sorted(frame.loc[inside, "account"])
 
 
 def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
@@ -51,10 +71,9 @@ def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
     source = tmp_path / "in.gpkg"
     write_io._write_layers(source, {"customers": frame})
     read, wkb = vector_io.read_layer(source, "customers", list(frame.columns.drop("geometry")))
-    status = read["status"].to_numpy(dtype=object)
     for layers, out in (({"customers": read}, tmp_path / "encoded-here.gpkg"),
                         ({"customers": write_io.Encoded(read, wkb)}, tmp_path / "passed-through.gpkg")):
-        write_io._write_layers(out, {**layers, "high": write_io.Subset("customers", status == "high")})
+        write_io._write_layers(out, {**layers, "high": write_io.View("customers", "status", "high")})
     for name in ("customers", "high"):
         here = pyogrio.read_dataframe(tmp_path / "encoded-here.gpkg", layer=name)
         through = pyogrio.read_dataframe(tmp_path / "passed-through.gpkg", layer=name)

@@ -22,12 +22,13 @@ from __future__ import annotations
 import json
 import logging
 import os
+import sqlite3
 import tempfile
 import time
 from glob import escape as glob_escape
 from pathlib import Path
 from dataclasses import dataclass
-from typing import Any, Callable, Iterator, Mapping
+from typing import Any, Callable, Mapping
 
 import geopandas as gpd
 import numpy as np
@@ -239,15 +240,18 @@ GPKG_CACHE_MB = 128
 
 
 @dataclass(frozen=True)
-class Subset:
-    """A layer of the rows of an earlier point layer (named ``of``) where ``mask`` holds.
+class View:
+    """A layer of the rows of an earlier point layer (named ``of``) whose ``column`` equals ``value``,
+    written as an SQL view over that layer and registered as a feature layer (the GeoPackage
+    standard lets a ``gpkg_contents`` row name a view; clause 1.1.3.1.1, from memory).
 
-    The writer takes them from that layer's Arrow table batch by batch, so
-    the subset is never copied whole.
+    Nothing is copied: GDAL reads the view with the base layer's spatial index, and a
+    feature's fid in the view is its fid in the base layer (the view's ``OGC_FID``).
     """
 
     of: str
-    mask: np.ndarray
+    column: str
+    value: str
 
 
 @dataclass(frozen=True)
@@ -260,11 +264,8 @@ class Encoded:
     wkb: pa.ChunkedArray | pa.Array
 
 
-#: a layer to write: a frame, a point layer with its WKB, or a subset of an earlier layer
-Layer = pd.DataFrame | Encoded | Subset
-
-#: rows per Arrow batch of a subset layer: bounds the memory the subset takes while written
-BATCH_ROWS = 65_536
+#: a layer to write: a frame, a point layer with its WKB, or a view of an earlier point layer
+Layer = pd.DataFrame | Encoded | View
 
 
 def start_geopackage(path: Path, layers: Mapping[str, Layer]) -> forked.Forked:
@@ -295,22 +296,24 @@ MISSING, POINT = -1, 0
 
 
 def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
-    sources = {layer.of for layer in layers.values() if isinstance(layer, Subset)}
-    tables: dict[str, tuple[pa.Table, str, str | None]] = {}  # the Arrow tables that subsets are taken from
+    points: dict[str, Encoded | gpd.GeoDataFrame] = {}  # the point layers written, that views may select from
     seconds = {}
     for name, layer in layers.items():
         t0 = time.perf_counter()
-        if isinstance(layer, Subset):
-            table, geometry, crs = tables[layer.of]
-            _write_points(path, name, _filtered(table, layer.mask), geometry, crs)
-        elif isinstance(layer, Encoded) or name in sources:
-            # a point layer (the customers): converted once, kept for its subsets
-            tables[name] = _point_table(layer)
-            _write_points(path, name, *tables[name])
+        if isinstance(layer, View):
+            base = points[layer.of]
+            frame = base.frame if isinstance(base, Encoded) else base
+            match = (frame[layer.column] == layer.value).to_numpy(dtype=bool)
+            if match.any():
+                _create_view(path, name, layer, frame.geometry.to_numpy()[match])
+            else:
+                # GDAL finds a view's fid column from its first row: an empty view would list OGC_FID as a field
+                _write_point_layer(path, name, _no_rows(base))
+        elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
+            _write_point_layer(path, name, layer)
+            points[name] = layer
         elif isinstance(layer, gpd.GeoDataFrame):
-            # an empty or all-null layer would otherwise be typed "Unknown"
             pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True,
-                                    geometry_type="Point" if _all_points(layer) else None,
                                     layer_options={"SPATIAL_INDEX": "YES"})
         else:
             pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
@@ -318,16 +321,60 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     return seconds
 
 
-def _point_table(layer: gpd.GeoDataFrame | Encoded) -> tuple[pa.Table, str, str | None]:
-    """A point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
+def _write_point_layer(path: Path, name: str, layer: Encoded | gpd.GeoDataFrame) -> None:
+    """A point layer, typed "Point" even when empty or all null (else GDAL would type it "Unknown"),
+    with its spatial index."""
     if isinstance(layer, Encoded):
-        frame = layer.frame
-        geometry = frame.geometry.name
-        attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
-        table = attributes.add_column(frame.columns.get_loc(geometry), geometry, layer.wkb)
+        table, geometry, crs = _point_table(layer)
+        pyogrio.write_arrow(table, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
+                            crs=crs, layer_options={"SPATIAL_INDEX": "YES"})
     else:
-        frame, geometry = layer, layer.geometry.name
-        table = pa.table(frame.to_arrow(index=False, geometry_encoding="WKB"))
+        pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True, geometry_type="Point",
+                                layer_options={"SPATIAL_INDEX": "YES"})
+
+
+def _no_rows(layer: Encoded | gpd.GeoDataFrame) -> Encoded | gpd.GeoDataFrame:
+    """``layer`` without its rows: the same fields and CRS."""
+    if isinstance(layer, Encoded):
+        return Encoded(layer.frame.iloc[:0], layer.wkb.slice(0, 0))
+    return layer.iloc[:0]
+
+
+def _quoted(name: str) -> str:
+    """An SQL identifier in double quotes."""
+    return '"' + name.replace('"', '""') + '"'
+
+
+def _create_view(path: Path, name: str, view: View, geoms: np.ndarray) -> None:
+    """Create ``view`` as layer ``name`` of the GeoPackage at ``path``; ``geoms`` are the geometries
+    of the rows it selects (for the extent recorded in ``gpkg_contents``)."""
+    drawn = geoms[~(shapely.is_missing(geoms) | shapely.is_empty(geoms))]
+    extent = shapely.total_bounds(drawn).tolist() if drawn.size else [None] * 4
+    con = sqlite3.connect(path)
+    try:
+        with con:  # one transaction: the view is registered whole or not at all
+            columns = con.execute(f"PRAGMA table_info({_quoted(view.of)})").fetchall()
+            fid = next(c[1] for c in columns if c[5])  # the primary key (GDAL's fid column)
+            selected = ", ".join([f"{_quoted(fid)} AS OGC_FID", *(_quoted(c[1]) for c in columns if not c[5])])
+            value = "'" + view.value.replace("'", "''") + "'"
+            con.execute(f"CREATE VIEW {_quoted(name)} AS SELECT {selected} FROM {_quoted(view.of)} "
+                        f"WHERE {_quoted(view.column)} = {value}")
+            con.execute("INSERT INTO gpkg_contents (table_name, data_type, identifier, min_x, min_y, max_x, max_y, srs_id) "
+                        "SELECT ?, 'features', ?, ?, ?, ?, ?, srs_id FROM gpkg_contents WHERE table_name = ?",
+                        (name, name, *extent, view.of))
+            con.execute("INSERT INTO gpkg_geometry_columns (table_name, column_name, geometry_type_name, srs_id, z, m) "
+                        "SELECT ?, column_name, geometry_type_name, srs_id, z, m FROM gpkg_geometry_columns "
+                        "WHERE table_name = ?", (name, view.of))
+    finally:
+        con.close()
+
+
+def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
+    """An encoded point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
+    frame = layer.frame
+    geometry = frame.geometry.name
+    attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
+    table = attributes.add_column(frame.columns.get_loc(geometry), geometry, layer.wkb)
     return table, geometry, _crs_text(frame.crs)
 
 
@@ -342,24 +389,6 @@ def _crs_text(crs: Any) -> str | None:
         return None
     epsg = crs.to_epsg()
     return f"EPSG:{epsg}" if epsg else crs.to_wkt("WKT1_GDAL")
-
-
-def _filtered(table: pa.Table, mask: np.ndarray) -> pa.RecordBatchReader:
-    """The rows of ``table`` where ``mask`` holds, as a stream of batches of at most BATCH_ROWS rows."""
-    def batches() -> Iterator[pa.RecordBatch]:
-        for start in range(0, table.num_rows, BATCH_ROWS):
-            part = table.slice(start, BATCH_ROWS).filter(pa.array(mask[start:start + BATCH_ROWS]))
-            yield from part.to_batches()
-
-    return pa.RecordBatchReader.from_batches(table.schema, batches())
-
-
-def _write_points(path: Path, name: str, data: pa.Table | pa.RecordBatchReader, geometry: str,
-                  crs: str | None) -> None:
-    # as pyogrio.write_dataframe(use_arrow=True) writes a point layer: typed "Point" even when
-    # empty or all null, with its spatial index
-    pyogrio.write_arrow(data, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
-                        crs=crs, layer_options={"SPATIAL_INDEX": "YES"})
 
 
 def write_csv(path: Path, df: pd.DataFrame) -> None:
