@@ -76,7 +76,7 @@ def test_every_geometry_layer_has_its_spatial_index(world):
             if layer in views:
                 # a flagged layer is a view of customers: GDAL filters it by the customers' index,
                 # which holds every row it shows
-                (outside,) = db.execute(f'SELECT count(*) FROM "{layer}" WHERE OGC_FID NOT IN '
+                (outside,) = db.execute(f'SELECT count(*) FROM "{layer}" WHERE fid NOT IN '
                                         f'(SELECT id FROM "rtree_customers_{column}")').fetchone()
                 assert outside == 0, layer
                 continue

@@ -30,15 +30,19 @@ def frame() -> gpd.GeoDataFrame:
 
 
 def test_views_read_as_the_filtered_frames(tmp_path, frame):
+    # a value with a quote must not break the view's SQL; a field named like the fid GDAL gives
+    # a view elsewhere must keep its name
+    frame.loc[3, "status"] = "it's"
+    frame.insert(4, "ogc_fid", np.arange(len(frame)) * 10)
     status = frame["status"].to_numpy(dtype=object)
-    # a value with a quote selects nothing, and must not break the view's SQL
     layers = {"customers": frame, "high": write_io.View("customers", "status", "high"),
-              "none": write_io.View("customers", "status", "it's")}
+              "quoted": write_io.View("customers", "status", "it's"),
+              "none": write_io.View("customers", "status", "nothing")}
     out = tmp_path / "out.gpkg"
     write_io._write_layers(out, layers)
     fids = pyogrio.read_dataframe(out, layer="customers", fid_as_index=True).index.to_numpy()
     for name, sel in (("customers", np.ones(len(frame), bool)), ("high", status == "high"),
-                      ("none", np.zeros(len(frame), bool))):
+                      ("quoted", status == "it's"), ("none", np.zeros(len(frame), bool))):
         got = pyogrio.read_dataframe(out, layer=name, fid_as_index=True)
         # values compared; read back without Arrow the text columns are object, not "str"
         pd.testing.assert_frame_equal(got.reset_index(drop=True), frame[sel].reset_index(drop=True), check_dtype=False)
@@ -46,8 +50,8 @@ def test_views_read_as_the_filtered_frames(tmp_path, frame):
         info = pyogrio.read_info(out, layer=name)
         assert info["geometry_type"] == "Point"  # an empty layer too
         assert info["crs"] == "EPSG:32631"
-        assert list(info["fields"]) == ["account", "zone", "psi_max", "status"]
-        assert list(info["dtypes"]) == ["object", "object", "float64", "object"]
+        assert list(info["fields"]) == ["account", "zone", "psi_max", "status", "ogc_fid"]
+        assert list(info["dtypes"]) == ["object", "object", "float64", "object", "int64"]
     with sqlite3.connect(out) as db:
         extent = dict((r[0], r[1:]) for r in db.execute("SELECT table_name, min_x, min_y, max_x, max_y FROM gpkg_contents"))
     high = frame.geometry[status == "high"]
@@ -64,6 +68,8 @@ def test_a_view_is_filtered_by_its_base_layers_spatial_index(tmp_path, frame):
     inside = (frame["status"] == "high").to_numpy() & (x >= 200) & (x <= 800) & (y >= 200) & (y <= 800)
     assert 0 < inside.sum() < (frame["status"] == "high").sum()  # the box selects some of them, not all
     assert sorted(got["account"]) == sorted(frame.loc[inside, "account"])
+    # GDAL says it has an index to filter the view by (the customers'), as it does for the table
+    assert pyogrio.read_info(out, layer="high")["capabilities"]["fast_spatial_filter"]
 
 
 def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):

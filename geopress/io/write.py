@@ -246,7 +246,7 @@ class View:
     standard lets a ``gpkg_contents`` row name a view; clause 1.1.3.1.1, from memory).
 
     Nothing is copied: GDAL reads the view with the base layer's spatial index, and a
-    feature's fid in the view is its fid in the base layer (the view's ``OGC_FID``).
+    feature's fid in the view is its fid in the base layer.
     """
 
     of: str
@@ -307,7 +307,7 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
             if match.any():
                 _create_view(path, name, layer, frame.geometry.to_numpy()[match])
             else:
-                # GDAL finds a view's fid column from its first row: an empty view would list OGC_FID as a field
+                # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
                 _write_point_layer(path, name, _no_rows(base))
         elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
             _write_point_layer(path, name, layer)
@@ -353,9 +353,10 @@ def _create_view(path: Path, name: str, view: View, geoms: np.ndarray) -> None:
     con = sqlite3.connect(path)
     try:
         with con:  # one transaction: the view is registered whole or not at all
+            # every column as it is, the fid (the primary key) too: GDAL then takes it as the view's
+            # fid and filters the view by the base layer's spatial index
             columns = con.execute(f"PRAGMA table_info({_quoted(view.of)})").fetchall()
-            fid = next(c[1] for c in columns if c[5])  # the primary key (GDAL's fid column)
-            selected = ", ".join([f"{_quoted(fid)} AS OGC_FID", *(_quoted(c[1]) for c in columns if not c[5])])
+            selected = ", ".join(_quoted(c[1]) for c in columns)
             value = "'" + view.value.replace("'", "''") + "'"
             con.execute(f"CREATE VIEW {_quoted(name)} AS SELECT {selected} FROM {_quoted(view.of)} "
                         f"WHERE {_quoted(view.column)} = {value}")
