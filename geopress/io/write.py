@@ -243,7 +243,7 @@ GPKG_CACHE_MB = 128
 class View:
     """A layer of the rows of an earlier point layer (named ``of``) whose ``column`` equals ``value``,
     written as an SQL view over that layer and registered as a feature layer (the GeoPackage
-    standard lets a ``gpkg_contents`` row name a view; clause 1.1.3.1.1, from memory).
+    standard lets a ``gpkg_contents`` row name a table or a view; from memory).
 
     Nothing is copied: GDAL reads the view with the base layer's spatial index, and a
     feature's fid in the view is its fid in the base layer.
