@@ -21,6 +21,9 @@ from dataclasses import asdict, dataclass, field, fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any, Mapping
 
+from pyproj import CRS
+from pyproj.exceptions import CRSError
+
 from .classify import RESULT_COLUMNS, Criteria
 from .errors import ConfigError
 from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
@@ -46,8 +49,12 @@ class TerrainConfig:
     ``vertical_units`` is "m", "ft" or "us_ft", or None to take the unit the
     raster states. ``datum_offset_ft`` is added to every DEM elevation after
     the unit conversion, to put the DEM on the vertical datum of the HGLs
-    (e.g. the local NGVD29 - NAVD88 difference). ``memory_mb`` bounds how
-    much raster is read at once.
+    (e.g. the local NGVD29 - NAVD88 difference): a positive offset raises the
+    ground, so pressures fall. ``memory_mb`` bounds how much raster is read at
+    once. ``vertical_datum`` (with ``ZonesConfig.vertical_datum``) names the
+    DEM's vertical datum as a vertical CRS ("EPSG:5703"), so that the offset
+    is computed per location (:mod:`geopress.io.datum`), with the offset grid
+    ``datum_grid`` when PROJ does not have it.
     """
 
     paths: tuple[Path, ...]
@@ -55,16 +62,24 @@ class TerrainConfig:
     method: str = "bilinear"
     memory_mb: float = 1024.0
     datum_offset_ft: float = 0.0
+    vertical_datum: str | None = None
+    datum_grid: Path | None = None
 
 
 @dataclass(frozen=True)
 class ZonesConfig:
-    """Pressure-zone polygons and one HGL source per zone id, in priority order."""
+    """Pressure-zone polygons and one HGL source per zone id, in priority order.
+
+    ``vertical_datum``: the vertical CRS the HGLs (tank levels, valve elevations,
+    discharge HGLs) are on, or None (then the DEM's, shifted by
+    ``TerrainConfig.datum_offset_ft``).
+    """
 
     path: Path
     id_field: str
     sources: tuple[Source, ...]
     layer: str | None = None
+    vertical_datum: str | None = None
 
     def source_for(self, zone: str) -> Source | None:
         """The source of ``zone``, or None."""
@@ -103,8 +118,9 @@ class Config:
     overrides: tuple[tuple[str, Any], ...] = field(default=(), compare=False)
 
     def input_paths(self) -> list[Path]:
-        """Every input file the run reads."""
-        return [self.customers.path, *self.terrain.paths, self.zones.path]
+        """Every input file the run reads, with the files a Shapefile's attributes, index and CRS are in."""
+        grid = [self.terrain.datum_grid] if self.terrain.datum_grid else []
+        return [*with_sidecars(self.customers.path), *self.terrain.paths, *grid, *with_sidecars(self.zones.path)]
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain TOML-like data (paths as strings)."""
@@ -122,6 +138,26 @@ class Config:
         }
 
 
+#: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
+SHAPEFILE_PARTS = (".shx", ".dbf", ".prj", ".cpg", ".qix", ".sbn", ".sbx")
+
+
+def with_sidecars(path: Path) -> list[Path]:
+    """``path`` and, for a Shapefile, every other file of it that exists (any case of the suffix)."""
+    if path.suffix.lower() != ".shp":
+        return [path]
+    folder = path.parent
+    names = {p.name.lower(): p for p in folder.glob(f"{glob.escape(path.stem)}.*")} if folder.is_dir() else {}
+    parts = [names[f"{path.stem}{ext}".lower()] for ext in SHAPEFILE_PARTS if f"{path.stem}{ext}".lower() in names]
+    return [path, *parts]
+
+
+#: short names for the vertical datums utilities meet most, as PROJ's database codes them
+#: (EPSG:5703 "NAVD88 height"; EPSG:7968 "NGVD29 height (m)"). Any other vertical CRS is
+#: given by its code, name or WKT.
+DATUM_NAMES: dict[str, str] = {"NAVD88": "EPSG:5703", "NGVD29": "EPSG:7968"}
+
+
 def _plain(obj: Any) -> Any:
     if is_dataclass(obj):
         return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
@@ -136,11 +172,14 @@ def _plain(obj: Any) -> Any:
 # loading
 
 
-def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None) -> Config:
+def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None,
+                origins: Mapping[str, str] | None = None) -> Config:
     """Read and validate a config file.
 
     ``overrides`` maps dotted keys to values applied before validation, e.g.
-    ``{"criteria.max_static_psi": 90}``.
+    ``{"criteria.max_static_psi": 90}``. An error in an overridden value names
+    where it came from, not a line of the file: ``origins`` maps a key to that
+    (e.g. ``"--out-dir"``), by default ``--set KEY``.
     """
     path = Path(path)
     try:
@@ -153,7 +192,8 @@ def load_config(path: str | Path, overrides: Mapping[str, Any] | None = None) ->
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"TOML syntax error: {exc}; fix the file", path=path) from exc
-    return config_from_dict(data, base_dir=path.resolve().parent, source_path=path, text=text, overrides=overrides)
+    return config_from_dict(data, base_dir=path.resolve().parent, source_path=path, text=text, overrides=overrides,
+                            origins=origins)
 
 
 def config_from_dict(
@@ -163,20 +203,25 @@ def config_from_dict(
     source_path: str | Path | None = None,
     text: str | None = None,
     overrides: Mapping[str, Any] | None = None,
+    origins: Mapping[str, str] | None = None,
 ) -> Config:
-    """Validate already-parsed TOML data. ``text``, when given, lets errors name lines."""
+    """Validate already-parsed TOML data. ``text``, when given, lets errors name lines;
+    ``overrides`` and ``origins`` as in :func:`load_config`."""
     reader = _Reader(Path(base_dir), None if source_path is None else Path(source_path), text)
     data = dict(data)
     if overrides:
-        data = apply_overrides(data, overrides, reader)
+        data = apply_overrides(data, overrides, reader, origins)
     cfg = reader.build(data)
     return replace(cfg, overrides=tuple((str(k), v) for k, v in (overrides or {}).items()))
 
 
-def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reader: "_Reader | None" = None) -> dict[str, Any]:
+def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reader: "_Reader | None" = None,
+                    origins: Mapping[str, str] | None = None) -> dict[str, Any]:
     """Return a copy of ``data`` with dotted-key overrides applied.
 
     ``zones.source.NAME.key`` addresses the source whose ``zone`` is NAME.
+    With a ``reader``, each overridden key is recorded with its origin
+    (``origins[key]``, else ``--set KEY``), so errors about it name that.
     """
     import copy
 
@@ -191,6 +236,8 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
             if not match:
                 raise ConfigError(f"override '{dotted}': no [[zones.source]] with zone = '{parts[2]}'", key=dotted)
             match[0][parts[3]] = value
+            if reader is not None:
+                reader.overridden[f"zones.source[{sources.index(match[0])}].{parts[3]}"] = _origin(dotted, origins)
             continue
         node = out
         for p in parts[:-1]:
@@ -199,7 +246,13 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
                 raise ConfigError(f"override '{dotted}': '{p}' is not a table", key=dotted)
             node = nxt
         node[parts[-1]] = value
+        if reader is not None:
+            reader.overridden[dotted] = _origin(dotted, origins)
     return out
+
+
+def _origin(key: str, origins: Mapping[str, str] | None) -> str:
+    return (origins or {}).get(key, f"--set {key}")
 
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
@@ -223,6 +276,8 @@ class _Reader:
     """Validates sections key by key; knows the file and text to name lines."""
 
     def __init__(self, base_dir: Path, source_path: Path | None, text: str | None):
+        #: keys whose value came from an override, with where it came from ("--set criteria.x")
+        self.overridden: dict[str, str] = {}
         self.base_dir = base_dir
         self.source_path = source_path
         self.lines = text.splitlines() if text is not None else None
@@ -260,8 +315,11 @@ class _Reader:
         return start + 1
 
     def error(self, key: str, message: str) -> ConfigError:
-        line = self.line_of(key)
-        where = f" (line {line})" if line else ""
+        if key in self.overridden:
+            where = f" (from {self.overridden[key]})"
+        else:
+            line = self.line_of(key)
+            where = f" (line {line})" if line else ""
         return ConfigError(f"{key}{where}: {message}", path=self.source_path, key=key)
 
     # -- typed getters ---------------------------------------------------
@@ -277,7 +335,7 @@ class _Reader:
 
     def get(self, table: Mapping[str, Any], section: str, name: str, kind: str, default: Any = ..., ) -> Any:
         key = f"{section}.{name}"
-        if name not in table:
+        if table.get(name) is None:  # TOML has no null: None comes only from Config.to_dict, for a key not set
             if default is ...:
                 raise self.error(key, "missing required key; add it")
             return default
@@ -334,7 +392,21 @@ class _Reader:
                 raise self.error(out_key, f"is the same file as {inputs[out_path]}; write the output elsewhere")
         if cfg.output.mailing_dir in inputs:
             raise self.error("output.mailing_dir", f"is the same path as {inputs[cfg.output.mailing_dir]}")
+        self.datums_fit(cfg.terrain, cfg.zones)
         return cfg
+
+    def datums_fit(self, terrain: TerrainConfig, zones: ZonesConfig) -> None:
+        """The datum keys go together: both vertical datums or neither; a grid only with them; no constant offset too."""
+        if (terrain.vertical_datum is None) != (zones.vertical_datum is None):
+            given, missing = (("terrain", "zones") if zones.vertical_datum is None else ("zones", "terrain"))
+            raise self.error(f"{given}.vertical_datum", f"is set but {missing}.vertical_datum is not; name the datum of "
+                                                        "both the DEM and the HGLs, or neither")
+        if terrain.vertical_datum is None and terrain.datum_grid is not None:
+            raise self.error("terrain.datum_grid", "needs terrain.vertical_datum and zones.vertical_datum, which say "
+                                                   "which way the grid's offsets go; add them")
+        if terrain.vertical_datum is not None and terrain.datum_offset_ft != 0:
+            raise self.error("terrain.datum_offset_ft", "cannot be used with terrain.vertical_datum and "
+                                                        "zones.vertical_datum, which compute the offset; keep one way")
 
     def customers(self, t: dict[str, Any]) -> CustomersConfig:
         s = "customers"
@@ -356,7 +428,8 @@ class _Reader:
 
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
         s = "terrain"
-        self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb", "datum_offset_ft"})
+        self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb", "datum_offset_ft", "vertical_datum",
+                               "datum_grid"})
         raw = self.get(t, s, "paths", "str_list")
         if not raw:
             raise self.error("terrain.paths", "must list at least one raster")
@@ -380,12 +453,32 @@ class _Reader:
         if memory_mb <= 0:
             raise self.error("terrain.memory_mb", "must be positive")
         offset = self.get(t, s, "datum_offset_ft", "number", 0.0)
+        datum = self.vertical_datum(t, s)
+        grid = self.get(t, s, "datum_grid", "str", None)
         return TerrainConfig(paths=tuple(dict.fromkeys(paths)), vertical_units=units, method=method, memory_mb=memory_mb,
-                             datum_offset_ft=offset)
+                             datum_offset_ft=offset, vertical_datum=datum,
+                             datum_grid=None if grid is None else self.path(grid, "terrain.datum_grid"))
+
+    def vertical_datum(self, t: dict[str, Any], section: str) -> str | None:
+        """``section.vertical_datum`` as a vertical CRS ("EPSG:5703", or WKT when it has no code), or None."""
+        key = f"{section}.vertical_datum"
+        text = self.get(t, section, "vertical_datum", "str", None)
+        if text is None:
+            return None
+        try:
+            crs = CRS.from_user_input(DATUM_NAMES.get(text.strip().upper(), text))
+        except CRSError:
+            raise self.error(key, f"{text!r} is not a datum PROJ knows; give the EPSG code of a vertical CRS "
+                                  f"(e.g. EPSG:5703) or one of {', '.join(DATUM_NAMES)}") from None
+        if not crs.is_vertical:
+            raise self.error(key, f"{text!r} is {crs.name}, not a vertical datum; give a vertical CRS such as "
+                                  "EPSG:5703 (NAVD88 height)")
+        code = crs.to_authority()
+        return f"{code[0]}:{code[1]}" if code else crs.to_wkt()
 
     def zones(self, t: dict[str, Any]) -> ZonesConfig:
         s = "zones"
-        self.no_unknown(t, s, {"path", "layer", "id_field", "source"})
+        self.no_unknown(t, s, {"path", "layer", "id_field", "source", "vertical_datum"})
         raw = t.get("source")
         if raw is None:
             raise self.error("zones.source", "missing; add one [[zones.source]] table per zone")
@@ -407,6 +500,7 @@ class _Reader:
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             sources=tuple(sources),
+            vertical_datum=self.vertical_datum(t, s),
         )
 
     _KIND_KEYS = {

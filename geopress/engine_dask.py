@@ -28,7 +28,8 @@ from .config import TerrainConfig
 from .errors import ConfigError
 from .io import raster as raster_io
 from .io import vector as vector_io
-from .zones import assign
+from .io.datum import DatumShift
+from .zones import assign_xy
 
 log = logging.getLogger(__name__)
 
@@ -41,16 +42,18 @@ class Joined:
     terrain: raster_io.TerrainResult
 
 
-def _partition(part: gpd.GeoDataFrame, polygons: np.ndarray, priority: np.ndarray, terrain: TerrainConfig,
-               crs_wkt: str) -> dict[str, Any]:
+def _partition(part: gpd.GeoDataFrame, polygons: np.ndarray, zones_crs_wkt: str, priority: np.ndarray,
+               terrain: TerrainConfig, shift: DatumShift, crs_wkt: str) -> dict[str, Any]:
     """Zone index and ground of one partition's customers (runs on a worker)."""
     pts = part.geometry.to_numpy()
     x, y = shapely.get_x(pts), shapely.get_y(pts)
-    zi = assign(pts, polygons, priority)
-    # implausible elevations come back in ranges and are warned about once, by the driver
-    result = raster_io.sample_terrain(terrain, x, y, CRS.from_wkt(crs_wkt), warn=False)
+    crs = CRS.from_wkt(crs_wkt)
+    zi = assign_xy(x, y, crs, polygons, CRS.from_wkt(zones_crs_wkt), priority, points=pts)
+    # the guards on the sampled ground run once, in the driver, on the merged ranges
+    result = raster_io.sample_terrain(terrain, x, y, crs, shift)
     return {"rows": part["_row"].to_numpy(), "zone_index": zi, "ground_ft": result.ground_ft,
-            "rasters": result.rasters, "inside_any": result.inside_any, "ranges": result.ranges}
+            "rasters": result.rasters, "inside_any": result.inside_any, "ranges": result.ranges,
+            "outside_datum_grid": result.outside_datum_grid}
 
 
 @contextmanager
@@ -79,11 +82,12 @@ def _merge(parts: list[dict[str, Any]], n: int, template: raster_io.TerrainResul
     ground = np.full(n, np.nan)
     reports = {r.path: r for r in template.rasters}
     ranges: dict[str, tuple[str, float, float]] = {}
-    inside_any = 0
+    inside_any = outside_grid = 0
     for p in parts:
         zone_index[p["rows"]] = p["zone_index"]
         ground[p["rows"]] = p["ground_ft"]
         inside_any += p["inside_any"]
+        outside_grid += p["outside_datum_grid"]
         for r in p["rasters"]:
             rep = reports[r.path]
             rep.customers_sampled += r.customers_sampled
@@ -93,13 +97,14 @@ def _merge(parts: list[dict[str, Any]], n: int, template: raster_io.TerrainResul
             _, lo0, hi0 = ranges.get(label, (unit, np.inf, -np.inf))
             ranges[label] = (unit, min(lo0, lo), max(hi0, hi))
     terrain = raster_io.TerrainResult(ground_ft=ground, rasters=list(reports.values()), inside_any=inside_any,
-                                      ranges=ranges)
+                                      ranges=ranges, outside_datum_grid=outside_grid)
     return Joined(zone_index=zone_index, terrain=terrain)
 
 
-def assign_and_sample(cust: vector_io.Customers, zones: vector_io.Zones, terrain: TerrainConfig, *,
+def assign_and_sample(cust: vector_io.Customers, zones: vector_io.Zones, terrain: TerrainConfig, shift: DatumShift, *,
                       scheduler: Any = None, partitions: int | None = None) -> Joined:
-    """Zone index and ground elevation of every customer, computed per spatial partition on dask.
+    """Zone index and ground elevation (ft, on the HGLs' datum by ``shift``) of every customer,
+    computed per spatial partition on dask.
 
     ``scheduler``: a dask.distributed scheduler address (``tcp://host:8786``),
     a cluster or Client object, or None for a LocalCluster. ``partitions``:
@@ -111,9 +116,8 @@ def assign_and_sample(cust: vector_io.Customers, zones: vector_io.Zones, terrain
     n = len(cust.frame)
     rows = np.flatnonzero(cust.has_geometry)
     frame = gpd.GeoDataFrame({"_row": rows}, geometry=cust.frame.geometry.to_numpy()[rows], crs=cust.crs)
-    template = raster_io.TerrainResult(ground_ft=np.empty(0), rasters=[
-        raster_io.RasterReport(path=str(t.path), crs=t.crs_name, vertical_unit=t.unit, shape=(t.height, t.width))
-        for t in raster_io.read_tiles(terrain.paths, terrain.vertical_units)])
+    template = raster_io.TerrainResult(ground_ft=np.empty(0),
+                                       rasters=raster_io.describe(terrain.paths, terrain.vertical_units))
     if rows.size == 0:
         return _merge([], n, template)
     import dask
@@ -125,10 +129,8 @@ def assign_and_sample(cust: vector_io.Customers, zones: vector_io.Zones, terrain
         if nparts > 1:
             ddf = ddf.spatial_shuffle(by="hilbert", npartitions=nparts)
         polygons, priority = client.scatter([zones.polygons, zones.priority], broadcast=True)
-        tasks = [dask.delayed(_partition)(part, polygons, priority, terrain, cust.crs.to_wkt())
+        tasks = [dask.delayed(_partition)(part, polygons, zones.crs.to_wkt(), priority, terrain, shift, cust.crs.to_wkt())
                  for part in ddf.to_delayed()]
         log.info("dask: %d spatial partitions on %d worker threads", len(tasks), threads)
         parts = client.gather(client.compute(tasks))
-    joined = _merge(parts, n, template)
-    raster_io.warn_implausible(joined.terrain, stacklevel=3)
-    return joined
+    return _merge(parts, n, template)

@@ -29,19 +29,21 @@ import rasterio
 
 from . import classify as cls
 from . import forked
+from . import guards
 from . import planning
 from ._compat import report_missing
 from . import nightly
 from ._version import __version__
 from .config import Config, load_config
-from .errors import ConfigError, InputError, OutputError, ZoneOverlapWarning
+from .errors import ConfigError, GeopressWarning, InputError, OutputError, TerrainWarning, ZoneOverlapWarning
+from .io import datum as datum_io
 from .io import raster as raster_io
 from .io import vector as vector_io
 from .io import write as write_io
 from .pressure import customer_pressures
 from .tables import mailing_lists, zone_summary
 from .units import customers_in_units, mailing_columns_in_units, units_for
-from .zones import assign, overlaps
+from .zones import assign_xy, overlaps
 
 log = logging.getLogger(__name__)
 
@@ -115,6 +117,28 @@ def _cycle_collection_paused() -> Iterator[None]:
             gc.enable()
 
 
+@contextmanager
+def _recorded_warnings(into: list[str]) -> Iterator[None]:
+    """Append to ``into`` the message of every GeopressWarning shown while the block runs.
+
+    The warnings are shown as before (the caller's ``warnings.showwarning``
+    still gets them); a warning the filters turn into an error or ignore is
+    not recorded.
+    """
+    shown = warnings.showwarning
+
+    def record(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, GeopressWarning):
+            into.append(str(message))
+        shown(message, category, filename, lineno, file, line)
+
+    warnings.showwarning = record
+    try:
+        yield
+    finally:
+        warnings.showwarning = shown
+
+
 def _as_config(config: Config | str | os.PathLike) -> Config:
     return config if isinstance(config, Config) else load_config(config)
 
@@ -179,19 +203,92 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
     cfg = config
     with clock.step("read zones"):
         crs = vector_io.customers_crs(cfg.customers)
-        zones = vector_io.read_zones(cfg.zones, target_crs=crs)
+        zones = vector_io.read_zones(cfg.zones)
         overlap_info = _warn_overlaps(zones)
+        shift = datum_shift(cfg, crs)
     # the service band needs only the zones and the DEM: a child process computes it meanwhile
-    band = forked.start(_timed, planning.service_bands, cfg, zones, crs, what="service band")
+    band = forked.start(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
     try:
-        return _compute(cfg, clock, zones, overlap_info, band, engine=engine, scheduler=scheduler,
+        return _compute(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
                         partitions=partitions, on_customers=on_customers)
     finally:
         band.cancel()  # reaped already unless this failed
 
 
+def datum_shift(cfg: Config, crs: pyproj.CRS) -> datum_io.DatumShift:
+    """The vertical datum offset the config asks for (see :mod:`geopress.io.datum`)."""
+    t = cfg.terrain
+    return datum_io.datum_shift(offset_ft=t.datum_offset_ft, dem_datum=t.vertical_datum,
+                                hgl_datum=cfg.zones.vertical_datum, grid=t.datum_grid, customers_crs=crs)
+
+
+def _zone_codes(zi: np.ndarray, zones: vector_io.Zones, names: list[str]) -> np.ndarray:
+    """Each customer's index into ``names`` (the zones in source order) from its polygon index ``zi`` (-1: none)."""
+    code_of_polygon = np.array([names.index(z) for z in zones.zone_ids] or [0], dtype=np.intp)
+    return np.where(zi >= 0, code_of_polygon[np.maximum(zi, 0)], -1)
+
+
+def apply_guards(cfg: Config, terrain: raster_io.TerrainResult, zone_code: np.ndarray, located: int,
+                 crs: pyproj.CRS, zones: vector_io.Zones) -> list[guards.ZoneGround]:
+    """The guards of :mod:`geopress.guards` on a run's (or a check's) sampled ground and zone join.
+
+    Raises InputError for too little coverage or ground off the Earth; warns
+    (TerrainWarning) for a zone whose ground looks wrong against its HGL.
+    Returns the per-zone ground table.
+    """
+    names = [s.zone for s in cfg.zones.sources]
+    rasters = "; ".join(f"{r.path} in {r.crs}" for r in terrain.rasters)
+    if guards.too_little(terrain.inside_any, located):
+        raise InputError(f"only {terrain.inside_any} of {located} located customers lie on the terrain "
+                         f"({rasters}; customers in {crs.to_string()}); check the CRS of each", path=cfg.terrain.paths[0],
+                         key="terrain.paths")
+    zoned = int(np.count_nonzero(zone_code >= 0))
+    if guards.too_little(zoned, located):
+        raise InputError(f"only {zoned} of {located} located customers lie in a zone (zones in {zones.crs.to_string()}, "
+                         f"customers in {crs.to_string()}); check the CRS of each", path=cfg.zones.path, key="zones.path")
+    for label, (unit, lo, hi) in terrain.ranges.items():
+        if np.isfinite(lo) and guards.outside_earth(lo, hi):
+            raise InputError(f"sampled ground {lo:,.0f} to {hi:,.0f} ft is not ground on Earth (below "
+                             f"{guards.EARTH_LOW_FT:,.0f} or above {guards.EARTH_HIGH_FT:,.0f} ft) for vertical unit "
+                             f"\"{unit}\"; check terrain.vertical_units and the raster's nodata value",
+                             path=label, key="terrain.vertical_units")
+    if terrain.outside_datum_grid:
+        warnings.warn(f"{cfg.terrain.datum_grid}: {terrain.outside_datum_grid} customers on the terrain lie outside the "
+                      "datum grid, so they have no ground on the HGLs' datum and get no_terrain; check "
+                      "terrain.datum_grid", TerrainWarning, stacklevel=3)
+    hgl = {s.zone: s.hgl_range(cfg.criteria.psi_per_ft) for s in cfg.zones.sources}
+    table = guards.zone_grounds(terrain.ground_ft, zone_code, names, hgl)
+    unit = next(iter(terrain.ranges.values()))[0] if terrain.ranges else "ft"
+    for zg in table:
+        why = zg.suspicion()
+        if why:
+            warnings.warn(_suspicion_text(cfg, zg, why, unit), TerrainWarning, stacklevel=3)
+    return table
+
+
+def _psi_text(psi_per_ft: float, zg: guards.ZoneGround, ground_ft: float) -> str:
+    lo, hi = psi_per_ft * (zg.hgl_low_ft - ground_ft), psi_per_ft * (zg.hgl_high_ft - ground_ft)
+    return f"{hi:,.0f} psi" if lo == hi else f"{lo:,.0f} to {hi:,.0f} psi"
+
+
+def _suspicion_text(cfg: Config, zg: guards.ZoneGround, why: str, unit: str) -> str:
+    """The warning for a zone whose median ground looks wrong against its HGL, with the other units' pressures."""
+    median = zg.median_ft
+    if why == "at or above the low HGL":
+        where = f"is at or above the zone's low HGL of {zg.hgl_low_ft:,.0f} ft"
+    else:
+        where = (f"lies {zg.hgl_high_ft - median:,.0f} ft below the zone's high HGL of {zg.hgl_high_ft:,.0f} ft "
+                 f"(more than {guards.MAX_DEPTH_FT:,.0f} ft)")
+    others = guards.in_other_units(median, unit, cfg.terrain.datum_offset_ft)
+    alt = ", ".join(f"as \"{u}\" it would be {g:,.0f} ft ({_psi_text(cfg.criteria.psi_per_ft, zg, g)})"
+                    for u, g in others.items())
+    return (f"zone '{zg.zone}': its median customer's ground, {median:,.0f} ft "
+            f"({_psi_text(cfg.criteria.psi_per_ft, zg, median)}), {where}; check terrain.vertical_units (now \"{unit}\") "
+            f"and terrain.datum_offset_ft: read {alt}")
+
+
 def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
-             band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
+             shift: datum_io.DatumShift, band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
              on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
@@ -202,11 +299,13 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         from . import engine_dask
 
         with clock.step("assign zones and sample terrain on dask"):
-            joined = engine_dask.assign_and_sample(cust, zones, cfg.terrain, scheduler=scheduler, partitions=partitions)
+            joined = engine_dask.assign_and_sample(cust, zones, cfg.terrain, shift, scheduler=scheduler,
+                                                   partitions=partitions)
     # ---
     with clock.step("assign zones"):
         pts = cust.frame.geometry.to_numpy()
-        zi = joined.zone_index if joined else assign(pts, zones.polygons, zones.priority)
+        zi = joined.zone_index if joined else assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs,
+                                                        zones.priority, points=pts)
         zoned = zi >= 0
         zone = cls.names_at(zones.zone_ids, zi, zoned)
         hgl = {s.zone: s.hgl_range(crit.psi_per_ft) for s in cfg.zones.sources}
@@ -216,10 +315,12 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
     with clock.step("sample terrain"):
-        terrain = joined.terrain if joined else raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs)
+        terrain = joined.terrain if joined else raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs, shift)
         ground = terrain.ground_ft
-        sampled = int(np.count_nonzero(~np.isnan(ground)))
-        if sampled == 0:
+        # the guards first: too few customers on the terrain is a CRS or extent problem, said as such
+        ground_table = apply_guards(cfg, terrain, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]),
+                                    int(np.count_nonzero(cust.has_geometry)), cust.crs, zones)
+        if np.isnan(ground).all():
             paths = ", ".join(str(p) for p in cfg.terrain.paths)
             if terrain.inside_any:
                 why = f"the terrain has only nodata where the {terrain.inside_any} customers inside it are"
@@ -282,12 +383,28 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         },
         "counts": counts,
         "terrain": [vars(r) for r in terrain.rasters],
-        "zones": {"layer": zones.layer, "repaired": zones.repaired, "overlaps": overlap_info},
+        "datum": {**shift.info(), "direction": shift.direction()},
+        "ground_vs_hgl": [_ground_row(zg, crit.psi_per_ft) for zg in ground_table],
+        "zones": {"layer": zones.layer, "crs": zones.crs.to_string(), "repaired": zones.repaired,
+                  "overlaps": overlap_info},
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
     }
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
                   plan=plan)
+
+
+def _ground_row(zg: guards.ZoneGround, psi_per_ft: float) -> dict[str, Any]:
+    """A zone's ground against its HGL, as run.json and ``check`` give it (ft, psi, rounded to 0.1)."""
+    lo, hi = zg.psi_range(psi_per_ft)
+    names = ("min", "p5", "median", "p95", "max")
+    return {"zone": zg.zone, "customers": zg.customers,
+            **{f"ground_ft_{n}": _r(v) for n, v in zip(names, zg.ground_ft)},
+            "hgl_low_ft": _r(zg.hgl_low_ft), "hgl_high_ft": _r(zg.hgl_high_ft), "psi_from": _r(lo), "psi_to": _r(hi)}
+
+
+def _r(value: float) -> float | None:
+    return None if np.isnan(value) else round(float(value), 1)
 
 
 def customer_layers(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None = None) -> dict[str, write_io.Layer]:
@@ -398,7 +515,9 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     if write:
         check_writable(cfg.output.path.parent, "output.path")
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    with _cycle_collection_paused(), nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
+    shown: list[str] = []
+    with _cycle_collection_paused(), _recorded_warnings(shown), \
+            nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
             write_io.Staging(journal_for=cfg.output.path) as stage:
         inputs = nightly.snapshot(cfg.input_paths())
         gpkg: list[write_io.Started] = []
@@ -415,6 +534,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
             nightly.track(result, baseline)
         result.info["started"] = started
         result.info["engine"] = engine
+        result.info["warnings"] = shown  # the same list: warnings shown while writing are added too
         if write:
             result.outputs = write_outputs(result, clock, stage, gpkg[0])
     result.timings = clock.timings
@@ -426,7 +546,12 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
 
 @dataclass
 class CheckReport:
-    """What :func:`check` found; ``lines`` say what a run would process."""
+    """What :func:`check` found; ``lines`` say what a run would process.
+
+    ``coverage`` maps each raster path to the customers on it (and ``"any"`` to
+    those on any raster); ``ground`` is the per-zone ground against the HGL;
+    ``warnings`` the messages of the warnings shown.
+    """
 
     config: Config
     customers: int
@@ -435,33 +560,89 @@ class CheckReport:
     rasters: list[raster_io.RasterReport]
     overlaps: list[dict[str, Any]]
     lines: list[str]
+    coverage: dict[str, int] = field(default_factory=dict)
+    unzoned: int = 0
+    ground: list[guards.ZoneGround] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+def _share(part: int, whole: int) -> str:
+    return f"{100 * part / whole:.1f} %" if whole else "n/a"
 
 
 def check(config: Config | str | os.PathLike) -> CheckReport:
-    """Validate the config and every input; write nothing."""
+    """Validate the config and every input as a run would, and say how they fit together; write nothing.
+
+    Reads where the customers are (not their mail fields), samples the terrain
+    under them and joins them to the zones, then applies the run's guards
+    (:func:`apply_guards`): too little coverage or ground off the Earth raise
+    InputError, a zone whose ground looks wrong against its HGL warns.
+
+    Returns
+    -------
+    CheckReport
+        ``lines`` to print: the inputs, the share of customers on each raster and
+        in a zone, the datum handling, and per zone the ground (min, 5th
+        percentile, median, 95th percentile, max, ft) beside the HGL range and the
+        static pressure range.
+
+    Raises
+    ------
+    GeopressError
+        for a bad config or input, as :func:`run` would.
+    """
     cfg = _as_config(config)
-    check_writable(cfg.output.path.parent, "output.path")
-    check_writable(cfg.output.mailing_dir, "output.mailing_dir")
-    cust = vector_io.read_customers(cfg.customers)
-    zones = vector_io.read_zones(cfg.zones, target_crs=cust.crs)
-    ov = _warn_overlaps(zones)
-    rasters = [raster_io.describe(p, cfg.terrain.vertical_units) for p in cfg.terrain.paths]
-    zone_names = sorted(set(zones.zone_ids.tolist()))
+    shown: list[str] = []
+    with _recorded_warnings(shown):
+        check_writable(cfg.output.path.parent, "output.path")
+        check_writable(cfg.output.mailing_dir, "output.mailing_dir")
+        cust = vector_io.read_customers(cfg.customers, mail=False)
+        zones = vector_io.read_zones(cfg.zones)
+        ov = _warn_overlaps(zones)
+        shift = datum_shift(cfg, cust.crs)
+        tiles = raster_io.read_tiles(cfg.terrain.paths, cfg.terrain.vertical_units)
+        rasters = raster_io.describe(cfg.terrain.paths, cfg.terrain.vertical_units)
+        each, anywhere = raster_io.coverage(tiles, cust.x, cust.y, cust.crs)
+        terrain = raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs, shift)
+        names = [s.zone for s in cfg.zones.sources]
+        zone_code = _zone_codes(assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority,
+                                          points=cust.frame.geometry.to_numpy()), zones, names)
+        located = int(np.count_nonzero(cust.has_geometry))
+        table = apply_guards(cfg, terrain, zone_code, located, cust.crs, zones)
+    unzoned = located - int(np.count_nonzero(zone_code >= 0))
+    k = cfg.criteria.psi_per_ft
     lines = [
-        f"customers: {len(cust.frame)} from {cfg.customers.path} layer '{cust.layer}' ({cust.crs.name}); "
+        f"customers: {len(cust.frame)} from {cfg.customers.path} layer '{cust.layer}' ({cust.crs.to_string()}); "
         f"{cust.from_polygons} polygons, {cust.no_geometry} without geometry",
-        f"zones: {len(zone_names)} ({', '.join(zone_names)}) from {cfg.zones.path} layer '{zones.layer}'",
     ]
-    for s in cfg.zones.sources:
-        hi, lo = s.hgl_range(cfg.criteria.psi_per_ft)
-        lines.append(f"  {s.zone}: {s.kind}, HGL {lo:.1f} to {hi:.1f} ft")
-    for r in rasters:
-        lines.append(f"terrain: {r.path} ({r.shape[1]} x {r.shape[0]} px, {r.crs}, vertical unit {r.vertical_unit})")
+    for r, n in zip(rasters, each):
+        lines.append(f"terrain: {r.path} ({r.shape[1]} x {r.shape[0]} px, {r.crs}, vertical unit {r.vertical_unit}, "
+                     f"missing pixels by {r.missing}, scale {r.scale:g}, offset {r.offset:g}): "
+                     f"{_share(n, located)} of the located customers on it")
+    lines.append(f"terrain: {_share(anywhere, located)} of the located customers on a raster")
+    lines.append(f"datum: {shift.description}; {shift.direction()}")
+    lines.append(f"zones: {len(names)} from {cfg.zones.path} layer '{zones.layer}' ({zones.crs.to_string()}); "
+                 f"{_share(located - unzoned, located)} of the located customers in a zone, {unzoned} unzoned")
+    lines.append("per zone: ground of its customers (min, 5 %, median, 95 %, max) against its HGL, and the static "
+                 "pressure range")
+    for zg, src in zip(table, cfg.zones.sources):
+        lo_psi, hi_psi = zg.psi_range(k)
+        g = zg.ground_ft
+        ground = ("no ground sampled" if np.isnan(g[0]) else
+                  f"ground {g[0]:,.0f} to {g[4]:,.0f} ft (5 % {g[1]:,.0f}, median {g[2]:,.0f}, 95 % {g[3]:,.0f})")
+        hgl = (f"an HGL of {zg.hgl_high_ft:,.0f} ft" if zg.hgl_high_ft == zg.hgl_low_ft
+               else f"an HGL of {zg.hgl_low_ft:,.0f} to {zg.hgl_high_ft:,.0f} ft")
+        psi = "" if np.isnan(g[0]) else f": static {lo_psi:,.1f} to {hi_psi:,.1f} psi"
+        flag = f"  <- median {zg.suspicion()}" if zg.suspicion() else ""
+        lines.append(f"  {zg.zone} ({src.kind}, {zg.customers} customers): {ground} under {hgl}{psi}{flag}")
     for o in ov:
         lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
-    return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=zone_names,
-                       rasters=rasters, overlaps=ov, lines=lines)
+    coverage = {r.path: n for r, n in zip(rasters, each)}
+    coverage["any"] = anywhere
+    return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=names,
+                       rasters=rasters, overlaps=ov, lines=lines, coverage=coverage, unzoned=unzoned, ground=table,
+                       warnings=shown)
 
 
 @dataclass

@@ -27,6 +27,7 @@ from .besthgl import best_range
 from .classify import FLAGGED_LAYERS
 from .config import Config
 from .io import raster as raster_io
+from .io.datum import DatumShift
 from .io.vector import Zones
 from .pressure import M_PER_FT, PrvSource, PumpSource, TankSource
 
@@ -80,17 +81,19 @@ def _preview(win: raster_io.DemWindow) -> tuple[np.ndarray, tuple[float, float, 
     return arr, extent, band_mod.pixel_size(t) * step
 
 
-def zone_geometries(zones: Zones, order: list[str]) -> dict[str, shapely.Geometry]:
-    """Each zone's polygons merged, in ``order``."""
-    return {z: shapely.union_all(zones.polygons[zones.zone_ids == z]) for z in order if (zones.zone_ids == z).any()}
+def zone_geometries(zones: Zones, order: list[str], crs: CRS) -> dict[str, shapely.Geometry]:
+    """Each zone's polygons merged, in ``order``, in ``crs``."""
+    return {z: _to_crs(shapely.union_all(zones.polygons[zones.zone_ids == z]), zones.crs, crs)
+            for z in order if (zones.zone_ids == z).any()}
 
 
-def service_bands(cfg: Config, zones: Zones, crs: CRS) -> Plan:
-    """The serviceable band and limit lines of every zone, in ``crs`` (the customers' CRS)."""
+def service_bands(cfg: Config, zones: Zones, crs: CRS, shift: DatumShift) -> Plan:
+    """The serviceable band and limit lines of every zone, in ``crs`` (the customers' CRS), from the DEM
+    on the HGLs' datum (``shift``)."""
     crit = cfg.criteria
     footprints = [(p, *raster_io.raster_footprint(p)) for p in cfg.terrain.paths]
     band_rows, limit_rows, terrain, info = [], [], [], []
-    for zone, geom in zone_geometries(zones, [s.zone for s in cfg.zones.sources]).items():
+    for zone, geom in zone_geometries(zones, [s.zone for s in cfg.zones.sources], crs).items():
         src = cfg.zones.source_for(zone)
         high, low = src.hgl_range(crit.psi_per_ft)
         lower, upper = band_mod.limit_elevations(high, low, crit)
@@ -107,7 +110,7 @@ def service_bands(cfg: Config, zones: Zones, crs: CRS) -> Plan:
                 continue
             remaining = shapely.difference(remaining, box_here)
             piece_r = _to_crs(piece, crs, rcrs)
-            win = raster_io.read_dem_window(path, piece_r.bounds, cfg.terrain)
+            win = raster_io.read_dem_window(path, piece_r.bounds, cfg.terrain, shift)
             if win is None:
                 continue
             b = band_mod.zone_band(win.array_ft, win.transform, piece_r, high, low, crit)

@@ -54,4 +54,5 @@ def load_scenario(config_path: str | Path, assignments: Iterable[str] = (), out_
         "output.path": str(out / cfg.output.path.name),
         "output.mailing_dir": str(out / cfg.output.mailing_dir.name),
     }
-    return load_config(config_path, overrides=overrides)
+    return load_config(config_path, overrides=overrides,
+                       origins={"output.path": "--out-dir", "output.mailing_dir": "--out-dir"})

@@ -8,6 +8,10 @@ Tie rule, deterministic and independent of feature order in the layer:
    an overlap -- the zone whose source is listed first in the config's
    ``[[zones.source]]`` wins (its ``priority`` is lowest).
 
+The join is made in the zones' own CRS (:func:`assign_xy`): the customers'
+points are reprojected, never the polygons, whose straight edges would become
+chords of the true boundary in another CRS and move the tie.
+
 Pure: shapely geometry arrays in, index arrays out.
 """
 
@@ -18,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import shapely
 from numpy.typing import ArrayLike, NDArray
+from pyproj import CRS, Transformer
 
 
 def assign(points: ArrayLike, polygons: ArrayLike, priority: ArrayLike) -> NDArray[np.intp]:
@@ -53,6 +58,25 @@ def assign(points: ArrayLike, polygons: ArrayLike, priority: ArrayLike) -> NDArr
         mp, mq = mp[order], mq[order]
         first = np.r_[True, mp[1:] != mp[:-1]]
         result[mp[first]] = mq[first]
+    return result
+
+
+def assign_xy(x: ArrayLike, y: ArrayLike, crs: CRS, polygons: ArrayLike, polygons_crs: CRS,
+              priority: ArrayLike, points: ArrayLike | None = None) -> NDArray[np.intp]:
+    """:func:`assign` for map points ``x``, ``y`` in ``crs`` (NaN for none), made in ``polygons_crs``.
+
+    ``points``, the same points as shapely geometries (missing where ``x`` is NaN), are
+    used as they are when the two CRSs are one, instead of making new ones.
+    """
+    x, y = np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64)
+    if points is not None and crs.equals(polygons_crs):
+        return assign(points, polygons, priority)
+    have = np.flatnonzero(~np.isnan(x) & ~np.isnan(y))
+    px, py = x[have], y[have]
+    if not crs.equals(polygons_crs):
+        px, py = Transformer.from_crs(crs, polygons_crs, always_xy=True).transform(px, py)
+    result = np.full(x.shape, -1, dtype=np.intp)
+    result[have] = assign(shapely.points(px, py), polygons, priority)
     return result
 
 

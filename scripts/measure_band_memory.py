@@ -102,7 +102,7 @@ def measure(cfg_path: Path) -> dict:
         import json, sys
         from pathlib import Path
         from pyproj import CRS
-        from geopress import planning
+        from geopress import pipeline, planning
         from geopress.config import load_config
         from geopress.io import vector as vector_io
 
@@ -114,10 +114,10 @@ def measure(cfg_path: Path) -> dict:
 
         cfg = load_config(sys.argv[1])
         crs = CRS.from_user_input("%s")
-        zones = vector_io.read_zones(cfg.zones, target_crs=crs)
+        zones = vector_io.read_zones(cfg.zones)
         Path("/proc/self/clear_refs").write_text("5")  # peak RSS := current RSS
         before = status("VmRSS")
-        plan = planning.service_bands(cfg, zones, crs)
+        plan = planning.service_bands(cfg, zones, crs, pipeline.datum_shift(cfg, crs))
         peak = status("VmHWM")
         info = plan.info[0]["rasters"][0]
         print(json.dumps({"before": before, "peak": peak, "decimation": info["decimation"],

@@ -274,13 +274,11 @@ def test_terrain_unit_that_contradicts_the_raster(world, prior):
 
 
 @pytest.mark.parametrize("metres", [-5000.0, 9000.0])
-def test_elevations_that_cannot_be_in_the_stated_unit_warn(world, prior, metres):
+def test_elevations_that_cannot_be_in_the_stated_unit_are_refused(world, prior, metres):
     # -5000 m is below any dry land; 9000 m everywhere is a DEM in feet labelled metres (29,528 ft > Everest).
     write_raster(world.dem_path, np.full(DEM_SHAPE, metres), DEM_TRANSFORM)
-    res = run(world)
-    assert res.exit_code == 0, res.stderr
-    warns = [line for line in res.stderr.splitlines() if line.startswith("warning:")]
-    assert len(warns) == 1 and str(world.dem_path) in warns[0] and "terrain.vertical_units" in warns[0], res.stderr
+    assert_bad(run(world), str(world.dem_path), "not ground on Earth", "terrain.vertical_units")
+    unchanged(world, prior)
 
 
 # ---------------------------------------------------------------------------- fields

@@ -11,9 +11,12 @@ from pyproj import CRS
 from geopress import band
 from geopress.classify import Criteria
 from geopress.config import TerrainConfig
+from geopress.io.datum import DatumShift
 from geopress.io.raster import BAND_BYTES_PER_PIXEL, read_dem_window
 
 from conftest import write_raster
+
+NO_SHIFT = DatumShift(method="constant")
 
 PIXEL = 10.0
 X0, Y0 = 500_000.0, 11_000.0
@@ -133,11 +136,12 @@ def test_decimated_window_keeps_the_georeferencing(tmp_path):
     dem_m = (plane_dem() * 0.3048).astype(np.float64)  # store metres, read back as ft
     path = write_raster(tmp_path / "dem.tif", dem_m, TRANSFORM)
     bounds = ZONE.bounds
-    full = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=1024))
+    full = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=1024), NO_SHIFT)
     assert full.decimation == 1
     # budget of ~1/10 of the window's working size forces decimation by ceil(sqrt(10)) or so
     need_mb = full.array_ft.size * BAND_BYTES_PER_PIXEL / 2**20
-    small = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=need_mb / 10))
+    small = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", memory_mb=need_mb / 10),
+                            NO_SHIFT)
     assert small.decimation >= 3
     assert small.array_ft.size * BAND_BYTES_PER_PIXEL / 2**20 <= need_mb / 10 * 1.0001
     rows, cols = np.mgrid[0:small.array_ft.shape[0], 0:small.array_ft.shape[1]]
@@ -148,9 +152,11 @@ def test_decimated_window_keeps_the_georeferencing(tmp_path):
     # plane's rise per source pixel. A transform off by one decimated pixel would miss by >= 4 x that.
     half_pixel_rise = 0.5 * PIXEL * np.hypot(B, C)
     np.testing.assert_allclose(small.array_ft, f(x, y), rtol=0, atol=half_pixel_rise)
-    assert read_dem_window(path, (0.0, 0.0, 10.0, 10.0), TerrainConfig(paths=(path,), vertical_units="m")) is None
+    assert read_dem_window(path, (0.0, 0.0, 10.0, 10.0), TerrainConfig(paths=(path,), vertical_units="m"),
+                           NO_SHIFT) is None
     # the datum offset is added to every elevation after the unit conversion
-    shifted = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m", datum_offset_ft=-3.25))
+    shifted = read_dem_window(path, bounds, TerrainConfig(paths=(path,), vertical_units="m"),
+                              DatumShift(method="constant", constant_ft=-3.25))
     np.testing.assert_array_equal(shifted.array_ft, full.array_ft - 3.25)
 
 

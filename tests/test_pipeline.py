@@ -247,8 +247,9 @@ def test_geographic_customers_against_a_projected_dem(world):
 
 
 def us_ft_world(tmp_path, units=None):
-    """The base world with a DEM whose values are integers in US survey feet."""
-    dem = np.broadcast_to(3000.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
+    """The base world with a DEM whose values are integers in US survey feet (1,100 to 1,199: plausible
+    ground under the zones' HGLs, so no guard of geopress.guards fires)."""
+    dem = np.broadcast_to(1100.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
     write_raster(tmp_path / "dem.tif", dem, DEM_TRANSFORM, units=units)
     cols = np.arange(5, 100, 10)
     xs, ys = pixel_centre(cols, np.full(cols.size, 40))
@@ -261,7 +262,7 @@ def us_ft_world(tmp_path, units=None):
 
 # ground_ft = value * (1200/3937) / 0.3048 is two exactly defined factors; the code multiplies by their
 # ratio, computed once. The two orders differ by at most ~2 float64 roundings (2 * 2**-53 relative), so
-# rtol 4e-16; the survey foot's 2 ppm (0.006 ft at 3000 ft) is 10 orders of magnitude larger.
+# rtol 4e-16; the survey foot's 2 ppm (0.002 ft at 1,100 ft) is 10 orders of magnitude larger.
 US_FT_RTOL = 4e-16
 
 
@@ -271,7 +272,8 @@ def test_dem_in_us_survey_feet_from_the_config(tmp_path):
     res = geopress.run(tmp_path / "geopress.toml", write=False)
     ground = res.customers["ground_ft"].to_numpy()
     np.testing.assert_allclose(ground, values * 1200 / 3937 / 0.3048, rtol=US_FT_RTOL, atol=0)
-    assert (ground - values > 0.005).all()  # survey feet are longer: the conversion really happened
+    # survey feet are 2 ppm longer (1200/3937 m against 0.3048 m): the conversion really happened
+    assert (ground - values > 1.9e-6 * values).all()
     assert res.info["terrain"][0]["vertical_unit"] == "us_ft"
 
 
@@ -304,7 +306,7 @@ def test_first_listed_raster_wins_and_gaps_fall_through(world):
     # Both share one pixel grid, so they are read as one mosaic, first listed winning pixel by pixel, and a
     # point between their pixels interpolates across the seam as on the merged raster.
     # Points: inside near, east of it, in its hole, and 0.1 px inside its east edge (across the seam).
-    near = np.full((100, 60), 100.0)
+    near = np.full((100, 60), 300.0)
     near[49:51, 9:11] = -9999.0
     write_raster(world.root / "near.tif", near, DEM_TRANSFORM)
     pts = [pixel_centre(30, 30), pixel_centre(80, 30), pixel_centre(10, 50), pixel_centre(59.4, 30)]
@@ -316,10 +318,10 @@ def test_first_listed_raster_wins_and_gaps_fall_through(world):
     x = np.array([p[0] for p in pts])
     y = np.array([p[1] for p in pts])
     plane_m = world.ground_m(x, y)
-    # across the seam: 0.6 of near's last column (100 m) and 0.4 of dem.tif's first column beyond it
-    seam_m = 0.6 * 100.0 + 0.4 * world.ground_m(*pixel_centre(60, 30))
+    # across the seam: 0.6 of near's last column (300 m) and 0.4 of dem.tif's first column beyond it
+    seam_m = 0.6 * 300.0 + 0.4 * world.ground_m(*pixel_centre(60, 30))
     # ft -> m and back costs ~1e-13 m; 1e-9 m bounds it
-    np.testing.assert_allclose(ground_m, [100.0, plane_m[1], plane_m[2], seam_m], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(ground_m, [300.0, plane_m[1], plane_m[2], seam_m], rtol=0, atol=1e-9)
     world.write_config(text.replace('paths = ["dem.tif"]', 'paths = ["dem.tif", "near.tif"]'))
     ground_m = geopress.run(world.config_path, write=False).customers["ground_ft"].to_numpy() * M_PER_FT
     np.testing.assert_allclose(ground_m, plane_m, rtol=0, atol=1e-9)
@@ -540,9 +542,17 @@ def test_cli_check_prints_and_writes_nothing(crafted, invoke):
     assert res.exit_code == 0, res.stderr
     lines = res.stdout.splitlines()
     assert lines[0].startswith(f"customers: {len(CRAFTED)} from ")
-    assert "Main: tank, HGL 1180.0 to 1200.0 ft" in res.stdout
-    assert "Hill: pump, HGL 1350.0 to 1350.0 ft" in res.stdout
+    # Main's 10 customers (A-nodata without ground) run from A-high's 1,001.5 ft to A-edge's 1,210.0 ft;
+    # the static range is 0.433 * (1180 - 1210) = -13.0 to 0.433 * (1200 - 1001.5) = 86.0 psi
+    assert "Main (tank, 10 customers): ground 1,002 to 1,210 ft" in res.stdout
+    assert "under an HGL of 1,180 to 1,200 ft: static -13.0 to 86.0 psi" in res.stdout
+    # Hill: A-hill at 1,241.5 ft (A-off-dem has no ground): 0.433 * (1350 - 1241.5) = 47.0 psi
+    assert "Hill (pump, 2 customers): ground 1,242 to 1,242 ft" in res.stdout
+    assert "under an HGL of 1,350 ft: static 47.0 to 47.0 psi" in res.stdout
     assert "vertical unit ft" in res.stdout
+    # 13 located customers: A-off-dem is off the DEM, A-unzoned outside both zones
+    assert "92.3 % of the located customers on a raster" in res.stdout
+    assert "92.3 % of the located customers in a zone, 1 unzoned" in res.stdout
     assert lines[-1] == "check passed"
     assert sorted(p.name for p in crafted.parent.iterdir()) == before
 
@@ -640,14 +650,15 @@ def test_invalid_zone_polygon_is_repaired_with_a_warning(world):
     assert res.info["zones"]["repaired"] == ["East"]
 
 
-def test_implausible_elevations_warn_about_the_unit(tmp_path):
+def test_ground_off_the_earth_is_refused_naming_the_unit(tmp_path):
     # a DEM in feet declared as metres: 30,000 "m" would be 98,425 ft, far above any ground on Earth
     dem = np.broadcast_to(30000.0 + np.arange(DEM_SHAPE[1]), DEM_SHAPE).astype(np.float32)
     us_ft_world(tmp_path)
     write_raster(tmp_path / "dem.tif", dem, DEM_TRANSFORM)
     (tmp_path / "geopress.toml").write_text(BASE_CONFIG)
-    with pytest.warns(geopress.errors.TerrainWarning, match="check terrain.vertical_units"):
+    with pytest.raises(InputError, match="not ground on Earth.*check terrain.vertical_units") as info:
         geopress.run(tmp_path / "geopress.toml", write=False)
+    assert info.value.key == "terrain.vertical_units" and info.value.path == str(tmp_path / "dem.tif")
 
 
 @pytest.mark.parametrize(

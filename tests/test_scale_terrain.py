@@ -9,7 +9,10 @@ from pyproj import CRS
 
 from geopress.config import TerrainConfig
 from geopress.io import mosaic
+from geopress.io.datum import DatumShift
 from geopress.io.raster import read_tiles, sample_terrain
+
+NO_SHIFT = DatumShift(method="constant")
 from geopress.pressure import M_PER_FT
 from geopress.terrain import plan_windows, sample_pixels
 from tests.conftest import ORIGIN, PROJECTED, write_raster
@@ -60,8 +63,8 @@ def test_mosaic_of_3x3_tiles_equals_the_merged_raster(tmp_path, memory_mb):
     x, y = _points(3, np.random.default_rng(1))
     crs = CRS.from_user_input(PROJECTED)
     # 0.002 MB = 524 float32 pixels: every window is a few blocks, so the run reads many windows
-    got = sample_terrain(_cfg(paths, memory_mb=memory_mb), x, y, crs)
-    want = sample_terrain(_cfg([merged]), x, y, crs)
+    got = sample_terrain(_cfg(paths, memory_mb=memory_mb), x, y, crs, NO_SHIFT)
+    want = sample_terrain(_cfg([merged]), x, y, crs, NO_SHIFT)
     assert np.array_equal(got.ground_ft, want.ground_ft, equal_nan=True)  # same pixels, same arithmetic: bit for bit
     assert np.count_nonzero(np.isnan(got.ground_ft)) == 0
     assert sum(r.customers_sampled for r in got.rasters) == x.size
@@ -78,7 +81,7 @@ def test_seam_value_uses_the_neighbour_tile(tmp_path):
     paths = _tiles(tmp_path, np.vstack([dem, dem]), 2)[:2]  # the top row of tiles: a west-east seam
     x = np.array([ORIGIN[0] + TILE * PIX + 0.25 * PIX])  # a quarter pixel east of the seam
     y = np.array([ORIGIN[1] - 5.5 * PIX])  # on a row of pixel centres
-    got = sample_terrain(_cfg(paths), x, y, CRS.from_user_input(PROJECTED)).ground_ft
+    got = sample_terrain(_cfg(paths), x, y, CRS.from_user_input(PROJECTED), NO_SHIFT).ground_ft
     left, right = float(dem[5, TILE - 1]), float(dem[5, TILE])
     # bilinear between the last pixel of the west tile and the first of the east tile, weight 0.75 on the east one
     assert got[0] * M_PER_FT == pytest.approx(left + 0.75 * (right - left), rel=0, abs=1e-9)
@@ -93,7 +96,7 @@ def test_overlapping_tiles_first_listed_with_a_value_wins(tmp_path):
     b = write_raster(tmp_path / "b.tif", low, t @ Affine.translation(2, 0))  # shifted two pixels east
     x = ORIGIN[0] + np.array([1.5, 7.5, 11.5]) * PIX
     y = np.full(3, ORIGIN[1] - 5.5 * PIX)
-    got = sample_terrain(_cfg([a, b]), x, y, CRS.from_user_input(PROJECTED)).ground_ft * M_PER_FT
+    got = sample_terrain(_cfg([a, b]), x, y, CRS.from_user_input(PROJECTED), NO_SHIFT).ground_ft * M_PER_FT
     # 1.5: only a covers it, nodata there -> NaN; 7.5: both cover it, a has a value; 11.5: only b
     assert np.isnan(got[0])
     assert got[1:].tolist() == pytest.approx([200.0, 100.0], rel=0, abs=1e-9)  # m -> ft -> m round trip
@@ -111,7 +114,7 @@ def test_tiles_in_another_crs_and_resolution_form_their_own_group(tmp_path):
     assert [len(g.tiles) for g in groups] == [1, 1, 1]
     x = ORIGIN[0] + np.array([50.0, 300.0, 450.0])
     y = ORIGIN[1] - np.array([50.0, 300.0, 50.0])
-    got = sample_terrain(_cfg([a, coarse, south]), x, y, CRS.from_user_input(PROJECTED)).ground_ft * M_PER_FT
+    got = sample_terrain(_cfg([a, coarse, south]), x, y, CRS.from_user_input(PROJECTED), NO_SHIFT).ground_ft * M_PER_FT
     # (50, 50) m is in a; (300, 300) m is past a's 200 m and in coarse; (450, 50) m only in the 31S raster
     # abs 1e-9 m: the m -> ft -> m round trip of float64 values near 100 m
     want = [sample_pixels(dem, np.array([5.0]), np.array([5.0]))[0], 50.0, 70.0]
@@ -141,8 +144,8 @@ def test_glob_and_vrt_paths(tmp_path):
     assert list(cfg.terrain.paths) == sorted(paths)
     x, y = _points(2, np.random.default_rng(2), n=500)
     crs = CRS.from_user_input(PROJECTED)
-    by_glob = sample_terrain(cfg.terrain, x, y, crs).ground_ft
-    by_vrt = sample_terrain(_cfg([vrt]), x, y, crs).ground_ft
+    by_glob = sample_terrain(cfg.terrain, x, y, crs, NO_SHIFT).ground_ft
+    by_vrt = sample_terrain(_cfg([vrt]), x, y, crs, NO_SHIFT).ground_ft
     assert np.array_equal(by_glob, by_vrt, equal_nan=True)
 
 

@@ -1,8 +1,10 @@
 """Many DEM tiles read as one raster per CRS and pixel grid.
 
 The configured rasters (a list, a glob's matches, or VRT files) are opened
-once for their CRS, grid, type and nodata, without reading pixels. Rasters
-that share CRS, pixel size, grid phase and vertical unit form a *group*; a
+once for their CRS, grid, type, nodata, mask, scale and offset, without
+reading pixels. Rasters that share CRS, pixel size, grid phase, vertical
+unit, scale and offset, and mark missing pixels by a nodata value (or not
+at all), form a *group*; a
 group of several tiles is read through an in-process GDAL VRT (an XML text in
 ``/vsimem``) laid on the union of their extents, so a window that spans a
 seam holds the neighbour tile's pixels and bilinear sampling across the seam
@@ -10,6 +12,9 @@ gives the same value as sampling the merged raster. Where tiles of a group
 overlap, the first listed that has a value wins, pixel by pixel (the VRT
 paints sources in reverse order, nodata transparent). Groups are tried in
 the order of their first raster, a customer taking the first group's value.
+A raster whose missing pixels are marked by a mask band (per-dataset,
+per-band, or an alpha band GDAL applies) is a group of its own and is read
+with its mask (see :mod:`geopress.io.raster`).
 """
 
 from __future__ import annotations
@@ -44,6 +49,11 @@ class Tile:
     nodata: float | None
     unit: str
     block: tuple[int, int]
+    #: missing pixels are marked by a GDAL mask band (per-dataset, per-band or alpha), read with the values
+    masked: bool = False
+    #: the band's scale and offset: elevation = stored value * scale + offset (in ``unit``)
+    scale: float = 1.0
+    offset: float = 0.0
 
 
 @dataclass
@@ -75,6 +85,18 @@ class Group:
         return self.first.crs_wkt
 
     @property
+    def masked(self) -> bool:
+        return self.first.masked
+
+    @property
+    def scale(self) -> float:
+        return self.first.scale
+
+    @property
+    def offset(self) -> float:
+        return self.first.offset
+
+    @property
     def block(self) -> tuple[int, int]:
         return self.first.block if len(self.tiles) == 1 else (512, 512)
 
@@ -89,19 +111,21 @@ class Group:
 
 
 def _grid_key(tile: Tile) -> tuple | None:
-    """What tiles must share to join one grid; None for rotated rasters (a group of their own)."""
-    t = tile.transform
-    if t.b != 0 or t.d != 0:
+    """What tiles must share to join one grid (rasters are north-up or south-up, never rotated:
+    :mod:`geopress.io.raster` refuses those); None for a masked raster, a group of its own
+    (a VRT of its tiles would drop their masks)."""
+    if tile.masked:
         return None
+    t = tile.transform
     phase_x = math.remainder(t.c / t.a, 1.0)
     phase_y = math.remainder(t.f / t.e, 1.0)
-    return (tile.crs_wkt, tile.unit, t.a, t.e, phase_x, phase_y)
+    return (tile.crs_wkt, tile.unit, tile.scale, tile.offset, t.a, t.e, phase_x, phase_y)
 
 
 def _same_grid(key: tuple, other: tuple) -> bool:
-    if key[:4] != other[:4]:
+    if key[:6] != other[:6]:
         return False
-    return all(abs(math.remainder(p - q, 1.0)) <= GRID_TOLERANCE_PX for p, q in zip(key[4:], other[4:]))
+    return all(abs(math.remainder(p - q, 1.0)) <= GRID_TOLERANCE_PX for p, q in zip(key[6:], other[6:]))
 
 
 def _band_type(tiles: list[Tile]) -> tuple[str, float | None]:

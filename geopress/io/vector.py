@@ -145,14 +145,30 @@ class Customers:
     wkb: pa.ChunkedArray | None = None
 
 
+def _located(path: Path, layer: str, info: dict, key: str) -> None:
+    """An InputError when the layer has no geometry at all (a table of attributes, e.g. a CSV of accounts)."""
+    if info.get("geometry_type") is None:
+        hint = ("give it point columns (for a CSV, GDAL's open options X_POSSIBLE_NAMES and Y_POSSIBLE_NAMES, e.g. "
+                "ogr2ogr -oo X_POSSIBLE_NAMES=lon -oo Y_POSSIBLE_NAMES=lat -a_srs EPSG:4326 customers.gpkg "
+                "accounts.csv) or join the accounts to the parcels" if key == "customers" else "it must hold polygons")
+        raise InputError(f"layer '{layer}' (from {key}.path) has no geometry, only attributes; {hint}", path=path,
+                         key=f"{key}.path")
+
+
 def customers_crs(cfg: CustomersConfig) -> CRS:
-    """The customers layer's CRS, from its metadata (an InputError when it has none)."""
+    """The customers layer's CRS, from its metadata (an InputError when it has no geometry or no CRS)."""
     layer = resolve_layer(cfg.path, cfg.layer, "customers")
-    return _crs(cfg.path, layer, layer_info(cfg.path, layer)["crs"])
+    info = layer_info(cfg.path, layer)
+    _located(cfg.path, layer, info, "customers")
+    return _crs(cfg.path, layer, info["crs"])
 
 
-def read_customers(cfg: CustomersConfig) -> Customers:
-    """Read and check the customers layer; polygons become shapely's point_on_surface."""
+def read_customers(cfg: CustomersConfig, *, mail: bool = True) -> Customers:
+    """Read and check the customers layer; polygons become shapely's point_on_surface.
+
+    With ``mail=False`` the mail fields are checked to exist but not read (``geopress check``
+    needs only where the customers are).
+    """
     path = cfg.path
     layer = resolve_layer(path, cfg.layer, "customers")
     info = layer_info(path, layer)
@@ -161,10 +177,12 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     if cfg.floors_field:
         wanted["customers.floors_field"] = cfg.floors_field
     check_fields(path, layer, info, wanted)
+    _located(path, layer, info, "customers")
     crs = _crs(path, layer, info["crs"])
     if info["features"] == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
-    columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
+    columns = list(dict.fromkeys([cfg.id_field, *(cfg.mail_fields if mail else ()),
+                                  *([cfg.floors_field] if cfg.floors_field else [])]))
     df, wkb = read_layer(path, layer, columns)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
@@ -251,7 +269,7 @@ def read_customers(cfg: CustomersConfig) -> Customers:
 
 @dataclass
 class Zones:
-    """Zone polygons (one row per feature) with their zone ids and tie priority."""
+    """Zone polygons (one row per feature, in the layer's CRS ``crs``) with their zone ids and tie priority."""
 
     polygons: np.ndarray
     zone_ids: np.ndarray
@@ -261,12 +279,14 @@ class Zones:
     repaired: list[str]
 
 
-def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
-    """Read the zones layer, repair invalid polygons, check sources, reproject to ``target_crs``."""
+def read_zones(cfg: ZonesConfig) -> Zones:
+    """Read the zones layer, repair invalid polygons and check the sources; the polygons stay in the
+    layer's own CRS, where their edges are straight (the join reprojects the customers instead)."""
     path = cfg.path
     layer = resolve_layer(path, cfg.layer, "zones")
     info = layer_info(path, layer)
     check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
+    _located(path, layer, info, "zones")
     crs = _crs(path, layer, info["crs"])
     df, _ = read_layer(path, layer, [cfg.id_field])
     if len(df) == 0:
@@ -308,7 +328,4 @@ def read_zones(cfg: ZonesConfig, target_crs: CRS | None = None) -> Zones:
         )
     rank = {s.zone: i for i, s in enumerate(cfg.sources)}
     priority = np.array([rank[z] for z in ids], dtype=np.int64)
-    if target_crs is not None and not crs.equals(target_crs):
-        geom = gpd.GeoSeries(geom, crs=crs).to_crs(target_crs).to_numpy()
-        crs = target_crs
     return Zones(polygons=geom, zone_ids=ids, priority=priority, crs=crs, layer=layer, repaired=repaired)
