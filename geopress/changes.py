@@ -14,6 +14,10 @@ status_changed    any other change, e.g. ``low`` to ``above_hgl``, or a
                   flagged customer that now has ``no_terrain``
 ================  ==============================================================
 
+The current customers carry their change in the ``customers`` layer
+(:func:`change_columns`); the removed ones, which it lacks, form a layer of
+their own (:func:`removed_layer`).
+
 "Flagged" means a status with a mailing list
 (:data:`geopress.classify.FLAGGED_LAYERS`). The ``new_<list>`` mailing lists
 hold the customers whose status is that list's status now and was not in the
@@ -212,45 +216,24 @@ def _stored_text(values: pd.Series) -> pd.api.extensions.ExtensionArray | np.nda
     return values.to_numpy(dtype=object, na_value=None)
 
 
-def _take(frame: pd.DataFrame, positions: np.ndarray, columns: list[str]) -> pd.DataFrame:
-    """The ``columns`` of ``frame`` (missing ones empty) at ``positions``."""
-    part = frame.reindex(columns=columns)
-    if positions.size == len(frame) and np.array_equal(positions, np.arange(len(frame))):
-        return part  # every row in order (a first run): nothing to take
-    return part.iloc[positions]
+def change_columns(table: pd.DataFrame, n_current: int) -> dict[str, pd.api.extensions.ExtensionArray | np.ndarray]:
+    """``previous_status`` and ``change`` of the current customers, in their order, as text columns.
 
-
-def changes_layer(
-    table: pd.DataFrame,
-    current: pd.DataFrame,
-    previous: pd.DataFrame | None,
-    *,
-    id_field: str,
-    columns: Sequence[str],
-) -> pd.DataFrame:
-    """The customers that changed: id, ``previous_status``, ``status``, ``change``, then ``columns``.
-
-    ``table`` is a :func:`compare` table. ``current`` and ``previous`` are
-    both runs' customers (``previous`` may be None when ``table`` has no
-    removed customers). ``columns`` (e.g. mail fields, zone, geometry) come
-    from the current run where the customer is in it, else from the previous
-    run, empty where that run lacks them. Pass GeoDataFrames in one CRS to
-    get a GeoDataFrame.
+    ``table`` is a :func:`compare` table of ``n_current`` current customers (its first rows).
     """
-    rows = table["current_row"].to_numpy()
-    rep = (table["change"] != "unchanged").to_numpy()
-    cur = np.flatnonzero(rep & (rows >= 0))
-    gone = np.flatnonzero(rep & (rows < 0))
-    take = list(dict.fromkeys([id_field, *columns]))
-    parts = [_take(current, rows[cur], take)]
-    if gone.size:
-        if previous is None:
-            raise ValueError("the table has removed customers but no previous frame was given")
-        parts.append(_take(previous, table["previous_row"].to_numpy()[gone], take))
-    if len(parts) == 2 and parts[0][id_field].dtype != parts[1][id_field].dtype:
-        parts = [p.assign(**{id_field: p[id_field].astype(str)}) for p in parts]
-    out = pd.concat(parts, ignore_index=True)
-    both = np.r_[cur, gone]
-    for pos, col in enumerate(("previous_status", "status", "change"), start=1):
-        out.insert(pos, col, _stored_text(table[col].iloc[both]))
+    return {col: _stored_text(table[col].iloc[:n_current]) for col in ("previous_status", "change")}
+
+
+def removed_layer(table: pd.DataFrame, previous: pd.DataFrame, *, id_field: str,
+                  columns: Sequence[str]) -> pd.DataFrame:
+    """The customers of the previous run that this one lacks: id, ``previous_status``, ``change``, then
+    ``columns`` (e.g. mail fields, zone, geometry; empty where the previous run lacks them).
+
+    ``previous`` holds the previous run's rows of the removed customers, in the order of ``table``'s
+    removed rows. Pass a GeoDataFrame to get a GeoDataFrame.
+    """
+    gone = np.flatnonzero(table["current_row"].to_numpy() < 0)
+    out = previous.reindex(columns=list(dict.fromkeys([id_field, *columns]))).reset_index(drop=True)
+    for pos, col in enumerate(("previous_status", "change"), start=1):
+        out.insert(pos, col, _stored_text(table[col].iloc[gone]))
     return out

@@ -3,14 +3,18 @@
 Exit codes: 0 the run completed (flagged customers are a result, not a
 failure); 2 bad config or input, or an output location that cannot be
 written, locked or full: one line on stderr, nothing written; 1 anything
-else, earlier outputs unchanged.
+else, earlier outputs unchanged; 130 interrupted (Ctrl-C) and 143 stopped
+by SIGTERM (a scheduler's), both leaving the earlier outputs unchanged.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import logging
+import signal
 import sys
+import threading
 import time
 import warnings
 from importlib import resources
@@ -28,6 +32,29 @@ from .scenario import load_scenario
 log = logging.getLogger("geopress")
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_INTERRUPTED, EXIT_TERMINATED = 130, 143  # 128 + SIGINT, 128 + SIGTERM, as shells report them
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where the program is, so that it unwinds as for Ctrl-C: the outputs are left as
+    they were, the lock released, the child process stopped."""
+
+
+def _terminate(signum, frame) -> None:
+    raise Terminated
+
+
+@contextlib.contextmanager
+def _sigterm_unwinds():
+    """SIGTERM raises :class:`Terminated` while the block runs (in the main thread; elsewhere unchanged)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _terminate)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 class _OneLine(logging.Formatter):
@@ -75,7 +102,7 @@ def guarded(fn: Callable) -> Callable:
         debug = ctx.obj["debug"]
         _configure_logging(ctx.obj["verbose"], ctx.obj["quiet"])
         try:
-            with warnings.catch_warnings():
+            with warnings.catch_warnings(), _sigterm_unwinds():
                 warnings.simplefilter("always")
                 warnings.showwarning = _log_warning  # restored when the block ends, even in-process
                 return fn(*args, **kwargs)
@@ -85,10 +112,14 @@ def guarded(fn: Callable) -> Callable:
                 raise
             click.echo(f"error: {exc}", err=True)
             ctx.exit(EXIT_BAD_INPUT)
+        except Terminated:
+            _finish_log(ctx, f"run failed: exit {EXIT_TERMINATED}: terminated (SIGTERM); earlier outputs are unchanged")
+            click.echo("error: terminated (SIGTERM); earlier outputs are unchanged", err=True)
+            ctx.exit(EXIT_TERMINATED)
         except KeyboardInterrupt:
-            _finish_log(ctx, "run failed: exit 130: interrupted; earlier outputs are unchanged")
+            _finish_log(ctx, f"run failed: exit {EXIT_INTERRUPTED}: interrupted; earlier outputs are unchanged")
             click.echo("error: interrupted; earlier outputs are unchanged", err=True)
-            ctx.exit(130)
+            ctx.exit(EXIT_INTERRUPTED)
         except Exception as exc:  # a bug or an environment failure
             first = str(exc).splitlines()[0] if str(exc) else ""
             _finish_log(ctx, f"run failed: exit {EXIT_FAILURE}: {type(exc).__name__}: {first}")
@@ -192,17 +223,22 @@ def _run_line(result: pipeline.Result) -> str:
               help="dask scheduler address (e.g. tcp://10.0.0.5:8786); default: a LocalCluster for this run.")
 @click.option("--partitions", type=click.IntRange(min=1), default=None,
               help="Spatial partitions for --engine dask (default: two per worker thread).")
+@click.option("--replace-outputs", is_flag=True,
+              help="Let a --set what-if without --out-dir replace the outputs (it never becomes the baseline).")
+@click.option("--accept-drop", is_flag=True,
+              help="Accept a run whose customers dropped by more than output.max_drop_percent of the baseline's.")
 @click.pass_context
 @guarded
 def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_dir: Path | None,
             baseline: Path | None, log_file: Path | None, engine: str, scheduler: str | None,
-            partitions: int | None) -> None:
+            partitions: int | None, replace_outputs: bool, accept_drop: bool) -> None:
     """Run the screening described by CONFIG and write its outputs."""
     if log_file is not None:
         _open_log(ctx, log_file)
         log.info("run started: %s", config.resolve())
-    result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline,
-                          engine=engine, scheduler=scheduler, partitions=partitions)
+    cfg = load_scenario(config, assignments, out_dir, replace_outputs=replace_outputs)
+    result = pipeline.run(cfg, progress=_progress(ctx), baseline=baseline, engine=engine, scheduler=scheduler,
+                          partitions=partitions, accept_drop=accept_drop)
     click.echo(_summary(result))
     since = result.info["changes"]["baseline"] or "no earlier run"
     click.echo(f"changes since {since}: {_changes_text(result)}")
@@ -216,7 +252,7 @@ def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_
 @guarded
 def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) -> None:
     """Validate CONFIG and every input; print what a run would process; write nothing."""
-    report = pipeline.check(load_scenario(config, assignments))
+    report = pipeline.check(load_scenario(config, assignments, writes=False))
     for line in report.lines:
         click.echo(line)
     click.echo("check passed")

@@ -95,13 +95,18 @@ class OutputConfig:
 
     ``units`` ("us": ft, psi; "si": m, kPa) applies to the report and the
     mailing lists; the GeoPackage keeps ft and psi. ``report`` writes
-    report.html beside the GeoPackage.
+    report.html beside the GeoPackage. ``max_drop_percent``: a run whose
+    customers dropped by more than this share of the baseline's is refused
+    (an export cut short). ``child_timeout_s``: the longest a run waits for
+    its child process's job (the service band, writing the GeoPackage).
     """
 
     path: Path
     mailing_dir: Path
     units: str = "us"
     report: bool = True
+    max_drop_percent: float = 20.0
+    child_timeout_s: float = 3600.0
 
 
 @dataclass(frozen=True)
@@ -116,6 +121,13 @@ class Config:
     source_path: Path | None = field(default=None, compare=False)
     #: the dotted-key overrides applied on top of the file (what-if runs), in the order given.
     overrides: tuple[tuple[str, Any], ...] = field(default=(), compare=False)
+    #: for a what-if run into another folder: the main run's GeoPackage, its baseline by default
+    what_if_of: Path | None = field(default=None, compare=False)
+
+    @property
+    def what_if(self) -> bool:
+        """Whether the config has overrides beyond where the outputs go (``--set``, not only ``--out-dir``)."""
+        return any(key not in OUTPUT_KEYS for key, _ in self.overrides)
 
     def input_paths(self) -> list[Path]:
         """Every input file the run reads, with the files a Shapefile's attributes, index and CRS are in."""
@@ -138,6 +150,8 @@ class Config:
         }
 
 
+#: the keys an --out-dir sets
+OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
 SHAPEFILE_PARTS = (".shx", ".dbf", ".prj", ".cpg", ".qix", ".sbn", ".sbx")
 
@@ -551,7 +565,7 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "max_drop_percent", "child_timeout_s"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
@@ -561,5 +575,11 @@ class _Reader:
         report = t.get("report", True)
         if not isinstance(report, bool):
             raise self.error("output.report", f"must be true or false, not {report!r}")
+        drop = self.get(t, s, "max_drop_percent", "number", 20.0)
+        if not 0 <= drop <= 100:
+            raise self.error("output.max_drop_percent", f"must be between 0 and 100, not {drop:g}")
+        timeout = self.get(t, s, "child_timeout_s", "number", 3600.0)
+        if timeout <= 0:
+            raise self.error("output.child_timeout_s", f"must be positive, not {timeout:g}")
         return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"),
-                            units=units, report=report)
+                            units=units, report=report, max_drop_percent=drop, child_timeout_s=timeout)

@@ -28,9 +28,9 @@ import pyproj
 import rasterio
 
 from . import classify as cls
-from . import forked
 from . import guards
 from . import planning
+from . import runner
 from ._compat import report_missing
 from . import nightly
 from ._version import __version__
@@ -41,6 +41,7 @@ from .io import raster as raster_io
 from .io import vector as vector_io
 from .io import write as write_io
 from .pressure import customer_pressures
+from .changes import CHANGES
 from .tables import mailing_lists, zone_summary
 from .units import customers_in_units, mailing_columns_in_units, units_for
 from .zones import assign_xy, overlaps
@@ -56,10 +57,11 @@ class Result:
     """What a run computed.
 
     ``customers``: every input customer with the result columns, point geometry
-    in the customers' CRS. ``zone_summary``: one row per zone. ``counts``:
-    customers per status. ``mailing``: the mailing lists by name. ``info``:
-    what run.json records. ``outputs``: the files written (empty when
-    ``write=False``).
+    in the customers' CRS (and, once compared with the baseline,
+    ``previous_status`` and ``change``). ``zone_summary``: one row per zone.
+    ``counts``: customers per status. ``mailing``: the mailing lists by name.
+    ``info``: what run.json records. ``outputs``: the files written (empty
+    when ``write=False``).
     """
 
     config: Config
@@ -75,8 +77,10 @@ class Result:
     outputs: list[Path] = field(default_factory=list)
     #: the service_band / band_limits layers and the report's terrain (geopress.planning)
     plan: planning.Plan | None = None
-    # set by geopress.nightly.track: the changes layer and the new_* mailing lists
-    changes: pd.DataFrame | None = None
+    #: the customers' geometries as the file's WKB when they are the file's own points (for the writer), else None
+    wkb: pa.ChunkedArray | None = None
+    # set by geopress.nightly.track: the baseline's customers this run lacks, and the new_* mailing lists
+    removed: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
 
 
@@ -190,15 +194,11 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
     return value, round(time.perf_counter() - t0, 4)
 
 
-def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: Any = None,
-            partitions: int | None = None,
-            on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None = None) -> Result:
-    """Read inputs and compute results; writes nothing. ``engine`` as in :func:`run`.
-
-    ``on_customers`` is called with the customers layer and its geometries
-    as the file's WKB (None unless they pass through unchanged) once it is final
-    and the service band's child process is done, before the zone summary
-    and the mailing lists are made.
+def compute(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str = "local", scheduler: Any = None,
+            partitions: int | None = None) -> Result:
+    """Read the inputs and compute every result a run writes (writing nothing): the customers with
+    their pressures and statuses, the zone summary with the best control ranges, the mailing lists
+    and the service band, which ``worker``'s process computes meanwhile. ``engine`` as in :func:`run`.
     """
     cfg = config
     with clock.step("read zones"):
@@ -206,13 +206,10 @@ def compute(config: Config, clock: _Clock, *, engine: str = "local", scheduler: 
         zones = vector_io.read_zones(cfg.zones)
         overlap_info = _warn_overlaps(zones)
         shift = datum_shift(cfg, crs)
-    # the service band needs only the zones and the DEM: a child process computes it meanwhile
-    band = forked.start(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
-    try:
-        return _compute(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
-                        partitions=partitions, on_customers=on_customers)
-    finally:
-        band.cancel()  # reaped already unless this failed
+    # the service band needs only the zones and the DEM: the child process computes it meanwhile
+    band = worker.submit(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
+    return _compute(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
+                    partitions=partitions)
 
 
 def datum_shift(cfg: Config, crs: pyproj.CRS) -> datum_io.DatumShift:
@@ -288,8 +285,8 @@ def _suspicion_text(cfg: Config, zg: guards.ZoneGround, why: str, unit: str) -> 
 
 
 def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
-             shift: datum_io.DatumShift, band: forked.Forked, *, engine: str, scheduler: Any, partitions: int | None,
-             on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None) -> Result:
+             shift: datum_io.DatumShift, band: runner.Job, *, engine: str, scheduler: Any,
+             partitions: int | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
         cust = vector_io.read_customers(cfg.customers)
@@ -355,12 +352,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
-    # the writer starts only once the service band's child is done, so that at most two processes
-    # hold working memory at once (the band's window is budgeted like the terrain's, by memory_mb)
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
-    if on_customers is not None:
-        on_customers(customers, cust.wkb)
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -391,7 +384,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "service_band": plan.info,
     }
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan)
+                  plan=plan, wkb=cust.wkb)
 
 
 def _ground_row(zg: guards.ZoneGround, psi_per_ft: float) -> dict[str, Any]:
@@ -407,13 +400,20 @@ def _r(value: float) -> float | None:
     return None if np.isnan(value) else round(float(value), 1)
 
 
-def customer_layers(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None = None) -> dict[str, write_io.Layer]:
-    """The GeoPackage's first layers, written as soon as the customers are final: ``customers``
-    (with ``wkb``, its geometries as read, when given: see write_io.Encoded) and the flagged
-    ones (views of it, see write_io.View)."""
-    layers: dict[str, write_io.Layer] = {"customers": customers if wkb is None else write_io.Encoded(customers, wkb)}
+#: the changes a ``changes`` layer lists (of the current customers; the removed ones have a layer of their own)
+CHANGED = tuple(c for c in CHANGES if c not in ("unchanged", "removed"))
+
+
+def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> dict[str, write_io.Layer]:
+    """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows in an Arrow file;
+    else the frame, with the file's WKB when it has it: see write_io.Encoded), then the flagged layers
+    and ``changes``, views of it (see write_io.View)."""
+    customers = result.customers
+    layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
     for code, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = write_io.View("customers", "status", code)
+        layers[name] = write_io.view_of("customers", customers, "status", (code,))
+    if "change" in customers.columns:
+        layers["changes"] = write_io.view_of("customers", customers, "change", CHANGED)
     return layers
 
 
@@ -423,8 +423,8 @@ def later_layers(result: Result) -> dict[str, write_io.Layer]:
     if result.plan is not None:
         layers["service_band"] = result.plan.bands
         layers["band_limits"] = result.plan.limits
-    if result.changes is not None:
-        layers["changes"] = result.changes
+    if result.removed is not None:
+        layers["removed_customers"] = result.removed
     return layers
 
 
@@ -433,12 +433,19 @@ def run_json_path(config: Config) -> Path:
     return config.output.path.parent / "run.json"
 
 
-def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, gpkg: write_io.Started) -> list[Path]:
-    """Stage the mailing lists and the report while the GeoPackage's first layers are written
-    (``gpkg``), add its other layers, stage run.json, then rename them all into place."""
-    out = result.config.output
+def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker) -> list[Path]:
+    """Write every output: the GeoPackage's customer layers in ``worker``'s process while the mailing
+    lists and the report are staged here, then its other layers, run.json, and the renames into place."""
+    cfg = result.config
+    out = cfg.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
+        write_io.ensure_dir(out.path.parent, "output.path")
+        gpkg = stage.temp_for(out.path)
+        # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
+        table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"), _layer_frame(result)))
+        writer = worker.submit(write_io.write_in_child, gpkg, customer_layers(result, table), what="writer",
+                               path=out.path)
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         lists = {**result.mailing, **result.new_mailing}
         for name, df in lists.items():
@@ -446,22 +453,31 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, gpkg: 
         info = dict(result.info)
         info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
         _stage_report(result, info, stage)
-        first = gpkg.finish()
-        info["geopackage_layers_s"] = {**first, **gpkg.add(lambda tmp: write_io.write_geopackage(tmp, later_layers(result)))}
+        first = stage.wait(out.path, writer.result)
+        later = stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later_layers(result)))
+        info["geopackage_layers_s"] = {**first, **later}
+        if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
+            stage.link(gpkg, nightly.baseline_link(out.path))
         # run.json is written inside this step: it records the step up to its own writing
         info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
         info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-        stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+        stage.write(run_json_path(cfg), lambda tmp: write_io.write_json(tmp, info))
         stage.commit()
         result.info = info
-        return list(stage.committed)
+        return [p for p in stage.committed if not p.name.startswith(".")]
+
+
+def _layer_frame(result: Result) -> write_io.Encoded | gpd.GeoDataFrame:
+    """The customers as the writer takes them: with the file's WKB when the points are the file's own."""
+    return result.customers if result.wkb is None else write_io.Encoded(result.customers, result.wkb)
 
 
 def output_targets(config: Config) -> list[Path]:
     """Every file a run of ``config`` can write."""
     out = config.output
     names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
-    return [out.path, *[out.mailing_dir / f"{n}.csv" for n in names], report_path(config), run_json_path(config)]
+    return [out.path, nightly.baseline_link(out.path), *[out.mailing_dir / f"{n}.csv" for n in names],
+            report_path(config), run_json_path(config)]
 
 
 def report_path(config: Config) -> Path:
@@ -489,20 +505,41 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
 
 def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Progress | None = None,
         baseline: str | os.PathLike | None = None, engine: str = "local", scheduler: Any = None,
-        partitions: int | None = None) -> Result:
+        partitions: int | None = None, accept_drop: bool = False) -> Result:
     """Run the screening for ``config`` (a :class:`Config` or a path to a TOML file).
 
-    With ``write=True`` (default) the outputs are written atomically under
-    the output lock: on any error no output is changed. The customers are
-    compared with ``baseline`` (an earlier geopress GeoPackage), by default
-    the previous output (see :mod:`geopress.changes`). Raises
-    :class:`~geopress.errors.GeopressError` for bad config or input.
+    Parameters
+    ----------
+    config
+        the configuration, or the path of its TOML file.
+    write
+        write the outputs (default), atomically and under the output lock: on any error, or
+        Ctrl-C, no output is changed. ``False`` computes everything and writes nothing.
+    baseline
+        an earlier geopress GeoPackage to compare with; by default the last accepted run
+        (see :func:`geopress.nightly.track`).
+    engine, scheduler, partitions
+        ``engine="dask"`` runs the zone join and terrain sampling per spatial partition on
+        dask.distributed (``pip install 'geopress[dask]'``): ``scheduler`` is a scheduler
+        address, cluster or Client (None starts a LocalCluster), ``partitions`` the number of
+        spatial partitions. The results are identical to ``engine="local"``.
+    accept_drop
+        take a run whose customers dropped by more than ``output.max_drop_percent`` of the
+        baseline's as it is, instead of refusing it.
 
-    ``engine="dask"`` runs the zone join and terrain sampling per spatial
-    partition on dask.distributed (``pip install 'geopress[dask]'``):
-    ``scheduler`` is a scheduler address, cluster or Client (None starts a
-    LocalCluster), ``partitions`` the number of spatial partitions. The
-    results are identical to ``engine="local"``.
+    Returns
+    -------
+    Result
+
+    Raises
+    ------
+    GeopressError
+        for a bad config or input, a locked or unwritable output, a refused drop.
+
+    Notes
+    -----
+    The run's side work goes to a child process (:mod:`geopress.runner`, from multiprocessing's
+    fork server): a script that calls ``run`` must do so under ``if __name__ == "__main__":``.
     """
     if engine not in ENGINES:
         raise ConfigError(f"engine must be one of {', '.join(ENGINES)}, not {engine!r}", key="engine")
@@ -518,29 +555,22 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     shown: list[str] = []
     with _cycle_collection_paused(), _recorded_warnings(shown), \
             nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
-            write_io.Staging(journal_for=cfg.output.path) as stage:
+            write_io.Staging(journal_for=cfg.output.path) as stage, \
+            runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker:  # stopped before the staging is discarded
         inputs = nightly.snapshot(cfg.input_paths())
-        gpkg: list[write_io.Started] = []
-
-        def start_writing(customers: gpd.GeoDataFrame, wkb: pa.ChunkedArray | None) -> None:
-            write_io.ensure_dir(cfg.output.path.parent, "output.path")
-            gpkg.append(stage.start(cfg.output.path,
-                                    lambda tmp: write_io.start_geopackage(tmp, customer_layers(customers, wkb))))
-
-        result = compute(cfg, clock, engine=engine, scheduler=scheduler, partitions=partitions,
-                         on_customers=start_writing if write else None)
+        result = compute(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
         nightly.check_unchanged(inputs)
         with clock.step("compare with baseline"):
-            nightly.track(result, baseline)
+            nightly.track(result, baseline, accept_drop=accept_drop)
         result.info["started"] = started
         result.info["engine"] = engine
         result.info["warnings"] = shown  # the same list: warnings shown while writing are added too
         if write:
-            result.outputs = write_outputs(result, clock, stage, gpkg[0])
+            result.outputs = write_outputs(result, clock, stage, worker)
     result.timings = clock.timings
     result.elapsed_s = time.perf_counter() - t0
     log.debug("run finished in %.2f s: %s", result.elapsed_s,
-             ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
+              ", ".join(f"{k} {v}" for k, v in result.counts.items() if v))
     return result
 
 

@@ -14,6 +14,8 @@ import tomllib
 from pathlib import Path
 from typing import Any, Iterable
 
+from dataclasses import replace
+
 from .config import Config, load_config
 from .errors import ConfigError
 
@@ -37,14 +39,25 @@ def parse_assignments(items: Iterable[str]) -> dict[str, Any]:
     return dict(parse_assignment(item) for item in items)
 
 
-def load_scenario(config_path: str | Path, assignments: Iterable[str] = (), out_dir: str | Path | None = None) -> Config:
+def load_scenario(config_path: str | Path, assignments: Iterable[str] = (), out_dir: str | Path | None = None, *,
+                  replace_outputs: bool = False, writes: bool = True) -> Config:
     """The config at ``config_path`` with ``assignments`` applied and, with ``out_dir``, its outputs moved there.
 
     ``out_dir`` keeps the file names: ``output.path`` becomes
     ``OUT_DIR/<its file name>`` and ``output.mailing_dir`` becomes
-    ``OUT_DIR/<its folder name>``.
+    ``OUT_DIR/<its folder name>``. A what-if (``assignments``) into
+    ``out_dir`` compares with the main run's GeoPackage by default
+    (``Config.what_if_of``).
+
+    Raises ConfigError for ``assignments`` without ``out_dir`` in a run that
+    ``writes``: the what-if would replace the nightly outputs, unless the
+    caller says it should (``replace_outputs``).
     """
     overrides = parse_assignments(assignments)
+    if writes and overrides and out_dir is None and not replace_outputs:
+        raise ConfigError("--set without --out-dir would replace the nightly outputs with a what-if; write it "
+                          "elsewhere with --out-dir DIR, or add --replace-outputs if it should replace them",
+                          key="--set")
     cfg = load_config(config_path, overrides=overrides)
     if out_dir is None:
         return cfg
@@ -54,5 +67,6 @@ def load_scenario(config_path: str | Path, assignments: Iterable[str] = (), out_
         "output.path": str(out / cfg.output.path.name),
         "output.mailing_dir": str(out / cfg.output.mailing_dir.name),
     }
-    return load_config(config_path, overrides=overrides,
-                       origins={"output.path": "--out-dir", "output.mailing_dir": "--out-dir"})
+    moved = load_config(config_path, overrides=overrides,
+                        origins={"output.path": "--out-dir", "output.mailing_dir": "--out-dir"})
+    return replace(moved, what_if_of=cfg.output.path) if cfg.what_if else moved

@@ -410,7 +410,7 @@ def test_no_customer_on_the_dem(world, prior):
     world.zones_path.unlink()
     write_layer(world.zones_path, "zones", {"zone": ["West", "East"]},
                 [shapely.box(X0 + 50_000, Y1 - 1000, X0 + 50_500, Y1), shapely.box(X0 + 50_500, Y1 - 1000, X0 + 51_000, Y1)])
-    assert_bad(run(world), str(world.dem_path), "no customer falls within the terrain", "check the CRS")
+    assert_bad(run(world), str(world.dem_path), "only 0 of 20 located customers lie on the terrain", "check the CRS")
     unchanged(world, prior)
 
 

@@ -5,18 +5,19 @@ from __future__ import annotations
 import json
 import shutil
 
+import geopandas as gpd
 import pandas as pd
 import pytest
 import shapely
 from hypothesis import given
 from hypothesis import strategies as st
 
-from geopress import changes
+from geopress import changes, nightly
 from geopress.classify import FLAGGED_LAYERS, STATUSES
 from geopress.tables import mailing_lists
 
 from conftest import customer_records
-from nightly_support import assert_bad, good_run, run
+from nightly_support import assert_bad, good_run, run, snapshot
 
 
 def table(prev: dict, cur: dict) -> pd.DataFrame:
@@ -161,15 +162,21 @@ def test_second_run_reports_exactly_the_changes_made(world, changed):
     expected, removed_row = changed
     res = run(world)
     assert res.exit_code == 0, res.stderr
-    layer = world.read("changes")
+    # the current customers' changes are a view of the customers layer; the removed one has a layer of its own
+    layer, removed = world.read("changes"), world.read("removed_customers")
     got = {r.account: (r.previous_status, r.status, r.change) for r in layer.itertuples()}
+    got |= {r.account: (r.previous_status, None, r.change) for r in removed.itertuples()}
     got = {k: tuple(None if pd.isna(v) else v for v in t) for k, t in got.items()}
     assert got == expected
-    gone = layer[layer["change"] == "removed"].iloc[0]
+    gone = removed.iloc[0]
+    assert len(removed) == 1 and gone["change"] == "removed"
     assert gone.geometry.equals(removed_row.geometry) and gone["zone"] == removed_row["zone"]
+    # the changes layer is a view: the same rows, fids and values as in customers
+    cust = world.read()
+    assert set(layer["account"]) == set(cust.loc[cust["change"] != "unchanged", "account"])
 
     info = json.loads((world.out.parent / "run.json").read_text())
-    assert info["changes"]["baseline"] == str(world.out)
+    assert info["changes"]["baseline"] == str(nightly.baseline_link(world.out))
     assert info["changes"]["counts"] == {"new_customer": 1, "removed": 1, "unchanged": 16, "newly_flagged": 1,
                                          "cleared": 1, "status_changed": 1}
     assert info["changes"]["newly_in_status"] == {"high": 1, "low": 1, "above_hgl": 1, "low_upper_floors": 0}
@@ -206,7 +213,7 @@ def test_baseline_option_compares_with_a_chosen_geopackage(world, changed):
     assert run(world).exit_code == 0  # second run: the changes
     res = run(world, "--baseline", saved)  # third run: still against the first
     assert res.exit_code == 0, res.stderr
-    assert set(world.read("changes")["account"]) == set(expected)
+    assert set(world.read("changes")["account"]) | set(world.read("removed_customers")["account"]) == set(expected)
     info = json.loads((world.out.parent / "run.json").read_text())
     assert info["changes"]["baseline"] == str(saved)
 
@@ -240,19 +247,47 @@ def test_previous_output_without_the_id_field(world):
     world.customers_path.unlink()
     cust.to_file(world.customers_path, layer="parcels", driver="GPKG")
     world.config_path.write_text(world.config_path.read_text().replace('id_field = "account"', 'id_field = "meter"'))
-    assert_bad(run(world), str(world.out), "no field 'meter'", "output.path", "move the file away")
+    # the baseline is the last accepted run, kept beside the output
+    assert_bad(run(world), str(nightly.baseline_link(world.out)), "no field 'meter'", "output.path", "move the file away")
 
 
-def test_most_customers_missing_warns(world):
-    good_run(world)
+def test_a_truncated_export_is_refused_and_never_becomes_the_baseline(world):
+    prior = good_run(world)
     first = world.read()
-    keep = first.iloc[:5]
+    keep = first.iloc[:15]  # 5 of 20 customers gone: 25 %, more than the default 20 %
     rewrite(world, keep["account"].tolist(), list(shapely.get_x(keep.geometry.to_numpy())),
             list(shapely.get_y(keep.geometry.to_numpy())))
-    res = run(world)
+    assert_bad(run(world), str(world.customers_path), "5 of the baseline's 20 customers (25.0 %) are missing",
+               "output.max_drop_percent (20 %)", "--accept-drop")
+    assert snapshot(world.out.parent) == prior
+    # the export comes back whole the next night: compared with the last accepted run, nobody is new
+    rewrite(world, first["account"].tolist(), list(shapely.get_x(first.geometry.to_numpy())),
+            list(shapely.get_y(first.geometry.to_numpy())))
+    assert run(world).exit_code == 0
+    for name in FLAGGED_LAYERS.values():
+        assert csv_accounts(world, f"new_{name}") == []
+
+
+def test_an_accepted_drop_becomes_the_baseline(world):
+    good_run(world)
+    first = world.read()
+    keep = first.iloc[:10]
+    rewrite(world, keep["account"].tolist(), list(shapely.get_x(keep.geometry.to_numpy())),
+            list(shapely.get_y(keep.geometry.to_numpy())))
+    res = run(world, "--accept-drop")
     assert res.exit_code == 0, res.stderr
-    assert any(line.startswith("warning:") and "15 of the baseline's 20 customers are missing" in line
-               for line in res.stderr.splitlines()), res.stderr
+    assert len(world.read("removed_customers")) == 10
+    assert len(gpd.read_file(nightly.baseline_link(world.out), layer="customers")) == 10
+
+
+def test_the_drop_threshold_is_configurable(world):
+    good_run(world)
+    first = world.read()
+    keep = first.iloc[:15]
+    rewrite(world, keep["account"].tolist(), list(shapely.get_x(keep.geometry.to_numpy())),
+            list(shapely.get_y(keep.geometry.to_numpy())))
+    world.config_path.write_text(world.config_path.read_text() + "max_drop_percent = 30\n")
+    assert run(world).exit_code == 0
 
 
 def test_log_file_ends_each_run_with_one_summary_line(world, changed):
@@ -275,4 +310,4 @@ def test_log_file_ends_each_run_with_one_summary_line(world, changed):
 def test_run_prints_what_changed(world, changed):
     res = run(world)
     assert res.exit_code == 0, res.stderr
-    assert f"changes since {world.out}: new_customer 1, removed 1, newly_flagged 1, cleared 1, status_changed 1" in res.stdout
+    assert f"changes since {nightly.baseline_link(world.out)}: new_customer 1, removed 1, newly_flagged 1, cleared 1, status_changed 1" in res.stdout

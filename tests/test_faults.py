@@ -1,13 +1,13 @@
 """Faults injected at each write step: earlier outputs stay byte-identical, no temporary file survives.
 
-The write steps of a run, in order: the GeoPackage's customer layers (by a
-child process started as soon as the customers are final, while the rest is
-computed), each mailing list CSV, the report, the GeoPackage's other layers,
-run.json (all into temporary files), the commit journal, then the renames
-(each earlier output to its backup, each new file into place, run.json
-last). Each is failed with an OSError (ENOSPC: disk full), with an
-exception, and by killing the process (SIGKILL, from a small driver run in
-a subprocess).
+The write steps of a run, in order: the GeoPackage's customer layers (by the
+run's child process, while the mailing lists and the report are staged), each
+mailing list CSV, the report, the GeoPackage's other layers, the baseline's
+link, run.json (all into temporary files), the commit journal, then the
+renames (each earlier output to its backup, each new file into place,
+run.json last). Each is failed with an OSError (ENOSPC: disk full), with an
+exception, and by killing the process (SIGKILL, from a small driver run in a
+subprocess).
 """
 
 from __future__ import annotations
@@ -23,15 +23,16 @@ from pathlib import Path
 
 import pytest
 
-from geopress import forked, nightly, planning
+import faults_support
+from geopress import nightly, planning, runner
 from geopress.io import write as write_io
 
 from nightly_support import error_line, good_run, run, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
-#: renames in a second run's commit: the journal, then a backup and a new file for each of 11 outputs
-#: (GeoPackage, 4 mailing lists, 4 new_* lists, report.html, run.json).
-COMMIT_RENAMES = 1 + 2 * 11
+#: renames in a second run's commit: the journal, then a backup and a new file for each of 12 outputs
+#: (GeoPackage, 4 mailing lists, 4 new_* lists, report.html, the baseline's link, run.json).
+COMMIT_RENAMES = 1 + 2 * 12
 
 
 def disk_full(*args, **kwargs):
@@ -50,14 +51,23 @@ def prior(world):
     return snap
 
 
+#: the one hidden file a run keeps: the last accepted run's GeoPackage (geopress.nightly.baseline_link)
+BASELINE = nightly.baseline_link(Path("pressure.gpkg")).name
+
+
+def leftover(name: str) -> bool:
+    """A hidden file that is not an output: a temporary, a lock or a journal of a run."""
+    return Path(name).name.startswith(".") and Path(name).name != BASELINE
+
+
 def visible(snap: dict[str, bytes]) -> dict[str, bytes]:
-    return {k: v for k, v in snap.items() if not Path(k).name.startswith(".")}
+    return {k: v for k, v in snap.items() if not leftover(k)}
 
 
 def then_a_good_run_leaves_no_temporary(world) -> None:
     res = run(world)
     assert res.exit_code == 0, res.stderr
-    assert not [k for k in snapshot(world.out.parent) if Path(k).name.startswith(".")]
+    assert not [k for k in snapshot(world.out.parent) if leftover(k)]
 
 
 def fail_on_call(real, n: int, fault):
@@ -84,6 +94,7 @@ def after_partial_write(real, fault):
     return wrapper
 
 
+#: the writers of the run's own process: the GeoPackage's later layers, the CSVs, run.json
 WRITERS = [("write_geopackage", 1), ("write_csv", 1), ("write_csv", 8), ("write_json", 1)]
 
 
@@ -104,24 +115,24 @@ def test_disk_full_after_a_partial_write(world, prior, monkeypatch, writer):
     assert snapshot(world.out.parent) == prior
 
 
-def killed(*args):
-    os.kill(os.getpid(), signal.SIGKILL)
-
-
-# The GeoPackage's layers are written in a forked child process: a fault there surfaces in the run.
-# Forked children: the service band is computed while the customers are sampled, the GeoPackage's
-# layers are written while the rest is made. A fault in either surfaces in the run.
+# The child process: the service band is computed while the customers are sampled, the GeoPackage's
+# customer layers are written while the rest is staged. A fault in either surfaces in the run.
 @pytest.mark.parametrize("owner, name, fault, code, text", [
-    pytest.param(write_io, "_write_layers", disk_full, 2, "No space left on device", id="writer-disk-full"),
-    pytest.param(write_io, "_write_layers", bug, 1, "injected fault", id="writer-bug"),
-    pytest.param(write_io, "_write_layers", killed, 2, "the writer process was killed by signal 9", id="writer-killed"),
-    pytest.param(planning, "service_bands", bug, 1, "injected fault", id="band-bug"),
-    pytest.param(planning, "service_bands", killed, 2, "the service band process was killed by signal 9",
-                 id="band-killed"),
+    pytest.param(write_io, "write_in_child", faults_support.disk_full, 2, "No space left on device",
+                 id="writer-disk-full"),
+    pytest.param(write_io, "write_in_child", faults_support.sqlite_full, 2,
+                 "cannot write the GeoPackage (database or disk is full)", id="writer-sqlite-full"),
+    pytest.param(write_io, "write_in_child", faults_support.output_error, 2, "cannot write (injected)",
+                 id="writer-output-error"),
+    pytest.param(write_io, "write_in_child", faults_support.bug, 1, "injected fault", id="writer-bug"),
+    pytest.param(write_io, "write_in_child", faults_support.killed, 2, "the writer process was killed by signal 9",
+                 id="writer-killed"),
+    pytest.param(planning, "service_bands", faults_support.bug, 1, "injected fault", id="band-bug"),
+    pytest.param(planning, "service_bands", faults_support.killed, 2,
+                 "the service band process was killed by signal 9", id="band-killed"),
 ])
-def test_fault_in_a_child_process(world, prior, monkeypatch, owner, name, fault, code, text):
-    parent, real = os.getpid(), getattr(owner, name)
-    monkeypatch.setattr(owner, name, lambda *a: fault() if os.getpid() != parent else real(*a))
+def test_fault_in_the_child_process(world, prior, monkeypatch, owner, name, fault, code, text):
+    monkeypatch.setattr(owner, name, fault)
     assert text in error_line(run(world), code)
     assert snapshot(world.out.parent) == prior
     monkeypatch.undo()
@@ -129,18 +140,17 @@ def test_fault_in_a_child_process(world, prior, monkeypatch, owner, name, fault,
 
 
 def test_a_failure_while_the_writer_process_works_stops_it(world, prior, monkeypatch):
-    # the GeoPackage writer starts before the baseline comparison: a fault there kills and reaps it
-    # and removes its temporary file at once, not only at the next run
-    started = []
-    real_start = forked.start
-    monkeypatch.setattr(forked, "start", lambda *a, **k: started.append(real_start(*a, **k)) or started[-1])
-    monkeypatch.setattr(nightly, "track", bug)
+    # the writer's job is still running when a fault strikes here: the child is stopped and reaped,
+    # its temporary files removed at once, not only at the next run
+    workers = []
+    real = runner.Worker
+    monkeypatch.setattr(runner, "Worker", lambda **kw: workers.append(real(**kw)) or workers[-1])
+    monkeypatch.setattr(write_io, "write_in_child", faults_support.hang_and_tell)
+    monkeypatch.setattr(write_io, "write_csv", bug)
     assert "injected fault" in error_line(run(world), 1)
-    assert [job.what for job in started] == ["service band", "writer"]
-    for job in started:
-        assert job.done
-        with pytest.raises(ProcessLookupError):
-            os.kill(job.pid, 0)  # reaped: not even a zombie
+    assert len(workers) == 1
+    with pytest.raises(ProcessLookupError):
+        os.kill(workers[0].pid, 0)  # reaped: not even a zombie
     assert snapshot(world.out.parent) == prior
 
 
@@ -190,6 +200,8 @@ DRIVER = textwrap.dedent("""\
     import os, signal, sys
     import geopress.io.write as w
     target, n, when = sys.argv[1], int(sys.argv[2]), sys.argv[3]
+    if __name__ != "__main__":
+        raise SystemExit  # imported by the run's child process
     owner = os if target == "replace" else w
     real = getattr(owner, target)
     calls = [0]
@@ -213,14 +225,14 @@ def killed_run(world, target: str, n: int, when: str) -> None:
 
 
 @pytest.mark.parametrize("target, n, when", [
-    ("write_geopackage", 1, "after"),
+    ("write_geopackage", 1, "after"),  # the later layers, written in the run's own process
     ("write_csv", 3, "before"),
     ("write_json", 1, "after"),
 ])
 def test_killed_while_writing(world, prior, target, n, when):
     killed_run(world, target, n, when)
     assert visible(snapshot(world.out.parent)) == visible(prior)  # the earlier outputs, untouched
-    assert any(Path(k).name.startswith(".") for k in snapshot(world.out.parent))  # the killed run's leftovers
+    assert any(leftover(k) for k in snapshot(world.out.parent))  # the killed run's leftovers
     then_a_good_run_leaves_no_temporary(world)
 
 

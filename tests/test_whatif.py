@@ -49,7 +49,7 @@ def test_out_dir_keeps_file_names_and_records_overrides(world, tmp_path):
 
 
 def test_whatif_run_and_compare_from_the_command_line(world, tmp_path):
-    base = invoke("-q", "run", str(world.config_path), "--set", "output.report=false")
+    base = invoke("-q", "run", str(world.config_path), "--set", "output.report=false", "--replace-outputs")
     assert base.exit_code == 0, base.output
     before = world.out.read_bytes()
     scen = tmp_path / "scen"
@@ -84,14 +84,14 @@ def test_whatif_run_and_compare_from_the_command_line(world, tmp_path):
 
 
 def test_set_naming_an_unknown_zone_is_a_config_error(world):
-    res = CliRunner().invoke(cli, ["run", str(world.config_path), "--set", "zones.source.Nowhere.high_water_ft=1"],
-                             obj={})
+    res = CliRunner().invoke(cli, ["run", str(world.config_path), "--set", "zones.source.Nowhere.high_water_ft=1",
+                                   "--out-dir", str(world.root / "scen")], obj={})
     assert res.exit_code == 2
     assert "no [[zones.source]] with zone = 'Nowhere'" in res.output
 
 
 def test_compare_of_a_run_with_itself_is_empty(world, tmp_path):
-    geopress.run(load_scenario(world.config_path, ["output.report=false"]))
+    geopress.run(load_scenario(world.config_path, ["output.report=false"], replace_outputs=True))
     comp = geopress.pipeline.compare(world.out, world.out, out=tmp_path / "same.gpkg")
     assert len(comp.differences) == 0 and len(comp.by_zone) == 0
     assert len(gpd.read_file(tmp_path / "same.gpkg", layer="status_differences")) == 0
@@ -103,8 +103,8 @@ def test_compare_rejects_a_file_that_is_not_a_run(world, tmp_path):
 
 
 def test_si_units_convert_the_mailing_lists(world, tmp_path):
-    us = geopress.run(load_scenario(world.config_path, ["output.report=false"]), write=False)
-    si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"]), write=False)
+    us = geopress.run(load_scenario(world.config_path, ["output.report=false"], replace_outputs=True), write=False)
+    si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"], replace_outputs=True), write=False)
     for name, df in us.mailing.items():
         other = si.mailing[name]
         assert "worst_psi" in df.columns and "worst_kpa" in other.columns and "worst_psi" not in other.columns
@@ -126,7 +126,7 @@ def test_si_units_convert_the_mailing_lists(world, tmp_path):
 
 def test_si_units_convert_the_new_mailing_lists_too(world):
     # a first run: every flagged customer is new, so each new_* list is the run's list, in the same units
-    si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"]), write=False)
+    si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"], replace_outputs=True), write=False)
     assert si.new_mailing
     for name, df in si.new_mailing.items():
         assert "worst_kpa" in df.columns and "worst_psi" not in df.columns
@@ -135,13 +135,13 @@ def test_si_units_convert_the_new_mailing_lists_too(world):
 
 def test_units_are_validated(world):
     with pytest.raises(ConfigError, match="output.units"):
-        load_scenario(world.config_path, ["output.units=metric"])
+        load_scenario(world.config_path, ["output.units=metric"], replace_outputs=True)
     with pytest.raises(ConfigError, match="output.report"):
-        load_scenario(world.config_path, ['output.report="yes"'])
+        load_scenario(world.config_path, ['output.report="yes"'], replace_outputs=True)
 
 
 def test_run_writes_the_planning_layers(world):
-    geopress.run(load_scenario(world.config_path, ["output.report=false"]))
+    geopress.run(load_scenario(world.config_path, ["output.report=false"], replace_outputs=True))
     bands = world.read("service_band").set_index("zone")
     limits = world.read("band_limits")
     summary = world.read("zone_summary").set_index("zone")
@@ -170,7 +170,7 @@ def test_band_from_two_rasters_matches_one(world):
 
     from conftest import write_raster
 
-    geopress.run(load_scenario(world.config_path, ["output.report=false"]))
+    geopress.run(load_scenario(world.config_path, ["output.report=false"], replace_outputs=True))
     one = world.read("service_band").set_index("zone")
     with rasterio.open(world.dem_path) as src:
         dem = src.read(1)
@@ -178,7 +178,8 @@ def test_band_from_two_rasters_matches_one(world):
     # the seam at column 15 (x = 500150 m) cuts the West band (x = 500000 .. 500224 m)
     write_raster(world.root / "dem_a.tif", dem[:, :15].copy(), t)
     write_raster(world.root / "dem_b.tif", dem[:, 15:].copy(), t @ Affine.translation(15, 0))
-    geopress.run(load_scenario(world.config_path, ["output.report=false", 'terrain.paths=["dem_a.tif", "dem_b.tif"]']))
+    geopress.run(load_scenario(world.config_path, ["output.report=false", 'terrain.paths=["dem_a.tif", "dem_b.tif"]'],
+                               replace_outputs=True))
     two = world.read("service_band").set_index("zone")
     info = json.loads((world.out.parent / "run.json").read_text())
     west = next(z for z in info["service_band"] if z["zone"] == "West")

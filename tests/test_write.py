@@ -35,9 +35,9 @@ def test_views_read_as_the_filtered_frames(tmp_path, frame):
     frame.loc[3, "status"] = "it's"
     frame.insert(4, "ogc_fid", np.arange(len(frame)) * 10)
     status = frame["status"].to_numpy(dtype=object)
-    layers = {"customers": frame, "high": write_io.View("customers", "status", "high"),
-              "quoted": write_io.View("customers", "status", "it's"),
-              "none": write_io.View("customers", "status", "nothing")}
+    layers = {"customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",)),
+              "quoted": write_io.view_of("customers", frame, "status", ("it's",)),
+              "none": write_io.view_of("customers", frame, "status", ("nothing",))}
     out = tmp_path / "out.gpkg"
     write_io._write_layers(out, layers)
     fids = pyogrio.read_dataframe(out, layer="customers", fid_as_index=True).index.to_numpy()
@@ -61,7 +61,7 @@ def test_views_read_as_the_filtered_frames(tmp_path, frame):
 
 def test_a_view_is_filtered_by_its_base_layers_spatial_index(tmp_path, frame):
     out = tmp_path / "out.gpkg"
-    write_io._write_layers(out, {"customers": frame, "high": write_io.View("customers", "status", "high")})
+    write_io._write_layers(out, {"customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",))})
     bbox = (200.0, 200.0, 800.0, 800.0)
     got = pyogrio.read_dataframe(out, layer="high", bbox=bbox)
     x, y = frame.geometry.x.to_numpy(), frame.geometry.y.to_numpy()
@@ -79,10 +79,53 @@ def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
     read, wkb = vector_io.read_layer(source, "customers", list(frame.columns.drop("geometry")))
     for layers, out in (({"customers": read}, tmp_path / "encoded-here.gpkg"),
                         ({"customers": write_io.Encoded(read, wkb)}, tmp_path / "passed-through.gpkg")):
-        write_io._write_layers(out, {**layers, "high": write_io.View("customers", "status", "high")})
+        write_io._write_layers(out, {**layers, "high": write_io.view_of("customers", frame, "status", ("high",))})
     for name in ("customers", "high"):
         here = pyogrio.read_dataframe(tmp_path / "encoded-here.gpkg", layer=name)
         through = pyogrio.read_dataframe(tmp_path / "passed-through.gpkg", layer=name)
         pd.testing.assert_frame_equal(through, here)
         assert pyogrio.read_info(tmp_path / "passed-through.gpkg", layer=name)["geometry_type"] == "Point"
     assert shapely.equals(through.geometry.to_numpy(), frame.geometry[frame["status"] == "high"].to_numpy()).all()
+
+
+def test_a_view_of_several_values_and_its_extent(tmp_path, frame):
+    out = tmp_path / "out.gpkg"
+    write_io.write_geopackage(out, {"customers": frame,
+                                    "flagged": write_io.view_of("customers", frame, "status", ("high", "low"))})
+    got = pyogrio.read_dataframe(out, layer="flagged")
+    assert sorted(got["account"]) == sorted(frame.loc[frame["status"].isin(["high", "low"]), "account"])
+
+
+def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
+    # the writer process gets the customers as an Arrow file it maps: the same layer as the frame gives
+    table = write_io.arrow_file(tmp_path / "customers.arrow", frame)
+    direct, mapped = tmp_path / "direct.gpkg", tmp_path / "mapped.gpkg"
+    view = write_io.view_of("customers", frame, "status", ("high",))
+    write_io.write_geopackage(direct, {"customers": frame, "high": view})
+    write_io.write_geopackage(mapped, {"customers": table, "high": view})
+    for name in ("customers", "high"):
+        a = pyogrio.read_dataframe(direct, layer=name, fid_as_index=True)
+        b = pyogrio.read_dataframe(mapped, layer=name, fid_as_index=True)
+        pd.testing.assert_frame_equal(a, b)
+    # a view selecting nothing is an empty point layer of the same fields
+    none = write_io.view_of("customers", frame, "status", ("nothing",))
+    write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": table, "none": none})
+    info = pyogrio.read_info(tmp_path / "none.gpkg", layer="none")
+    assert info["features"] == 0 and info["geometry_type"] == "Point"
+    assert list(info["fields"]) == list(pyogrio.read_info(direct, layer="customers")["fields"])
+
+
+def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch):
+    from geopress.errors import OutputError
+
+    def full(*args):
+        raise sqlite3.OperationalError("database or disk is full")
+
+    monkeypatch.setattr(write_io, "_create_view", full)
+    with pytest.raises(OutputError, match=r"cannot write the GeoPackage \(database or disk is full\)") as info:
+        write_io.write_geopackage(tmp_path / "out.gpkg", {
+            "customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",))})
+    assert info.value.path == str(tmp_path / "out.gpkg")
+    # GDAL's own errors too: SQLite cannot create the file where its folder is missing
+    with pytest.raises(OutputError, match=r"cannot write the GeoPackage \(sqlite3_open"):
+        write_io.write_geopackage(tmp_path / "no-folder" / "out.gpkg", {"t": pd.DataFrame({"a": [1]})})

@@ -51,8 +51,9 @@ class OutputLock:
     empty, so a run that fails leaves nothing behind.
     """
 
-    def __init__(self, output: Path):
+    def __init__(self, output: Path, key: str = "output.path"):
         self.output = output
+        self.key = key
         self.path = lock_path(output)
         self._fd: int | None = None
         self._created: list[Path] = []
@@ -66,8 +67,8 @@ class OutputLock:
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise OutputError(f"cannot create folder ({exc.strerror}) for output.path; choose a writable location",
-                              path=self.path.parent, key="output.path") from exc
+            raise OutputError(f"cannot create folder ({exc.strerror}) for {self.key}; choose a writable location",
+                              path=self.path.parent, key=self.key) from exc
         self._created = missing
 
     def acquire(self) -> "OutputLock":
@@ -78,7 +79,7 @@ class OutputLock:
             except OSError as exc:
                 self._remove_created()
                 raise OutputError(f"cannot create the lock file ({exc.strerror}); choose a writable output folder",
-                                  path=self.path, key="output.path") from exc
+                                  path=self.path, key=self.key) from exc
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except OSError as exc:
@@ -88,7 +89,7 @@ class OutputLock:
                     raise
                 raise LockError(
                     f"another run holds the lock ({_holder(text)}); wait for it to finish",
-                    path=self.path, key="output.path",
+                    path=self.path, key=self.key,
                 ) from None
             # The holder may have removed the file between our open and flock: lock the file that is there.
             try:

@@ -19,9 +19,11 @@ disk cannot stop a rollback.
 
 from __future__ import annotations
 
+import errno
 import json
 import logging
 import os
+import shutil
 import sqlite3
 import tempfile
 import time
@@ -34,10 +36,11 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.ipc
 import pyogrio
+import pyogrio.errors
 import shapely
 
-from .. import forked
 from ..errors import OutputError
 
 log = logging.getLogger(__name__)
@@ -79,7 +82,7 @@ class Staging:
 
     def __init__(self, journal_for: Path | None = None) -> None:
         self._pending: list[tuple[Path, Path]] = []
-        self._children: list[forked.Forked] = []
+        self._scratch: list[Path] = []
         self.committed: list[Path] = []
         self.journal_for = journal_for
         self.journal = None if journal_for is None else journal_path(journal_for)
@@ -95,19 +98,35 @@ class Staging:
         """Stage ``target`` by calling ``writer(tmp_path)``; OSErrors become OutputError."""
         self._write_tmp(target, self.temp_for(target), writer)
 
-    def start(self, target: Path, starter: Callable[[Path], forked.Forked]) -> "Started":
-        """Stage ``target`` by a writer that works in a child process: ``starter(tmp_path)``
-        starts it and returns at once, so the other outputs can be made meanwhile; the
-        temporary file keeps its place in the commit order. Finish it with
-        :meth:`Started.finish` before committing; leaving the block kills it if still running."""
+    def scratch(self, target: Path, suffix: str) -> Path:
+        """A fresh temporary path beside ``target`` for a file no output keeps (e.g. a table handed to a
+        child process); removed when the block ends, committed or not, and by the next run if killed."""
+        path = _fresh_name(target, "scratch-").with_suffix(suffix)
+        self._scratch.append(path)
+        return path
+
+    def link(self, staged: Path, target: Path) -> None:
+        """Stage ``target`` as the same file as the staged temporary ``staged`` (a hard link, so no copy;
+        a copy where the file system has no hard links), renamed into place with the others."""
         tmp = self.temp_for(target)
-        job = self._write_tmp(target, tmp, starter)
-        self._children.append(job)
-        return Started(self, target, tmp, job)
+        try:
+            os.link(staged, tmp)
+        except OSError as exc:
+            if exc.errno not in (errno.EPERM, errno.EXDEV, errno.EOPNOTSUPP, errno.EMLINK):
+                raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions",
+                                  path=target) from exc
+            self._write_tmp(target, tmp, lambda t: shutil.copyfile(staged, t))
 
     def _write_tmp(self, target: Path, tmp: Path, writer: Callable[[Path], Any]) -> Any:
         try:
             return writer(tmp)
+        except OSError as exc:
+            raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions", path=target) from exc
+
+    def wait(self, target: Path, result: Callable[[], Any]) -> Any:
+        """The value of ``result()``, a child's work on ``target``'s temporary file; OSErrors become OutputError."""
+        try:
+            return result()
         except OSError as exc:
             raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions", path=target) from exc
 
@@ -149,33 +168,19 @@ class Staging:
         self._pending.clear()
 
     def discard(self) -> None:
-        for job in self._children:
-            job.cancel()  # before its temporary file is removed
-        for tmp, _ in self._pending:
+        """Remove every temporary file not committed, and the scratch files. A child process writing one
+        must have been stopped first (the pipeline's Worker closes before its Staging)."""
+        for tmp in [*(t for t, _ in self._pending), *self._scratch]:
             for p in [tmp, *tmp.parent.glob(glob_escape(tmp.name) + "*")]:
                 _unlink(p)  # with what a writer put beside it (e.g. a -journal file)
         self._pending.clear()
+        self._scratch.clear()
 
     def __enter__(self) -> "Staging":
         return self
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.discard()
-
-
-class Started:
-    """An output being written by a child process (see :meth:`Staging.start`)."""
-
-    def __init__(self, stage: Staging, target: Path, tmp: Path, job: forked.Forked):
-        self.stage, self.target, self.tmp, self.job = stage, target, tmp, job
-
-    def finish(self) -> Any:
-        """Wait for the child and return its result (its OSErrors become OutputError)."""
-        return self.stage._write_tmp(self.target, self.tmp, lambda tmp: self.job.result())
-
-    def add(self, writer: Callable[[Path], Any]) -> Any:
-        """Once finished, add to the file: return ``writer(tmp_path)`` (OSErrors become OutputError)."""
-        return self.stage._write_tmp(self.target, self.tmp, writer)
 
 
 def _fresh_name(target: Path, tag: str) -> Path:
@@ -241,17 +246,30 @@ GPKG_CACHE_MB = 128
 
 @dataclass(frozen=True)
 class View:
-    """A layer of the rows of an earlier point layer (named ``of``) whose ``column`` equals ``value``,
-    written as an SQL view over that layer and registered as a feature layer (the GeoPackage
-    standard lets a ``gpkg_contents`` row name a table or a view; from memory).
+    """A layer of the rows of an earlier point layer (named ``of``) whose ``column`` holds one of
+    ``values``, written as an SQL view over that layer and registered as a feature layer (the
+    GeoPackage standard lets a ``gpkg_contents`` row name a table or a view; from memory).
 
     Nothing is copied: GDAL reads the view with the base layer's spatial index, and a
-    feature's fid in the view is its fid in the base layer.
+    feature's fid in the view is its fid in the base layer. ``extent`` (min x, min y, max x,
+    max y of the rows selected, None for each when none has a geometry) goes into
+    ``gpkg_contents``; ``rows`` is how many rows it selects (:func:`view_of` counts both).
     """
 
     of: str
     column: str
-    value: str
+    values: tuple[str, ...]
+    rows: int
+    extent: tuple[float | None, float | None, float | None, float | None]
+
+
+def view_of(of: str, frame: gpd.GeoDataFrame, column: str, values: tuple[str, ...]) -> View:
+    """The :class:`View` of the rows of ``frame`` (written as layer ``of``) whose ``column`` is in ``values``."""
+    match = frame[column].isin(values).to_numpy(dtype=bool)
+    geoms = frame.geometry.to_numpy()[match]
+    drawn = geoms[~(shapely.is_missing(geoms) | shapely.is_empty(geoms))]
+    extent = tuple(shapely.total_bounds(drawn).tolist()) if drawn.size else (None,) * 4
+    return View(of=of, column=column, values=tuple(values), rows=int(match.sum()), extent=extent)
 
 
 @dataclass(frozen=True)
@@ -264,31 +282,60 @@ class Encoded:
     wkb: pa.ChunkedArray | pa.Array
 
 
-#: a layer to write: a frame, a point layer with its WKB, or a view of an earlier point layer
-Layer = pd.DataFrame | Encoded | View
+@dataclass(frozen=True)
+class ArrowFile:
+    """A point layer in an Arrow IPC file (WKB geometries in column ``geometry``, CRS ``crs``), which a
+    writer in another process maps into memory instead of receiving the rows (see
+    :func:`arrow_file`)."""
+
+    path: Path
+    geometry: str
+    crs: str | None
 
 
-def start_geopackage(path: Path, layers: Mapping[str, Layer]) -> forked.Forked:
-    """Start writing each frame as a layer of ``path`` (GeoDataFrames with a spatial index,
-    others as plain tables) in a forked child process, and return at once.
+#: a layer to write: a frame, a point layer with its WKB or in an Arrow file, or a view of an earlier point layer
+Layer = pd.DataFrame | Encoded | ArrowFile | View
 
-    The child shares the frames with this process copy-on-write, so nothing
-    is serialised, and pyogrio (which holds the GIL while it converts and
-    writes) does not stop this process. ``.result()`` waits, raises here
-    whatever the child raised, and returns the seconds each layer took. A
-    path that already holds a GeoPackage gets the layers added.
-    """
-    return forked.start(_write_geopackage, path, layers, what="writer", path=path)
+
+def arrow_file(path: Path, layer: Encoded | gpd.GeoDataFrame) -> ArrowFile:
+    """Write the point layer ``layer`` as an Arrow IPC file at ``path`` (its geometries as WKB, passed
+    through when already encoded) and return it as an :class:`ArrowFile` layer."""
+    encoded = layer if isinstance(layer, Encoded) else Encoded(layer, pa.array(shapely.to_wkb(
+        layer.geometry.to_numpy()), type=pa.binary()))
+    table, geometry, crs = _point_table(encoded)
+    try:
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as out:
+            out.write_table(table)
+    except pa.ArrowIOError as exc:  # a full disk, say
+        raise OSError(errno.EIO, str(exc)) from exc
+    return ArrowFile(path=path, geometry=geometry, crs=crs)
 
 
 def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
-    """Like :func:`start_geopackage`, waiting for the child."""
-    return start_geopackage(path, layers).result()
+    """Write each layer into the GeoPackage at ``path`` (created, or added to), in order, and return the
+    seconds each took. GeoDataFrames of points and point layers get the type "Point" and a spatial
+    index, other GeoDataFrames a spatial index, other frames are plain tables; views select from an
+    earlier point layer.
+
+    Every failure to write is an :class:`~geopress.errors.OutputError` naming ``path``: the file
+    system's (a full disk, permissions) and those GDAL and SQLite report.
+    """
+    try:
+        return _write_layers(path, layers)
+    except OSError as exc:
+        raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions", path=path) from exc
+    except (sqlite3.Error, pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError, pyogrio.errors.FieldError,
+            pyogrio.errors.GeometryError, pyogrio.errors.CRSError) as exc:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise OutputError(f"cannot write the GeoPackage ({first}); check free space and permissions",
+                          path=path) from exc
 
 
-def _write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
-    pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})  # in the child only
-    return _write_layers(path, layers)
+def write_in_child(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
+    """:func:`write_geopackage` as the writer process's job (:mod:`geopress.runner`), with a larger
+    SQLite page cache (:data:`GPKG_CACHE_MB`) in that process only."""
+    pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})
+    return write_geopackage(path, layers)
 
 
 #: shapely.get_type_id of a missing geometry and of a Point
@@ -296,45 +343,61 @@ MISSING, POINT = -1, 0
 
 
 def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
-    points: dict[str, Encoded | gpd.GeoDataFrame] = {}  # the point layers written, that views may select from
+    points: dict[str, Encoded | gpd.GeoDataFrame | pa.Table] = {}  # the point layers written, that views select from
     seconds = {}
-    for name, layer in layers.items():
-        t0 = time.perf_counter()
-        if isinstance(layer, View):
-            base = points[layer.of]
-            frame = base.frame if isinstance(base, Encoded) else base
-            match = (frame[layer.column] == layer.value).to_numpy(dtype=bool)
-            if match.any():
-                _create_view(path, name, layer, frame.geometry.to_numpy()[match])
+    maps = []  # the Arrow files mapped, closed once every layer is written
+    try:
+        for name, layer in layers.items():
+            t0 = time.perf_counter()
+            if isinstance(layer, View):
+                if layer.rows:
+                    _create_view(path, name, layer)
+                else:
+                    # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
+                    _write_point_layer(path, name, _no_rows(points[layer.of]))
+            elif isinstance(layer, ArrowFile):
+                source = pa.memory_map(str(layer.path))
+                maps.append(source)
+                table = pa.ipc.open_file(source).read_all()  # zero copy: the pages of the file
+                _write_arrow_points(path, name, table, layer.geometry, layer.crs)
+                points[name] = (table, layer.geometry, layer.crs)
+            elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
+                _write_point_layer(path, name, layer)
+                points[name] = layer
+            elif isinstance(layer, gpd.GeoDataFrame):
+                pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True,
+                                        layer_options={"SPATIAL_INDEX": "YES"})
             else:
-                # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
-                _write_point_layer(path, name, _no_rows(base))
-        elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
-            _write_point_layer(path, name, layer)
-            points[name] = layer
-        elif isinstance(layer, gpd.GeoDataFrame):
-            pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True,
-                                    layer_options={"SPATIAL_INDEX": "YES"})
-        else:
-            pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
-        seconds[name] = round(time.perf_counter() - t0, 4)
+                pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
+            seconds[name] = round(time.perf_counter() - t0, 4)
+    finally:
+        for source in maps:
+            source.close()
     return seconds
 
 
-def _write_point_layer(path: Path, name: str, layer: Encoded | gpd.GeoDataFrame) -> None:
+def _write_arrow_points(path: Path, name: str, table: pa.Table, geometry: str, crs: str | None) -> None:
+    pyogrio.write_arrow(table, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
+                        crs=crs, layer_options={"SPATIAL_INDEX": "YES"})
+
+
+def _write_point_layer(path: Path, name: str, layer) -> None:
     """A point layer, typed "Point" even when empty or all null (else GDAL would type it "Unknown"),
     with its spatial index."""
-    if isinstance(layer, Encoded):
-        table, geometry, crs = _point_table(layer)
-        pyogrio.write_arrow(table, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
-                            crs=crs, layer_options={"SPATIAL_INDEX": "YES"})
+    if isinstance(layer, tuple):  # an Arrow table from an ArrowFile, with its geometry column and CRS
+        _write_arrow_points(path, name, *layer)
+    elif isinstance(layer, Encoded):
+        _write_arrow_points(path, name, *_point_table(layer))
     else:
         pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True, geometry_type="Point",
                                 layer_options={"SPATIAL_INDEX": "YES"})
 
 
-def _no_rows(layer: Encoded | gpd.GeoDataFrame) -> Encoded | gpd.GeoDataFrame:
+def _no_rows(layer):
     """``layer`` without its rows: the same fields and CRS."""
+    if isinstance(layer, tuple):
+        table, geometry, crs = layer
+        return table.slice(0, 0), geometry, crs
     if isinstance(layer, Encoded):
         return Encoded(layer.frame.iloc[:0], layer.wkb.slice(0, 0))
     return layer.iloc[:0]
@@ -345,11 +408,13 @@ def _quoted(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
 
-def _create_view(path: Path, name: str, view: View, geoms: np.ndarray) -> None:
-    """Create ``view`` as layer ``name`` of the GeoPackage at ``path``; ``geoms`` are the geometries
-    of the rows it selects (for the extent recorded in ``gpkg_contents``)."""
-    drawn = geoms[~(shapely.is_missing(geoms) | shapely.is_empty(geoms))]
-    extent = shapely.total_bounds(drawn).tolist() if drawn.size else [None] * 4
+def _text(value: str) -> str:
+    """An SQL string literal."""
+    return "'" + value.replace("'", "''") + "'"
+
+
+def _create_view(path: Path, name: str, view: View) -> None:
+    """Create ``view`` as layer ``name`` of the GeoPackage at ``path``."""
     con = sqlite3.connect(path)
     try:
         with con:  # one transaction: the view is registered whole or not at all
@@ -357,12 +422,12 @@ def _create_view(path: Path, name: str, view: View, geoms: np.ndarray) -> None:
             # fid and filters the view by the base layer's spatial index
             columns = con.execute(f"PRAGMA table_info({_quoted(view.of)})").fetchall()
             selected = ", ".join(_quoted(c[1]) for c in columns)
-            value = "'" + view.value.replace("'", "''") + "'"
+            values = ", ".join(_text(v) for v in view.values)
             con.execute(f"CREATE VIEW {_quoted(name)} AS SELECT {selected} FROM {_quoted(view.of)} "
-                        f"WHERE {_quoted(view.column)} = {value}")
+                        f"WHERE {_quoted(view.column)} IN ({values})")
             con.execute("INSERT INTO gpkg_contents (table_name, data_type, identifier, min_x, min_y, max_x, max_y, srs_id) "
                         "SELECT ?, 'features', ?, ?, ?, ?, ?, srs_id FROM gpkg_contents WHERE table_name = ?",
-                        (name, name, *extent, view.of))
+                        (name, name, *view.extent, view.of))
             con.execute("INSERT INTO gpkg_geometry_columns (table_name, column_name, geometry_type_name, srs_id, z, m) "
                         "SELECT ?, column_name, geometry_type_name, srs_id, z, m FROM gpkg_geometry_columns "
                         "WHERE table_name = ?", (name, view.of))
@@ -375,6 +440,11 @@ def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
     frame = layer.frame
     geometry = frame.geometry.name
     attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
+    # a text column with no value at all (e.g. previous_status on a first run) comes as Arrow's null type,
+    # which GDAL cannot make a field of: it is text
+    for i, f in enumerate(attributes.schema):
+        if pa.types.is_null(f.type):
+            attributes = attributes.set_column(i, f.name, attributes.column(i).cast(pa.large_string()))
     table = attributes.add_column(frame.columns.get_loc(geometry), geometry, layer.wkb)
     return table, geometry, _crs_text(frame.crs)
 
