@@ -206,7 +206,7 @@ def _interactive(status: list[str], counts: dict[str, int]) -> report.Interactiv
         x=np.linspace(0, 100, n), y=np.linspace(0, 100, n), ids=np.array([f"A{i}" for i in range(n)], dtype=object),
         zone=np.array(["Z"] * (n - 1) + [None], dtype=object), ground_ft=np.full(n, 1000.04),
         psi_min=np.full(n, 40.06), psi_max=np.full(n, 50.0), status=np.array(status, dtype=object),
-        reason=np.array(["why"] * n, dtype=object), counts=counts)
+        reason=np.array(["same reason"] * (n - 1) + ["other reason"], dtype=object), counts=counts)
 
 
 def test_interactive_figure_has_each_customers_values_and_says_how_many_it_draws():
@@ -216,7 +216,9 @@ def test_interactive_figure_has_each_customers_values_and_says_how_many_it_draws
     assert [t["meta"] for t in traces] == ["ok", "low", "high"]  # drawing order: flagged above ok
     assert traces[0]["name"] == "ok (2 of 1,000)" and traces[2]["name"] == "high (1)"
     # 1000.04 ft * 0.3048 = 304.8 m; 40.06 psi * 6.894757 = 276.2 kPa (NIST SP 811 factor, secondary)
-    assert traces[2]["customdata"] == [["A2", "Z", "304.8 m", "276.2 kPa", "344.7 kPa", "why"]]
+    assert traces[2]["customdata"] == [["A2", "Z", "304.8 m", "276.2 kPa", "344.7 kPa", 0]]
+    assert fig["reasons"] == ["same reason", "other reason"]  # each distinct sentence once
+    assert fig["reasons"][traces[1]["customdata"][0][5]] == "other reason"
     assert traces[1]["customdata"][0][1] == "none"  # unzoned
     assert all(t["type"] == "scattergl" for t in traces)
     note = report.interactive_note(m)
