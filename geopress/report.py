@@ -151,18 +151,17 @@ def histogram_figure(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criter
     hi_t = float(units.pressure_from_psi(criteria.max_static_psi))
     both = np.concatenate([pmin, pmax, [lo_t, hi_t]])
     bins = np.histogram_bin_edges(both, bins=40)
-    # binned here (no sort), then drawn as one weighted value per bin: the same bars as ax.hist(values, bins=bins)
-    lefts = bins[:-1]
+    # binned here (no sort) and drawn as one outline per histogram: the same bars as ax.hist(values, bins=bins)
     if pmin.size and np.array_equal(pmin, pmax):  # one HGL (PRV, pump): the two histograms coincide
-        ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["bluish_green"],
-                label="pressure at the zone's HGL")
+        ax.stairs(bin_counts(pmin, bins), bins, fill=True, color=OKABE_ITO["bluish_green"],
+                  label="pressure at the zone's HGL")
     else:
         if pmin.size:
-            ax.hist(lefts, bins=bins, weights=bin_counts(pmin, bins), color=OKABE_ITO["blue"], histtype="stepfilled",
-                    alpha=0.5, label="at the low HGL (psi_min), filled")
+            ax.stairs(bin_counts(pmin, bins), bins, fill=True, color=OKABE_ITO["blue"], alpha=0.5,
+                      label="at the low HGL (psi_min), filled")
         if pmax.size:
-            ax.hist(lefts, bins=bins, weights=bin_counts(pmax, bins), color=OKABE_ITO["vermillion"], histtype="step",
-                    linewidth=1.8, label="at the high HGL (psi_max), outline")
+            ax.stairs(bin_counts(pmax, bins), bins, color=OKABE_ITO["vermillion"], linewidth=1.8,
+                      label="at the high HGL (psi_max), outline")
     ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:.4g} {units.pressure}")
     ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:.4g} {units.pressure}")
     ax.yaxis.set_major_locator(MaxNLocator(integer=True))
@@ -172,7 +171,6 @@ def histogram_figure(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criter
     ax.tick_params(labelsize=FONT_PT)
     ax.set_title(f"{zone}: static pressure", fontsize=FONT_PT + 2)
     ax.legend(fontsize=FONT_PT, loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2, frameon=False)
-    fig.tight_layout()
     return fig
 
 
