@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import geopandas as gpd
 import numpy as np
@@ -29,6 +29,9 @@ from .config import Config
 from .io import raster as raster_io
 from .io.vector import Zones
 from .pressure import M_PER_FT, PrvSource, PumpSource, TankSource
+
+if TYPE_CHECKING:  # the report extra is optional: report_html imports it when it runs
+    from . import report
 
 log = logging.getLogger(__name__)
 

@@ -73,8 +73,6 @@ STATUS_STYLE: dict[str, StatusStyle] = {
     "above_hgl": StatusStyle(OKABE_ITO["reddish_purple"], "D", "above HGL: no gravity service", "diamond", 36.0, "◆"),
     "no_geometry": StatusStyle(OKABE_ITO["yellow"], "*", "no geometry: location unknown, on no map", "star", 36.0, "★"),
 }
-#: the statuses that put a customer on a mailing list
-FLAGGED = frozenset(FLAGGED_LAYERS)
 BAND_COLOUR = OKABE_ITO["yellow"]
 LIMIT_STYLE = {
     "max_static": (OKABE_ITO["vermillion"], "--", "max-pressure limit: lower ground exceeds the maximum"),
@@ -676,9 +674,10 @@ def interactive_figure(m: InteractiveMap, units: Units) -> dict[str, Any]:
     axis = {"showgrid": True, "gridcolor": "rgba(0,0,0,0.12)", "zeroline": False, "ticksuffix": f" {units.length}",
             "tickformat": ",d"}
     layout = {
-        "xaxis": {**axis, "title": {"text": f"east of the map's south-west corner ({units.length}, grid)"},
+        "xaxis": {**axis, "title": {"text": f"{units.length} east of the map's south-west corner"},
                   "range": [float(ex(left)), float(ex(right))]},
-        "yaxis": {**axis, "title": {"text": "north (grid)"}, "scaleanchor": "x", "scaleratio": 1,
+        "yaxis": {**axis, "title": {"text": f"{units.length} north ({m.frame.north})"}, "scaleanchor": "x",
+                  "scaleratio": 1,
                   "range": [float(ny(bottom)), float(ny(top))]},
         "images": images, "annotations": annotations, "dragmode": "pan", "hovermode": "closest", "height": 720,
         "margin": {"l": 80, "r": 20, "t": 20, "b": 60}, "plot_bgcolor": "white",
