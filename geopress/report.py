@@ -256,7 +256,7 @@ class Terrain:
         return hillshade(self.dem_ft, dx, dy, vert_exag=RELIEF)
 
 
-HILLSHADE_LABEL = f"hillshade of the DEM (sun in the north-west, 45° up, relief x{RELIEF:g})"
+HILLSHADE_LABEL = f"hillshade of the DEM (sun in the north-west, {SUN_ALTITUDE_DEG:g}° up, relief x{RELIEF:g})"
 #: the hillshade's grey scale, the same on every map: shade 1 is white, shade 0 a mid grey, so that
 #: what is drawn over it stays legible
 SHADE_GREY = (-0.6, 1.0)
