@@ -621,6 +621,7 @@ def interactive_figure(m: InteractiveMap, units: Units) -> dict[str, Any]:
     import shapely
 
     left, bottom, right, top = _bounds(m.outlines, m.x, m.y)
+    pad = 0.03 * max(right - left, top - bottom)  # as on the static maps: no marker cut at the edge
     per = 1.0 / M_PER_FT if units.system == "si" else 1.0  # display length units per ft
 
     def ex(x: Any) -> Any:
@@ -675,10 +676,10 @@ def interactive_figure(m: InteractiveMap, units: Units) -> dict[str, Any]:
             "tickformat": ",d"}
     layout = {
         "xaxis": {**axis, "title": {"text": f"{units.length} east of the map's south-west corner"},
-                  "range": [float(ex(left)), float(ex(right))]},
+                  "range": [float(ex(left - pad)), float(ex(right + pad))]},
         "yaxis": {**axis, "title": {"text": f"{units.length} north ({m.frame.north})"}, "scaleanchor": "x",
                   "scaleratio": 1,
-                  "range": [float(ny(bottom)), float(ny(top))]},
+                  "range": [float(ny(bottom - pad)), float(ny(top + pad))]},
         "images": images, "annotations": annotations, "dragmode": "pan", "hovermode": "closest", "height": 720,
         "margin": {"l": 80, "r": 20, "t": 20, "b": 60}, "plot_bgcolor": "white",
         "legend": {"title": {"text": "status (drawn)"}, "itemsizing": "constant"}, "uirevision": "keep",
