@@ -1,6 +1,6 @@
 """Optional dependencies, checked once; each message names the extra to install.
 
-``HAS_REPORT`` says whether the ``report`` extra (matplotlib and jinja2) is
+``HAS_REPORT`` says whether the ``report`` extra (matplotlib, jinja2 and plotly) is
 installed and :func:`report_missing` names what is missing. :func:`import_dask`
 returns the ``dask`` extra's modules or raises MissingExtraError.
 """
@@ -12,7 +12,7 @@ from types import ModuleType
 
 from .errors import MissingExtraError
 
-REPORT_MODULES = ("matplotlib", "jinja2")
+REPORT_MODULES = ("matplotlib", "jinja2", "plotly")
 _MISSING_REPORT = tuple(m for m in REPORT_MODULES if importlib.util.find_spec(m) is None)
 HAS_REPORT = not _MISSING_REPORT
 

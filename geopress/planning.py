@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import geopandas as gpd
 import numpy as np
@@ -30,6 +30,9 @@ from .io import raster as raster_io
 from .io.datum import DatumShift
 from .io.vector import Zones
 from .pressure import M_PER_FT, PrvSource, PumpSource, TankSource
+
+if TYPE_CHECKING:  # the report extra is optional: report_html imports it when it runs
+    from . import report
 
 log = logging.getLogger(__name__)
 
@@ -58,12 +61,17 @@ class ZoneTerrain:
 
 @dataclass
 class Plan:
-    """The ``service_band`` and ``band_limits`` layers, the report's terrain and run.json's section."""
+    """The ``service_band`` and ``band_limits`` layers, the report's terrain and run.json's section.
+
+    ``outlines`` holds every zone's merged polygons in the customers' CRS, in
+    config order, for the report's maps of all zones (a zone without terrain too).
+    """
 
     bands: gpd.GeoDataFrame
     limits: gpd.GeoDataFrame
     terrain: list[ZoneTerrain] = field(default_factory=list)
     info: list[dict[str, Any]] = field(default_factory=list)
+    outlines: dict[str, shapely.Geometry] = field(default_factory=dict)
 
 
 def _to_crs(geom: shapely.Geometry, src: CRS, dst: CRS) -> shapely.Geometry:
@@ -93,7 +101,8 @@ def service_bands(cfg: Config, zones: Zones, crs: CRS, shift: DatumShift) -> Pla
     crit = cfg.criteria
     footprints = [(p, *raster_io.raster_footprint(p)) for p in cfg.terrain.paths]
     band_rows, limit_rows, terrain, info = [], [], [], []
-    for zone, geom in zone_geometries(zones, [s.zone for s in cfg.zones.sources], crs).items():
+    outlines = zone_geometries(zones, [s.zone for s in cfg.zones.sources], crs)
+    for zone, geom in outlines.items():
         src = cfg.zones.source_for(zone)
         high, low = src.hgl_range(crit.psi_per_ft)
         lower, upper = band_mod.limit_elevations(high, low, crit)
@@ -147,7 +156,7 @@ def service_bands(cfg: Config, zones: Zones, crs: CRS, shift: DatumShift) -> Pla
                  sq_ft / band_mod.SQ_FT_PER_ACRE)
     bands = gpd.GeoDataFrame(band_rows, geometry="geometry", crs=crs) if band_rows else _empty(crs)
     limits = gpd.GeoDataFrame(limit_rows, geometry="geometry", crs=crs) if limit_rows else _empty(crs)
-    return Plan(bands=bands, limits=limits, terrain=terrain, info=info)
+    return Plan(bands=bands, limits=limits, terrain=terrain, info=info, outlines=outlines)
 
 
 def _empty(crs: CRS) -> gpd.GeoDataFrame:
@@ -193,9 +202,50 @@ def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["zone", *BEST_COLUMNS]).astype({"flagged_now": "int64", "flagged_at_best": "int64"})
 
 
+def _frame(crs: CRS, bounds: tuple[float, float, float, float]) -> "report.Frame":
+    """Ground ft per map unit along x and y of ``crs`` around ``bounds`` (left, bottom, right, top), and what up is.
+
+    Projected: the axis unit's metres (pyproj) over 0.3048, the same on both
+    axes; up is grid north. Geographic: the geodesic length of a degree of
+    longitude and of latitude at the centre of ``bounds`` on the CRS's
+    ellipsoid; up is north.
+    """
+    from . import report
+
+    if crs.is_projected:
+        ft = crs.axis_info[0].unit_conversion_factor / M_PER_FT
+        return report.Frame(ft_per_x=ft, ft_per_y=ft, north=f"grid north of {crs.name}")
+    geod = crs.get_geod()
+    lon = (bounds[0] + bounds[2]) / 2.0
+    lat = min(max((bounds[1] + bounds[3]) / 2.0, -89.0), 89.0)
+    per_lon = geod.inv(lon - 0.5, lat, lon + 0.5, lat)[2] / M_PER_FT
+    per_lat = geod.inv(lon, lat - 0.5, lon, lat + 0.5)[2] / M_PER_FT
+    return report.Frame(ft_per_x=per_lon, ft_per_y=per_lat, north="north")
+
+
+def _terrain(zt: ZoneTerrain) -> "report.Terrain":
+    from . import report
+
+    return report.Terrain(dem_ft=zt.dem_ft, extent=zt.extent)
+
+
+def _xy(geom: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
+    """Coordinates of points ``geom`` (in ``src``) in ``dst``."""
+    pts = gpd.GeoSeries(geom, crs=src)
+    if not dst.equals(src):
+        pts = pts.to_crs(dst)
+    return shapely.get_x(pts.to_numpy()), shapely.get_y(pts.to_numpy())
+
+
 def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
                 info: dict[str, Any]) -> str:
-    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`)."""
+    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`).
+
+    Each zone map is drawn in the CRS of its zone's first raster; the maps of
+    all zones (overview and interactive) in that of the first zone map, with
+    the terrain previews of the zones whose rasters share it, or in the
+    customers' CRS when no zone has terrain.
+    """
     from . import report
     from .units import units_for
 
@@ -211,24 +261,54 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
     for z in summary["zone"].tolist():
         sel = zone_code == code_of.get(z, -2)
         pressures[z] = (psi_min[sel], psi_max[sel])
+
+    def counts_at(sel: np.ndarray) -> dict[str, int]:
+        per = np.bincount(status_code[sel], minlength=len(status_names))
+        return {status_names[i]: int(per[i]) for i in np.flatnonzero(per)}
+
     maps = []
     geom = customers.geometry.to_numpy()
     drawable = ~(shapely.is_missing(geom) | shapely.is_empty(geom))
-    for zt in (plan.terrain if plan is not None else []):
+    terrains = plan.terrain if plan is not None else []
+    for zt in terrains:
         sel = np.flatnonzero((zone_code == code_of.get(zt.zone, -2)) & drawable)
-        per = np.bincount(status_code[sel], minlength=len(status_names))
-        counts = {status_names[i]: int(per[i]) for i in np.flatnonzero(per)}
+        counts = counts_at(sel)
         sel = sel[report.map_sample(status_code[sel])]
-        pts = gpd.GeoSeries(geom[sel], crs=customers.crs)
-        if customers.crs is not None and not zt.crs.equals(customers.crs):
-            pts = pts.to_crs(zt.crs)
-        m_per_unit = zt.crs.axis_info[0].unit_conversion_factor if zt.crs.is_projected else 111_320.0  # m per degree, from memory
+        x, y = _xy(geom[sel], customers.crs, zt.crs)
         maps.append(report.ZoneMap(
-            zone=zt.zone, dem_ft=zt.dem_ft, extent=zt.extent, pixel=zt.pixel, ft_per_map_unit=m_per_unit / M_PER_FT,
+            zone=zt.zone, terrain=_terrain(zt), frame=_frame(zt.crs, zt.zone_geom.bounds),
             zone_geom=zt.zone_geom, band_geom=zt.band_geom, limits=zt.limits,
-            x=shapely.get_x(pts.to_numpy()), y=shapely.get_y(pts.to_numpy()), status=status_names[status_code[sel]],
-            counts=counts,
+            x=x, y=y, status=status_names[status_code[sel]], counts=counts,
         ))
+    # -- the maps of all zones, in one CRS
+    crs = terrains[0].crs if terrains else customers.crs
+    outlines = {z: _to_crs(g, customers.crs, crs) for z, g in (plan.outlines if plan is not None else {}).items()}
+    shown = np.flatnonzero(drawable)
+    counts = counts_at(shown)
+    unmapped = int(len(customers) - shown.size)
+    over = shown[report.map_sample(status_code[shown])]
+    x, y = _xy(geom[over], customers.crs, crs)
+    if outlines:
+        frame = _frame(crs, shapely.union_all(list(outlines.values())).bounds)
+    else:
+        frame = _frame(crs, (float(np.min(x)), float(np.min(y)), float(np.max(x)), float(np.max(y))) if x.size
+                       else (0.0, 0.0, 0.0, 0.0))
+    background = [_terrain(zt) for zt in terrains if zt.crs.equals(crs)]
+    overview = report.OverviewMap(terrain=background, frame=frame, outlines=outlines, x=x, y=y,
+                                  status=status_names[status_code[over]], counts=counts, unmapped=unmapped)
+    ok_code = {s: i for i, s in enumerate(status_names)}.get("ok", -1)
+    pick = shown[report.interactive_sample(status_code[shown], ok_code)]
+    x, y = _xy(geom[pick], customers.crs, crs)
+
+    def picked(column: str) -> np.ndarray:  # only the drawn rows become Python objects
+        return customers[column].iloc[pick].to_numpy(dtype=object, na_value=None)
+
+    interactive = report.InteractiveMap(
+        terrain=background, frame=frame, outlines=outlines, x=x, y=y,
+        ids=picked(cfg.customers.id_field), zone=picked("zone"),
+        ground_ft=customers["ground_ft"].to_numpy(dtype=np.float64)[pick], psi_min=psi_min[pick],
+        psi_max=psi_max[pick], status=status_names[status_code[pick]], reason=picked("reason"), counts=counts,
+    )
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
-                         criteria=cfg.criteria, units=units)
+                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive)
