@@ -156,8 +156,10 @@ ENGINES = ("local", "dask")
 
 
 def _values(column: pd.Series) -> Any:
-    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row)."""
-    return column.array if column.dtype == "str" else column.to_numpy()
+    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row), and
+    pandas' nullable types (the floors' Int64) as they are, with their missing values."""
+    extension = isinstance(column.dtype, pd.api.extensions.ExtensionDtype)
+    return column.array if extension else column.to_numpy()
 
 
 def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
@@ -227,7 +229,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                 why = "no customer falls within the terrain's extent; check the CRS of the customers and of the rasters"
             raise InputError(f"{why} (terrain.paths: {paths})", path=cfg.terrain.paths[0], key="terrain.paths")
     with clock.step("compute pressure"):
-        floors = (cust.frame[cfg.customers.floors_field].to_numpy(dtype=np.float64)
+        floors = (cust.frame[cfg.customers.floors_field].to_numpy(dtype=np.float64, na_value=np.nan)
                   if cfg.customers.floors_field else np.full(len(ground), np.nan))
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)

@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import geopandas as gpd
 import pandas as pd
 import pyogrio
 import pytest
@@ -424,6 +425,20 @@ def test_an_empty_flagged_layer_is_still_a_point_layer(world):
     assert world.read("upper_floors").empty  # nobody in the base world has upper floors
     for name in ("customers", "upper_floors"):
         assert pyogrio.read_info(world.out, layer=name)["geometry_type"] == "Point"
+
+
+def test_floors_stay_an_integer_field_with_unknown_stories_empty(world):
+    xs, ys = world.extra["xs"], world.extra["ys"]
+    recs = customer_records(list(xs), list(ys), floors=[3, None] + [1] * (len(xs) - 2))
+    gdf = gpd.GeoDataFrame(recs, geometry=gpd.GeoSeries([shapely.Point(x, y) for x, y in zip(xs, ys)]), crs=PROJECTED)
+    gdf["floors"] = gdf["floors"].astype("Int64")  # an integer field with one empty value, as exports have
+    pyogrio.write_dataframe(gdf, world.customers_path, layer="parcels", driver="GPKG")
+    geopress.run(world.config_path)
+    info = pyogrio.read_info(world.out, layer="customers")
+    assert dict(zip(info["fields"], info["ogr_types"]))["floors"] == "OFTInteger64"
+    floors = pyogrio.read_dataframe(world.out, layer="customers", columns=["account", "floors"])
+    assert floors["floors"].iloc[0] == 3 and pd.isna(floors["floors"].iloc[1])
+    assert pyogrio.read_info(world.out, layer="upper_floors")["fields"].tolist() == info["fields"].tolist()
 
 
 def test_customers_layer_has_a_spatial_index(crafted):

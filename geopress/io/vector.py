@@ -126,7 +126,8 @@ def _crs(path: Path, layer: str, info_crs: str | None) -> CRS:
 class Customers:
     """The customers layer reduced to what a run needs.
 
-    ``frame`` has the id field, mail fields and floors (float, NaN unknown) and
+    ``frame`` has the id field, mail and letter fields and floors (pandas' nullable
+    Int64, so the layer written keeps an integer field; missing where unknown) and
     a point geometry in the layer's CRS; rows without a usable geometry have a
     None geometry and ``has_geometry`` False. ``x``/``y`` are the point
     coordinates (NaN where there is none). ``wkb`` is the frame's geometries
@@ -236,7 +237,9 @@ def read_customers(cfg: CustomersConfig) -> Customers:
     y[has] = shapely.get_y(points[has])
     frame = gpd.GeoDataFrame(df.drop(columns="geometry"), geometry=gpd.GeoSeries(points, crs=crs), crs=crs)
     if cfg.floors_field:
-        frame[cfg.floors_field] = floors
+        # whole numbers (checked above) as a nullable integer column: written as an INTEGER field
+        unknown = np.isnan(floors)
+        frame[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
     log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
     # the file's WKB is what shapely would encode only for 2D points: 21 bytes each (byte order, type and
     # two doubles, as OGC's WKB lays them out), none where missing; an empty point became missing above
