@@ -61,7 +61,7 @@ def _log_warning(message, category, filename, lineno, file=None, line=None) -> N
 
 
 def _progress(ctx: click.Context) -> Callable[[str], None] | None:
-    if ctx.obj["quiet"] or not sys.stderr.isatty():
+    if _quiet(ctx) or not sys.stderr.isatty():
         return None
     return lambda step: click.echo(f"geopress: {step} ...", err=True)
 
@@ -113,16 +113,42 @@ def _summary(result: pipeline.Result) -> str:
     return f"{len(result.customers)} customers: {counts} ({seconds:.1f} s){where}"
 
 
+def _global_option(ctx: click.Context, param: click.Parameter, value: int | bool) -> None:
+    """Merge a global option into ``ctx.obj``: the group's value first, then the subcommand's added to it,
+    so ``geopress -v run -v CONFIG`` is ``-vv``."""
+    obj = ctx.ensure_object(dict)
+    before = obj.get(param.name, 0) if ctx.parent is not None else 0  # the group's own call starts afresh
+    obj[param.name] = (bool(before) or value) if param.name == "debug" else before + value
+
+
+def global_options(command: Callable) -> Callable:
+    """-v, -q and --debug, accepted before the subcommand and after it (see :func:`_global_option`)."""
+    for decls, kwargs in reversed((
+        (("-v", "--verbose"), dict(count=True, help="More log output (repeat for debug).")),
+        (("-q", "--quiet"), dict(count=True, help="Print nothing on success: warnings and errors only "
+                                                  "(-qq: errors only).")),
+        (("--debug",), dict(is_flag=True, help="Show tracebacks instead of one-line errors.")),
+    )):
+        command = click.option(*decls, **kwargs, expose_value=False, callback=_global_option)(command)
+    return command
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="geopress")
-@click.option("-v", "--verbose", count=True, help="More log output (repeat for debug).")
-@click.option("-q", "--quiet", count=True, help="Less log output: warnings and errors only.")
-@click.option("--debug", is_flag=True, help="Show tracebacks instead of one-line errors.")
-@click.pass_context
-def cli(ctx: click.Context, verbose: int, quiet: int, debug: bool) -> None:
+@global_options
+def cli() -> None:
     """Static service-pressure screening of water customers."""
-    ctx.ensure_object(dict)
-    ctx.obj.update(verbose=verbose, quiet=quiet, debug=debug)
+
+
+def _quiet(ctx: click.Context) -> bool:
+    """-q given more often than -v: print nothing on success."""
+    return ctx.obj["quiet"] > ctx.obj["verbose"]
+
+
+def _say(text: str) -> None:
+    """A result line on stdout, unless quiet: a quiet command prints nothing when it succeeds."""
+    if not _quiet(click.get_current_context()):
+        click.echo(text)
 
 
 _set_option = click.option(
@@ -177,6 +203,7 @@ def _run_line(result: pipeline.Result) -> str:
 
 
 @cli.command("run")
+@global_options
 @click.argument("config", type=click.Path(path_type=Path))
 @_set_option
 @click.option("--out-dir", type=click.Path(path_type=Path), default=None,
@@ -203,13 +230,14 @@ def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_
         log.info("run started: %s", config.resolve())
     result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline,
                           engine=engine, scheduler=scheduler, partitions=partitions)
-    click.echo(_summary(result))
+    _say(_summary(result))
     since = result.info["changes"]["baseline"] or "no earlier run"
-    click.echo(f"changes since {since}: {_changes_text(result)}")
+    _say(f"changes since {since}: {_changes_text(result)}")
     _finish_log(ctx, _run_line(result))
 
 
 @cli.command("check")
+@global_options
 @click.argument("config", type=click.Path(path_type=Path))
 @_set_option
 @click.pass_context
@@ -218,11 +246,12 @@ def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) ->
     """Validate CONFIG and every input; print what a run would process; write nothing."""
     report = pipeline.check(load_scenario(config, assignments))
     for line in report.lines:
-        click.echo(line)
-    click.echo("check passed")
+        _say(line)
+    _say("check passed")
 
 
 @cli.command("compare")
+@global_options
 @click.argument("before", type=click.Path(path_type=Path))
 @click.argument("after", type=click.Path(path_type=Path))
 @click.option("--out", type=click.Path(path_type=Path), default=None,
@@ -233,12 +262,12 @@ def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) ->
 def compare_cmd(ctx: click.Context, before: Path, after: Path, out: Path | None, id_field: str | None) -> None:
     """List the customers whose status differs between two runs' GeoPackages, with counts per zone."""
     comp = pipeline.compare(before, after, out=out, id_field=id_field)
-    click.echo(f"{len(comp.differences)} customers differ in status")
+    _say(f"{len(comp.differences)} customers differ in status")
     for zone, grp in comp.by_zone.groupby("zone", sort=True):
-        click.echo(f"  {zone}: {int(grp['customers'].sum())}")
+        _say(f"  {zone}: {int(grp['customers'].sum())}")
         for r in grp.itertuples(index=False):
-            click.echo(f"    {r.status_a} -> {r.status_b}: {r.customers}")
-    click.echo(f"written: {', '.join(str(p) for p in comp.outputs)}")
+            _say(f"    {r.status_a} -> {r.status_b}: {r.customers}")
+    _say(f"written: {', '.join(str(p) for p in comp.outputs)}")
 
 
 def demo_config_path() -> Path:
@@ -253,6 +282,7 @@ def demo_config_path() -> Path:
 
 
 @cli.command("demo")
+@global_options
 @click.option("--out", "out_dir", type=click.Path(path_type=Path), default=Path("geopress-demo-out"),
               show_default=True, help="Folder for the demo's outputs.")
 @click.pass_context
@@ -265,10 +295,10 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
         "output.mailing_dir": str(out / "mailing"),
     })
     result = pipeline.run(cfg, progress=_progress(ctx))
-    click.echo(_summary(result))
-    click.echo(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
+    _say(_summary(result))
+    _say(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
     if result.info.get("report", {}).get("written"):
-        click.echo(f"report: {result.info['report']['path']}")
+        _say(f"report: {result.info['report']['path']}")
 
 
 def main(argv: list[str] | None = None) -> None:

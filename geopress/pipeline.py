@@ -487,8 +487,9 @@ def compare(a: str | os.PathLike, b: str | os.PathLike, *, out: str | os.PathLik
     from . import compare as compare_mod
     from .io import results
 
-    left, key = results.read_run_customers(Path(a), id_field)
-    right, _ = results.read_run_customers(Path(b), key)
+    left, key = results.read_run_customers(Path(a), id_field, key="BEFORE")
+    right, _ = results.read_run_customers(Path(b), key, key="AFTER",
+                                          id_source="--id-field" if id_field else "the first field of BEFORE")
     diff = compare_mod.status_differences(left, right, key)
     by_zone = compare_mod.counts_by_zone(diff)
     target = Path(out) if out is not None else Path(b).parent / "status_differences.gpkg"
