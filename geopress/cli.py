@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import os
 import sys
 import time
 import warnings
@@ -43,9 +44,71 @@ class _OneLine(logging.Formatter):
         return msg if record.levelno == logging.INFO else f"{level}: {msg}"
 
 
-def _configure_logging(verbose: int, quiet: int) -> None:
+class _Bars:
+    """Progress bars on stderr (tqdm), one per step of a run (the pipeline's ``progress`` callback).
+
+    A step that counts its work (customers read and sampled, outputs written)
+    gets a bar with its count, rate and time left, kept when done; any other
+    step a line with its elapsed time, cleared when the next begins.
+    """
+
+    def __init__(self) -> None:
+        import threading
+
+        from tqdm import tqdm
+
+        tqdm.monitor_interval = 0  # no monitor thread: the run forks child processes, which a threaded parent must not
+        tqdm.set_lock(threading.RLock())  # not tqdm's default multiprocessing lock, which starts a helper process
+        self.tqdm = tqdm
+        self.pid = os.getpid()  # a forked child's copy of the bars is stale: it logs as without them
+        self.bar = None
+        self.step: str | None = None
+        self.counted = False
+
+    def __call__(self, step: str, done: int | None = None, total: int | None = None, unit: str = "") -> None:
+        if step != self.step or (done is not None and not self.counted):
+            self.close()
+            self.step, self.counted = step, done is not None
+            if self.counted:
+                self.bar = self.tqdm(desc=step, total=total, unit=f" {unit}", file=sys.stderr, dynamic_ncols=True)
+            else:
+                self.bar = self.tqdm(desc=step, total=None, bar_format="{desc} ... {elapsed}", file=sys.stderr,
+                                     leave=False)
+        if done is not None:
+            if total is not None and self.bar.total != total:
+                self.bar.total = total
+            self.bar.update(done - self.bar.n)
+
+    def write(self, line: str) -> None:
+        """A log line above the bars."""
+        self.tqdm.write(line, file=sys.stderr)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+        self.bar, self.step, self.counted = None, None, False
+
+
+class _Console(logging.StreamHandler):
+    """Log lines to stderr, through the progress bars while there are any, so a line never breaks a bar."""
+
+    def __init__(self, bars: _Bars | None) -> None:
+        super().__init__(sys.stderr)
+        self.bars = bars
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if self.bars is None or self.bars.bar is None or self.bars.pid != os.getpid():
+            super().emit(record)
+            return
+        try:
+            self.bars.write(self.format(record))
+        except Exception:  # as logging.StreamHandler does
+            self.handleError(record)
+
+
+def _configure_logging(verbose: int, quiet: int, bars: _Bars | None = None) -> None:
     level = logging.INFO - 10 * verbose + 10 * quiet
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _Console(bars)
     handler.setFormatter(_OneLine())
     handler.addFilter(lambda record: record.name != SUMMARY_LOGGER)  # the summary goes to --log-file only
     for name in ("geopress", "py.warnings"):
@@ -60,10 +123,9 @@ def _log_warning(message, category, filename, lineno, file=None, line=None) -> N
     logging.getLogger("py.warnings").warning("%s", warnings.formatwarning(message, category, filename, lineno, line))
 
 
-def _progress(ctx: click.Context) -> Callable[[str], None] | None:
-    if _quiet(ctx) or not sys.stderr.isatty():
-        return None
-    return lambda step: click.echo(f"geopress: {step} ...", err=True)
+def _progress(ctx: click.Context) -> _Bars | None:
+    """The pipeline's progress callback: bars on a terminal, unless quiet; None otherwise."""
+    return ctx.obj["bars"]
 
 
 def guarded(fn: Callable) -> Callable:
@@ -73,23 +135,27 @@ def guarded(fn: Callable) -> Callable:
     def wrapper(*args, **kwargs):
         ctx = click.get_current_context()
         debug = ctx.obj["debug"]
-        _configure_logging(ctx.obj["verbose"], ctx.obj["quiet"])
+        bars = ctx.obj["bars"] = None if _quiet(ctx) or not sys.stderr.isatty() else _Bars()
+        _configure_logging(ctx.obj["verbose"], ctx.obj["quiet"], bars)
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("always")
                 warnings.showwarning = _log_warning  # restored when the block ends, even in-process
                 return fn(*args, **kwargs)
         except GeopressError as exc:
+            _close(bars)
             _finish_log(ctx, f"run failed: exit {EXIT_BAD_INPUT}: {exc}")
             if debug:
                 raise
             click.echo(f"error: {exc}", err=True)
             ctx.exit(EXIT_BAD_INPUT)
         except KeyboardInterrupt:
+            _close(bars)
             _finish_log(ctx, "run failed: exit 130: interrupted; earlier outputs are unchanged")
             click.echo("error: interrupted; earlier outputs are unchanged", err=True)
             ctx.exit(130)
         except Exception as exc:  # a bug or an environment failure
+            _close(bars)
             first = str(exc).splitlines()[0] if str(exc) else ""
             _finish_log(ctx, f"run failed: exit {EXIT_FAILURE}: {type(exc).__name__}: {first}")
             if debug:
@@ -99,6 +165,12 @@ def guarded(fn: Callable) -> Callable:
             ctx.exit(EXIT_FAILURE)
 
     return wrapper
+
+
+def _close(bars: _Bars | None) -> None:
+    """Finish the last bar, before a result or an error is printed."""
+    if bars is not None:
+        bars.close()
 
 
 def _counts_text(counts: dict[str, int], skip: tuple[str, ...] = ()) -> str:
@@ -230,6 +302,7 @@ def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_
         log.info("run started: %s", config.resolve())
     result = pipeline.run(load_scenario(config, assignments, out_dir), progress=_progress(ctx), baseline=baseline,
                           engine=engine, scheduler=scheduler, partitions=partitions)
+    _close(_progress(ctx))
     _say(_summary(result))
     since = result.info["changes"]["baseline"] or "no earlier run"
     _say(f"changes since {since}: {_changes_text(result)}")
@@ -295,6 +368,7 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
         "output.mailing_dir": str(out / "mailing"),
     })
     result = pipeline.run(cfg, progress=_progress(ctx))
+    _close(_progress(ctx))
     _say(_summary(result))
     _say(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
     if result.info.get("report", {}).get("written"):

@@ -30,13 +30,19 @@ from .units import UNIT_SYSTEMS
 
 @dataclass(frozen=True)
 class CustomersConfig:
-    """Where the customers are. ``floors_field`` holds stories above ground."""
+    """Where the customers are. ``floors_field`` holds stories above ground.
+
+    ``mail_fields`` make the mailing address, the key a mailing list groups by;
+    ``letter_fields`` are carried to the lists too but are not part of that key:
+    per address, their distinct values in account order, joined by "; ".
+    """
 
     path: Path
     id_field: str
     layer: str | None = None
     mail_fields: tuple[str, ...] = ()
     floors_field: str | None = None
+    letter_fields: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -80,13 +86,15 @@ class OutputConfig:
 
     ``units`` ("us": ft, psi; "si": m, kPa) applies to the report and the
     mailing lists; the GeoPackage keeps ft and psi. ``report`` writes
-    report.html beside the GeoPackage.
+    report.html beside the GeoPackage. ``xlsx`` writes an .xlsx copy beside
+    each mailing list's CSV.
     """
 
     path: Path
     mailing_dir: Path
     units: str = "us"
     report: bool = True
+    xlsx: bool = True
 
 
 @dataclass(frozen=True)
@@ -248,7 +256,7 @@ class _Reader:
             start = hits[nth]
             if leaf == "":
                 return start + 1
-        key_re = re.compile(r"^\s*" + re.escape(leaf) + r"\s*=")
+        key_re = re.compile(r"^\s*" + re.escape(re.sub(r"\[\d+\]$", "", leaf)) + r"\s*=")  # a list's item: its key
         for i in range(start + (1 if pattern is not None else 0), len(self.lines)):
             if i > start and self.lines[i].lstrip().startswith("["):
                 break
@@ -338,20 +346,32 @@ class _Reader:
 
     def customers(self, t: dict[str, Any]) -> CustomersConfig:
         s = "customers"
-        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
+        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field", "letter_fields"})
         cfg = CustomersConfig(
             path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
             floors_field=self.get(t, s, "floors_field", "str", None),
+            letter_fields=self.get(t, s, "letter_fields", "str_list", ()),
         )
         named = [("customers.id_field", cfg.id_field), ("customers.floors_field", cfg.floors_field)]
         named += [(f"customers.mail_fields[{i}]", f) for i, f in enumerate(cfg.mail_fields)]
+        named += [(f"customers.letter_fields[{i}]", f) for i, f in enumerate(cfg.letter_fields)]
         for key, name in named:
             if name in RESULT_COLUMNS:
                 raise self.error(key, f"field {name!r} has the name of a result column "
                                       f"({', '.join(RESULT_COLUMNS)}); rename it in the layer")
+        listed = {cfg.id_field: "customers.id_field (the lists show it as accounts)",
+                  **{f: "customers.mail_fields, the mailing key" for f in cfg.mail_fields}}
+        seen: set[str] = set()
+        for i, name in enumerate(cfg.letter_fields):
+            if name in listed:
+                raise self.error(f"customers.letter_fields[{i}]", f"field {name!r} is already in {listed[name]}; "
+                                                                  "remove it from letter_fields")
+            if name in seen:
+                raise self.error(f"customers.letter_fields[{i}]", f"field {name!r} is listed twice; keep one")
+            seen.add(name)
         return cfg
 
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
@@ -457,15 +477,17 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
         units = self.get(t, s, "units", "str", "us")
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
-        report = t.get("report", True)
-        if not isinstance(report, bool):
-            raise self.error("output.report", f"must be true or false, not {report!r}")
+        flags = {}
+        for name in ("report", "xlsx"):
+            flags[name] = t.get(name, True)
+            if not isinstance(flags[name], bool):
+                raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")
         return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"),
-                            units=units, report=report)
+                            units=units, **flags)

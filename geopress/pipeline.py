@@ -30,7 +30,7 @@ import rasterio
 from . import classify as cls
 from . import forked
 from . import planning
-from ._compat import report_missing
+from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
 from .config import Config, load_config
@@ -45,7 +45,12 @@ from .zones import assign, overlaps
 
 log = logging.getLogger(__name__)
 
-Progress = Callable[[str], None]
+#: called as ``progress(step)`` when a step starts and, in a step that counts its work (customers read
+#: and sampled, outputs written), as ``progress(step, done, total, unit)`` as it goes (``total`` None when
+#: not known). The library never draws anything itself: the command line draws the bars.
+Progress = Callable[..., None]
+#: a step's count of its work: ``count(done, total)``
+Count = Callable[[int, "int | None"], None]
 
 
 
@@ -91,6 +96,14 @@ class _Clock:
         yield
         self.timings[name] = round(time.perf_counter() - t0, 4)
         log.debug("step %s took %.3f s", name, self.timings[name])
+
+    def counter(self, name: str, unit: str, total: int | None = None) -> Count | None:
+        """``count(done, total)`` reporting step ``name``'s ``done`` of ``total`` ``unit`` (``total`` here when the
+        caller gives None); None without progress."""
+        progress = self.progress
+        if progress is None:
+            return None
+        return lambda done, of=None: progress(name, done, total if of is None else of, unit)
 
 
 @contextmanager
@@ -197,7 +210,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
              on_customers: Callable[[gpd.GeoDataFrame, pa.ChunkedArray | None], None] | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
-        cust = vector_io.read_customers(cfg.customers)
+        cust = vector_io.read_customers(cfg.customers, count=clock.counter("read customers", "customers"))
     # --- scale-out engine: the zone join and terrain sampling per spatial partition on dask
     joined = None
     if engine == "dask":
@@ -218,7 +231,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
     with clock.step("sample terrain"):
-        terrain = joined.terrain if joined else raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs)
+        terrain = joined.terrain if joined else raster_io.sample_terrain(
+            cfg.terrain, cust.x, cust.y, cust.crs, count=clock.counter("sample terrain", "customers"))
         ground = terrain.ground_ft
         sampled = int(np.count_nonzero(~np.isnan(ground)))
         if sampled == 0:
@@ -266,7 +280,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
-            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields).items()}
+            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields,
+            letter_fields=cfg.customers.letter_fields).items()}
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
     with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
@@ -319,34 +334,98 @@ def run_json_path(config: Config) -> Path:
 
 
 def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, gpkg: write_io.Started) -> list[Path]:
-    """Stage the mailing lists and the report while the GeoPackage's first layers are written
-    (``gpkg``), add its other layers, stage run.json, then rename them all into place."""
-    out = result.config.output
+    """Stage the mailing lists, the layer styles and the report while the GeoPackage's first layers are
+    written (``gpkg``), add its other layers, stage run.json, then rename them all into place."""
+    cfg = result.config
+    out = cfg.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
-        lists = {**result.mailing, **result.new_mailing}
-        for name, df in lists.items():
-            stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
         info = dict(result.info)
-        info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
+        files = _list_files(result, info)
+        later = later_layers(result)
+        styles = _layer_styles(result, [*customer_layers(result.customers), *later], info)
+        for layer, style in styles.items():
+            files[style_path(cfg, layer)] = lambda tmp, text=style.sld: write_io.write_text(tmp, text)
+        if styles:
+            later["layer_styles"] = write_io.Styles({k: (v.name, v.description, v.sld) for k, v in styles.items()})
+        # the report, the GeoPackage's first layers and the others, and run.json count as one output each
+        advance = _advance(clock.counter("write outputs", "outputs", len(files) + 4))
+        info["outputs"] = [str(out.path), *[str(p) for p in files]]
+        for target, writer in files.items():
+            stage.write(target, writer)
+            advance()
         _stage_report(result, info, stage)
+        advance()
         first = gpkg.finish()
-        info["geopackage_layers_s"] = {**first, **gpkg.add(lambda tmp: write_io.write_geopackage(tmp, later_layers(result)))}
+        advance()
+        info["geopackage_layers_s"] = {**first, **gpkg.add(lambda tmp: write_io.write_geopackage(tmp, later))}
+        advance()
         # run.json is written inside this step: it records the step up to its own writing
         info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
         info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-        stage.write(run_json_path(result.config), lambda tmp: write_io.write_json(tmp, info))
+        stage.write(run_json_path(cfg), lambda tmp: write_io.write_json(tmp, info))
+        advance()
         stage.commit()
         result.info = info
         return list(stage.committed)
+
+
+def _advance(count: Count | None) -> Callable[[], None]:
+    """One more output written, reported through ``count``."""
+    done = [0]
+
+    def advance() -> None:
+        done[0] += 1
+        if count is not None:
+            count(done[0], None)
+
+    return advance
+
+
+def _list_files(result: Result, info: dict[str, Any]) -> dict[Path, Callable[[Path], None]]:
+    """Each mailing list's CSV and, with ``output.xlsx`` and openpyxl, its .xlsx copy, with their writers;
+    ``info["xlsx"]`` says whether the copies are written."""
+    out = result.config.output
+    reason = xlsx_missing() if out.xlsx else "output.xlsx = false"
+    if out.xlsx and reason:
+        log.warning("the mailing lists' .xlsx copies not written: %s", reason)
+    info["xlsx"] = {"written": reason is None, "reason": reason}
+    files: dict[Path, Callable[[Path], None]] = {}
+    for name, df in {**result.mailing, **result.new_mailing}.items():
+        files[out.mailing_dir / f"{name}.csv"] = lambda tmp, df=df: write_io.write_list_csv(tmp, df)
+        if info["xlsx"]["written"]:
+            files[out.mailing_dir / f"{name}.xlsx"] = lambda tmp, df=df, name=name: write_io.write_xlsx(tmp, df, name)
+    return files
+
+
+def _layer_styles(result: Result, layers: list[str], info: dict[str, Any]) -> dict[str, Any]:
+    """The SLD style of each of ``layers`` that has one (geopress.styles), or none without the report extra,
+    whose palette they share; ``info["styles"]`` says which."""
+    missing = report_missing()
+    if missing:
+        info["styles"] = {"written": False, "reason": missing}
+        return {}
+    from . import styles
+
+    found = dict(styles.layer_styles(layers))
+    info["styles"] = {"written": True, "layers": list(found)}
+    return found
+
+
+def style_path(config: Config, layer: str) -> Path:
+    """A layer's SLD file beside the GeoPackage: ``<stem>.<layer>.sld``."""
+    return config.output.path.with_name(f"{config.output.path.stem}.{layer}.sld")
 
 
 def output_targets(config: Config) -> list[Path]:
     """Every file a run of ``config`` can write."""
     out = config.output
     names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
-    return [out.path, *[out.mailing_dir / f"{n}.csv" for n in names], report_path(config), run_json_path(config)]
+    lists = [out.mailing_dir / f"{n}{suffix}" for n in names for suffix in (".csv", ".xlsx")]
+    styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
+    return [out.path, *lists, *[style_path(config, layer) for layer in styled], report_path(config),
+            run_json_path(config)]
 
 
 def report_path(config: Config) -> Path:

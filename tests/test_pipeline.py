@@ -372,14 +372,15 @@ def test_polygon_customers_use_point_on_surface(world):
 
 
 def read_csv(path: Path) -> list[dict[str, str]]:
-    with open(path, newline="", encoding="utf-8") as fh:
+    with open(path, newline="", encoding="utf-8-sig") as fh:  # the byte-order mark written for spreadsheets
         return list(csv.DictReader(fh))
 
 
 def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     run_crafted(crafted)
     mailing = crafted.parent / "out" / "mailing"
-    lists = ["above_hgl.csv", "high_pressure.csv", "low_pressure.csv", "upper_floors.csv"]
+    lists = [f"{n}{suffix}" for n in ("above_hgl", "high_pressure", "low_pressure", "upper_floors")
+             for suffix in (".csv", ".xlsx")]
     assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists])
     high = read_csv(mailing / "high_pressure.csv")
     # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
@@ -401,7 +402,7 @@ def test_flagged_layers_and_zone_summary(crafted):
     out = crafted.parent / "out/pressure.gpkg"
     names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert sorted(names) == sorted(["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors",
-                                    "zone_summary", "service_band", "band_limits", "changes"])
+                                    "zone_summary", "service_band", "band_limits", "changes", "layer_styles"])
     for name in ("customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors"):
         assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
     flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
@@ -450,6 +451,11 @@ def test_customers_layer_has_a_spatial_index(crafted):
         assert con.execute("select count(*) from rtree_customers_geom").fetchone()[0] == len(CRAFTED) - 1
 
 
+#: the layers that get a style, in the order the GeoPackage gets them
+STYLED = ["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors", "service_band", "band_limits",
+          "changes"]
+
+
 def test_run_json_records_the_run(crafted):
     res = run_crafted(crafted)
     root = crafted.parent
@@ -462,9 +468,11 @@ def test_run_json_records_the_run(crafted):
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / f"{p}{n}.csv") for p in ("", "new_")
-        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")
-    ] + [str(root / "out/report.html")]
+        str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
+        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors") for suffix in (".csv", ".xlsx")
+    ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
+    assert info["xlsx"] == {"written": True, "reason": None}
+    assert info["styles"] == {"written": True, "layers": STYLED}
     assert info["config"]["zones"]["source"][0] == {"zone": "Main", "high_water_ft": 1200.0, "low_water_ft": 1180.0,
                                                     "kind": "tank"}
     assert info["terrain"][0]["vertical_unit"] == "ft" and info["terrain"][0]["customers_sampled"] == 11
@@ -485,8 +493,9 @@ def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypa
     run_crafted(crafted)
     before = output_files(root)
     assert set(before) == {"out/pressure.gpkg", "out/run.json", "out/report.html"} | {
-        f"out/mailing/{p}{n}.csv" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
-                                                                   "upper_floors")}
+        f"out/mailing/{p}{n}{suffix}" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
+                                                                       "upper_floors") for suffix in (".csv", ".xlsx")
+    } | {f"out/pressure.{layer}.sld" for layer in STYLED}
     # a second run that would change every output, and runs out of space part way
     crafted.write_text(crafted.read_text().replace("high_water_ft = 1200.0", "high_water_ft = 1190.0"))
 

@@ -18,6 +18,7 @@ import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 import rasterio
@@ -146,12 +147,13 @@ def read_tiles(paths, configured_unit: str | None) -> list[Tile]:
 
 
 def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method: str, max_pixels: float,
-                  reports: list[RasterReport]) -> np.ndarray:
+                  reports: list[RasterReport], sampled: Callable[[int], None] | None = None) -> np.ndarray:
     """Sample ``src`` (the group opened) at fractional pixel coordinates of its grid (NaN outside).
 
     Reads only the windows :func:`~geopress.terrain.plan_windows` plans; each
     tile's report counts the windows that touched it, its pixels in them and
-    the customers it served.
+    the customers it served. ``sampled(n)`` is told after each window how many
+    customers got a value from it.
     """
     h, w = group.height, group.width
     out = np.full(cols.shape, np.nan)
@@ -167,6 +169,8 @@ def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method:
         out[idx] = sample_pixels(arr, cols[idx] - c0, rows[idx] - r0, nodata=group.nodata, method=method)
         touched = np.flatnonzero((rects[:, 0] < r1) & (rects[:, 1] > r0) & (rects[:, 2] < c1) & (rects[:, 3] > c0))
         got = local[~np.isnan(out[idx])]
+        if sampled is not None:
+            sampled(got.size)
         served = first_tile(rects[touched], ri[got], ci[got])
         counts = np.bincount(served[served >= 0], minlength=touched.size)
         for j, t in enumerate(touched):
@@ -178,14 +182,26 @@ def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method:
     return out
 
 
-def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *, warn: bool = True) -> TerrainResult:
+def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *, warn: bool = True,
+                   count: Callable[[int, int | None], None] | None = None) -> TerrainResult:
     """Ground elevation, ft, at map points ``x``, ``y`` in ``crs``; NaN where no raster has a value.
 
     The rasters are grouped and read as :mod:`geopress.io.mosaic` describes;
     each customer is reprojected to the CRS of the group that serves it.
     Never more than ``cfg.memory_mb`` of raster is read at once. With
     ``warn=False`` implausible elevations are only recorded in ``ranges``.
+    ``count(done, total)`` is told, after each window read, how many of the
+    ``total`` customers with a location have a value so far, and ``total``
+    once every raster has been tried.
     """
+    total = int(np.count_nonzero(~np.isnan(x)))
+    done = 0
+
+    def sampled(n: int) -> None:
+        nonlocal done
+        done += n
+        count(done, total)
+
     ground = np.full(x.shape, np.nan)
     tiles = read_tiles(cfg.paths, cfg.vertical_units)
     reports = {t.path: RasterReport(path=str(t.path), crs=t.crs_name, vertical_unit=t.unit, shape=(t.height, t.width))
@@ -211,13 +227,16 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, *
         max_pixels = memory_bytes / np.dtype(group.dtype).itemsize
         # GDAL_NUM_THREADS: GeoTIFF blocks of one read are decompressed on every core
         with rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS"), open_group(group) as src:
-            values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles])
+            values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles],
+                                   sampled if count is not None else None)
         ft = values * feet_per_unit(group.unit) + cfg.datum_offset_ft
         lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
         result.ranges[group.label()] = (group.unit, float(lo), float(hi))
         ground[todo] = ft
         log.info("sampled %d customers from %s", int(np.count_nonzero(~np.isnan(ft))), group.label())
     result.inside_any = int(inside_any.sum())
+    if count is not None:
+        count(total, total)
     if warn:
         warn_implausible(result)
     return result

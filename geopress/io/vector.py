@@ -10,6 +10,7 @@ import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Callable
 
 import geopandas as gpd
 import numpy as np
@@ -79,16 +80,26 @@ _TEXT = ({pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.St
          if int(pd.__version__.split(".")[0]) >= 3 else None)
 
 
-def read_layer(path: Path, layer: str, columns: list[str]) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
+def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
+               total: int | None = None) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
     """The ``columns`` and geometry of a layer, errors translated, and its geometries as the file's WKB.
 
     The same frame as ``pyogrio.read_dataframe(use_arrow=True)``, made without
     a Python bytes object per row: the WKB goes straight from Arrow to
     shapely, and is returned too, so that a writer can pass unchanged
-    geometries through instead of encoding them again.
+    geometries through instead of encoding them again. The features are read
+    in Arrow batches, as ``pyogrio.read_arrow`` reads them, and ``count(done,
+    total)`` is told the features read after each.
     """
     try:
-        meta, table = pyogrio.read_arrow(path, layer=layer, columns=columns)
+        with pyogrio.open_arrow(path, layer=layer, columns=columns, use_pyarrow=True) as (meta, reader):
+            batches, done = [], 0
+            for batch in reader:
+                batches.append(batch)
+                done += len(batch)
+                if count is not None:
+                    count(done, total)
+            table = pa.Table.from_batches(batches, schema=reader.schema)
         name = meta["geometry_name"] or "wkb_geometry"
         if name not in table.column_names:
             raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
@@ -152,21 +163,26 @@ def customers_crs(cfg: CustomersConfig) -> CRS:
     return _crs(cfg.path, layer, layer_info(cfg.path, layer)["crs"])
 
 
-def read_customers(cfg: CustomersConfig) -> Customers:
-    """Read and check the customers layer; polygons become shapely's point_on_surface."""
+def read_customers(cfg: CustomersConfig, *, count: Callable[[int, int | None], None] | None = None) -> Customers:
+    """Read and check the customers layer; polygons become shapely's point_on_surface.
+
+    ``count(done, total)`` is told the features read as they are (see :func:`read_layer`).
+    """
     path = cfg.path
     layer = resolve_layer(path, cfg.layer, "customers")
     info = layer_info(path, layer)
     wanted = {"customers.id_field": cfg.id_field}
     wanted.update({f"customers.mail_fields[{i}]": f for i, f in enumerate(cfg.mail_fields)})
+    wanted.update({f"customers.letter_fields[{i}]": f for i, f in enumerate(cfg.letter_fields)})
     if cfg.floors_field:
         wanted["customers.floors_field"] = cfg.floors_field
     check_fields(path, layer, info, wanted)
     crs = _crs(path, layer, info["crs"])
     if info["features"] == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
-    columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else [])]))
-    df, wkb = read_layer(path, layer, columns)
+    columns = list(dict.fromkeys([cfg.id_field, *cfg.mail_fields, *([cfg.floors_field] if cfg.floors_field else []),
+                                  *cfg.letter_fields]))
+    df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
