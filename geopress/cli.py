@@ -24,6 +24,7 @@ from . import pipeline
 from ._version import __version__
 from .config import load_config
 from .errors import GeopressError, InputError, OutputError
+from .io.starter import write_starter
 from .scenario import load_scenario
 
 log = logging.getLogger("geopress")
@@ -341,6 +342,30 @@ def compare_cmd(ctx: click.Context, before: Path, after: Path, out: Path | None,
         for r in grp.itertuples(index=False):
             _say(f"    {r.status_a} -> {r.status_b}: {r.customers}")
     _say(f"written: {', '.join(str(p) for p in comp.outputs)}")
+
+
+@cli.command("init")
+@global_options
+@click.argument("config", type=click.Path(path_type=Path, dir_okay=False), default="geopress.toml", required=False)
+@click.option("--customers", type=click.Path(path_type=Path), help="Your customers: parcels or meter points.")
+@click.option("--customers-layer", metavar="LAYER", help="The customers' layer (default: the one with most features).")
+@click.option("--id-field", metavar="FIELD", help="The customer id field (default: proposed from the unique fields).")
+@click.option("--terrain", type=click.Path(path_type=Path), multiple=True, help="A DEM raster (repeatable).")
+@click.option("--zones", type=click.Path(path_type=Path), help="Your pressure-zone polygons.")
+@click.option("--zones-layer", metavar="LAYER", help="The zones' layer (default: the polygon layer with most features).")
+@click.option("--zone-field", metavar="FIELD", help="The field naming each zone (default: guessed).")
+@click.option("--force", is_flag=True, help="Replace CONFIG if it exists.")
+@click.pass_context
+@guarded
+def init_cmd(ctx: click.Context, config: Path, customers: Path | None, customers_layer: str | None,
+             id_field: str | None, terrain: tuple[Path, ...], zones: Path | None, zones_layer: str | None,
+             zone_field: str | None, force: bool) -> None:
+    """Write a commented starter CONFIG (default geopress.toml) from your own files."""
+    started = write_starter(config, customers=customers, customers_layer=customers_layer, id_field=id_field,
+                            terrain=terrain, zones=zones, zones_layer=zones_layer, zone_field=zone_field, force=force)
+    left = len(started.placeholders)
+    _say(f"wrote {started.path}: fill in the {left} values marked FILL IN, then run: geopress check {started.path}"
+         if left else f"wrote {started.path}; check it with: geopress check {started.path}")
 
 
 def demo_config_path() -> Path:

@@ -177,6 +177,15 @@ def config_from_dict(
     data = dict(data)
     if overrides:
         data = apply_overrides(data, overrides, reader)
+    left = placeholders(data)
+    if left:
+        where = []
+        for key in left:
+            line = reader.line_of(key)
+            where.append(f"{key} (line {line})" if line else key)
+        raise ConfigError(f"{len(left)} {'value is' if len(left) == 1 else 'values are'} still a placeholder: "
+                          f"{', '.join(where)}; replace each \"{PLACEHOLDER} ...\" with the real value (the comment "
+                          "above it says what)", path=reader.source_path, key=left[0])
     cfg = reader.build(data)
     return replace(cfg, overrides=tuple((str(k), v) for k, v in (overrides or {}).items()))
 
@@ -208,6 +217,25 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
             node = nxt
         node[parts[-1]] = value
     return out
+
+
+#: how a value that ``geopress init`` could not know starts: the loader refuses it, naming each key left
+PLACEHOLDER = "FILL IN"
+
+
+def placeholders(data: Mapping[str, Any], prefix: str = "") -> list[str]:
+    """The dotted keys (``zones.source[0].kind``, ``terrain.paths[0]``) whose value is still a placeholder."""
+    found: list[str] = []
+    for name, value in data.items():
+        key = f"{prefix}.{name}" if prefix else str(name)
+        items = value if isinstance(value, list) else [value]
+        for i, item in enumerate(items):
+            where = f"{key}[{i}]" if isinstance(value, list) else key
+            if isinstance(item, dict):
+                found += placeholders(item, where)
+            elif isinstance(item, str) and item.startswith(PLACEHOLDER):
+                found.append(where)
+    return found
 
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
