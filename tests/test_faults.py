@@ -29,9 +29,9 @@ from geopress.io import write as write_io
 from nightly_support import error_line, good_run, run, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
-#: renames in a second run's commit: the journal, then a backup and a new file for each of 11 outputs
-#: (GeoPackage, 4 mailing lists, 4 new_* lists, report.html, run.json).
-COMMIT_RENAMES = 1 + 2 * 11
+#: renames in a second run's commit: the journal, then a backup and a new file for each of 27 outputs
+#: (GeoPackage, 4 mailing lists and 4 new_* lists as CSV and .xlsx, 8 layer styles, report.html, run.json).
+COMMIT_RENAMES = 1 + 2 * 27
 
 
 def disk_full(*args, **kwargs):
