@@ -1,8 +1,11 @@
 """Optional dependencies, checked once; each message names the extra to install.
 
 ``HAS_REPORT`` says whether the ``report`` extra (matplotlib, jinja2 and plotly) is
-installed and :func:`report_missing` names what is missing. :func:`import_dask`
-returns the ``dask`` extra's modules or raises MissingExtraError.
+installed and :func:`report_missing` names what is missing; the layer styles
+need it too (their palette is the report's). :func:`xlsx_missing` says the
+same of openpyxl, which the report extra also brings, for the mailing lists'
+.xlsx copies. :func:`import_dask` returns the ``dask`` extra's modules or
+raises MissingExtraError.
 """
 
 from __future__ import annotations
@@ -22,6 +25,16 @@ def report_missing() -> str | None:
     if HAS_REPORT:
         return None
     return f"{' and '.join(_MISSING_REPORT)} not installed; install the report extra: pip install 'geopress[report]'"
+
+
+HAS_XLSX = importlib.util.find_spec("openpyxl") is not None
+
+
+def xlsx_missing() -> str | None:
+    """None when the .xlsx copies can be written, else a sentence naming openpyxl and the extra."""
+    if HAS_XLSX:
+        return None
+    return "openpyxl not installed; install the report extra: pip install 'geopress[report]'"
 
 
 def import_dask() -> tuple[ModuleType, ModuleType]:

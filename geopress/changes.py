@@ -156,13 +156,13 @@ def newly_in_status(table: pd.DataFrame) -> dict[str, np.ndarray]:
 
 def new_mailing_lists(
     customers: pd.DataFrame, table: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
-    full: Mapping[str, pd.DataFrame] | None = None,
+    full: Mapping[str, pd.DataFrame] | None = None, letter_fields: Sequence[str] = (),
 ) -> dict[str, pd.DataFrame]:
     """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the newly-in-status customers.
 
     ``full`` may hold the run's own lists by name (``high_pressure`` ...),
     as :func:`geopress.tables.mailing_lists` makes them from ``customers``
-    with the same fields: a status whose every customer is newly in it (a
+    with the same fields (``letter_fields`` as there): a status whose every customer is newly in it (a
     first run) then takes a copy of its list instead of building it again.
     """
     out = {}
@@ -172,7 +172,8 @@ def new_mailing_lists(
         if full is not None and name in full and rows.size and rows.size == int((status_col == status).sum()):
             out[f"new_{name}"] = full[name].copy()
             continue
-        out[f"new_{name}"] = mailing_list(customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields)
+        out[f"new_{name}"] = mailing_list(customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields,
+                                          letter_fields=letter_fields)
     return out
 
 

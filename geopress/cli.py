@@ -12,6 +12,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import os
 import signal
 import sys
 import threading
@@ -27,6 +28,7 @@ from . import pipeline
 from ._version import __version__
 from .config import load_config
 from .errors import GeopressError, InputError, OutputError
+from .io.starter import write_starter
 from .scenario import load_scenario
 
 log = logging.getLogger("geopress")
@@ -70,9 +72,71 @@ class _OneLine(logging.Formatter):
         return msg if record.levelno == logging.INFO else f"{level}: {msg}"
 
 
-def _configure_logging(verbose: int, quiet: int) -> None:
+class _Bars:
+    """Progress bars on stderr (tqdm), one per step of a run (the pipeline's ``progress`` callback).
+
+    A step that counts its work (customers read and sampled, outputs written)
+    gets a bar with its count, rate and time left, kept when done; any other
+    step a line with its elapsed time, cleared when the next begins.
+    """
+
+    def __init__(self) -> None:
+        import threading
+
+        from tqdm import tqdm
+
+        tqdm.monitor_interval = 0  # no monitor thread: the run forks child processes, which a threaded parent must not
+        tqdm.set_lock(threading.RLock())  # not tqdm's default multiprocessing lock, which starts a helper process
+        self.tqdm = tqdm
+        self.pid = os.getpid()  # a forked child's copy of the bars is stale: it logs as without them
+        self.bar = None
+        self.step: str | None = None
+        self.counted = False
+
+    def __call__(self, step: str, done: int | None = None, total: int | None = None, unit: str = "") -> None:
+        if step != self.step or (done is not None and not self.counted):
+            self.close()
+            self.step, self.counted = step, done is not None
+            if self.counted:
+                self.bar = self.tqdm(desc=step, total=total, unit=f" {unit}", file=sys.stderr, dynamic_ncols=True)
+            else:
+                self.bar = self.tqdm(desc=step, total=None, bar_format="{desc} ... {elapsed}", file=sys.stderr,
+                                     leave=False)
+        if done is not None:
+            if total is not None and self.bar.total != total:
+                self.bar.total = total
+            self.bar.update(done - self.bar.n)
+
+    def write(self, line: str) -> None:
+        """A log line above the bars."""
+        self.tqdm.write(line, file=sys.stderr)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+        self.bar, self.step, self.counted = None, None, False
+
+
+class _Console(logging.StreamHandler):
+    """Log lines to stderr, through the progress bars while there are any, so a line never breaks a bar."""
+
+    def __init__(self, bars: _Bars | None) -> None:
+        super().__init__(sys.stderr)
+        self.bars = bars
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if self.bars is None or self.bars.bar is None or self.bars.pid != os.getpid():
+            super().emit(record)
+            return
+        try:
+            self.bars.write(self.format(record))
+        except Exception:  # as logging.StreamHandler does
+            self.handleError(record)
+
+
+def _configure_logging(verbose: int, quiet: int, bars: _Bars | None = None) -> None:
     level = logging.INFO - 10 * verbose + 10 * quiet
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _Console(bars)
     handler.setFormatter(_OneLine())
     handler.addFilter(lambda record: record.name != SUMMARY_LOGGER)  # the summary goes to --log-file only
     for name in ("geopress", "py.warnings"):
@@ -87,10 +151,9 @@ def _log_warning(message, category, filename, lineno, file=None, line=None) -> N
     logging.getLogger("py.warnings").warning("%s", warnings.formatwarning(message, category, filename, lineno, line))
 
 
-def _progress(ctx: click.Context) -> Callable[[str], None] | None:
-    if ctx.obj["quiet"] or not sys.stderr.isatty():
-        return None
-    return lambda step: click.echo(f"geopress: {step} ...", err=True)
+def _progress(ctx: click.Context) -> _Bars | None:
+    """The pipeline's progress callback: bars on a terminal, unless quiet; None otherwise."""
+    return ctx.obj["bars"]
 
 
 def guarded(fn: Callable) -> Callable:
@@ -100,27 +163,32 @@ def guarded(fn: Callable) -> Callable:
     def wrapper(*args, **kwargs):
         ctx = click.get_current_context()
         debug = ctx.obj["debug"]
-        _configure_logging(ctx.obj["verbose"], ctx.obj["quiet"])
+        bars = ctx.obj["bars"] = None if _quiet(ctx) or not sys.stderr.isatty() else _Bars()
+        _configure_logging(ctx.obj["verbose"], ctx.obj["quiet"], bars)
         try:
             with warnings.catch_warnings(), _sigterm_unwinds():
                 warnings.simplefilter("always")
                 warnings.showwarning = _log_warning  # restored when the block ends, even in-process
                 return fn(*args, **kwargs)
         except GeopressError as exc:
+            _close(bars)
             _finish_log(ctx, f"run failed: exit {EXIT_BAD_INPUT}: {exc}")
             if debug:
                 raise
             click.echo(f"error: {exc}", err=True)
             ctx.exit(EXIT_BAD_INPUT)
         except Terminated:
+            _close(bars)
             _finish_log(ctx, f"run failed: exit {EXIT_TERMINATED}: terminated (SIGTERM); earlier outputs are unchanged")
             click.echo("error: terminated (SIGTERM); earlier outputs are unchanged", err=True)
             ctx.exit(EXIT_TERMINATED)
         except KeyboardInterrupt:
+            _close(bars)
             _finish_log(ctx, f"run failed: exit {EXIT_INTERRUPTED}: interrupted; earlier outputs are unchanged")
             click.echo("error: interrupted; earlier outputs are unchanged", err=True)
             ctx.exit(EXIT_INTERRUPTED)
         except Exception as exc:  # a bug or an environment failure
+            _close(bars)
             first = str(exc).splitlines()[0] if str(exc) else ""
             _finish_log(ctx, f"run failed: exit {EXIT_FAILURE}: {type(exc).__name__}: {first}")
             if debug:
@@ -130,6 +198,12 @@ def guarded(fn: Callable) -> Callable:
             ctx.exit(EXIT_FAILURE)
 
     return wrapper
+
+
+def _close(bars: _Bars | None) -> None:
+    """Finish the last bar, before a result or an error is printed."""
+    if bars is not None:
+        bars.close()
 
 
 def _counts_text(counts: dict[str, int], skip: tuple[str, ...] = ()) -> str:
@@ -144,16 +218,42 @@ def _summary(result: pipeline.Result) -> str:
     return f"{len(result.customers)} customers: {counts} ({seconds:.1f} s){where}"
 
 
+def _global_option(ctx: click.Context, param: click.Parameter, value: int | bool) -> None:
+    """Merge a global option into ``ctx.obj``: the group's value first, then the subcommand's added to it,
+    so ``geopress -v run -v CONFIG`` is ``-vv``."""
+    obj = ctx.ensure_object(dict)
+    before = obj.get(param.name, 0) if ctx.parent is not None else 0  # the group's own call starts afresh
+    obj[param.name] = (bool(before) or value) if param.name == "debug" else before + value
+
+
+def global_options(command: Callable) -> Callable:
+    """-v, -q and --debug, accepted before the subcommand and after it (see :func:`_global_option`)."""
+    for decls, kwargs in reversed((
+        (("-v", "--verbose"), dict(count=True, help="More log output (repeat for debug).")),
+        (("-q", "--quiet"), dict(count=True, help="Print nothing on success: warnings and errors only "
+                                                  "(-qq: errors only).")),
+        (("--debug",), dict(is_flag=True, help="Show tracebacks instead of one-line errors.")),
+    )):
+        command = click.option(*decls, **kwargs, expose_value=False, callback=_global_option)(command)
+    return command
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="geopress")
-@click.option("-v", "--verbose", count=True, help="More log output (repeat for debug).")
-@click.option("-q", "--quiet", count=True, help="Less log output: warnings and errors only.")
-@click.option("--debug", is_flag=True, help="Show tracebacks instead of one-line errors.")
-@click.pass_context
-def cli(ctx: click.Context, verbose: int, quiet: int, debug: bool) -> None:
+@global_options
+def cli() -> None:
     """Static service-pressure screening of water customers."""
-    ctx.ensure_object(dict)
-    ctx.obj.update(verbose=verbose, quiet=quiet, debug=debug)
+
+
+def _quiet(ctx: click.Context) -> bool:
+    """-q given more often than -v: print nothing on success."""
+    return ctx.obj["quiet"] > ctx.obj["verbose"]
+
+
+def _say(text: str) -> None:
+    """A result line on stdout, unless quiet: a quiet command prints nothing when it succeeds."""
+    if not _quiet(click.get_current_context()):
+        click.echo(text)
 
 
 _set_option = click.option(
@@ -208,6 +308,7 @@ def _run_line(result: pipeline.Result) -> str:
 
 
 @cli.command("run")
+@global_options
 @click.argument("config", type=click.Path(path_type=Path))
 @_set_option
 @click.option("--out-dir", type=click.Path(path_type=Path), default=None,
@@ -239,13 +340,15 @@ def run_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...], out_
     cfg = load_scenario(config, assignments, out_dir, replace_outputs=replace_outputs)
     result = pipeline.run(cfg, progress=_progress(ctx), baseline=baseline, engine=engine, scheduler=scheduler,
                           partitions=partitions, accept_drop=accept_drop)
-    click.echo(_summary(result))
+    _close(_progress(ctx))
+    _say(_summary(result))
     since = result.info["changes"]["baseline"] or "no earlier run"
-    click.echo(f"changes since {since}: {_changes_text(result)}")
+    _say(f"changes since {since}: {_changes_text(result)}")
     _finish_log(ctx, _run_line(result))
 
 
 @cli.command("check")
+@global_options
 @click.argument("config", type=click.Path(path_type=Path))
 @_set_option
 @click.pass_context
@@ -254,11 +357,12 @@ def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) ->
     """Validate CONFIG and every input; print what a run would process; write nothing."""
     report = pipeline.check(load_scenario(config, assignments, writes=False))
     for line in report.lines:
-        click.echo(line)
-    click.echo("check passed")
+        _say(line)
+    _say("check passed")
 
 
 @cli.command("compare")
+@global_options
 @click.argument("before", type=click.Path(path_type=Path))
 @click.argument("after", type=click.Path(path_type=Path))
 @click.option("--out", type=click.Path(path_type=Path), default=None,
@@ -269,12 +373,36 @@ def check_cmd(ctx: click.Context, config: Path, assignments: tuple[str, ...]) ->
 def compare_cmd(ctx: click.Context, before: Path, after: Path, out: Path | None, id_field: str | None) -> None:
     """List the customers whose status differs between two runs' GeoPackages, with counts per zone."""
     comp = pipeline.compare(before, after, out=out, id_field=id_field)
-    click.echo(f"{len(comp.differences)} customers differ in status")
+    _say(f"{len(comp.differences)} customers differ in status")
     for zone, grp in comp.by_zone.groupby("zone", sort=True):
-        click.echo(f"  {zone}: {int(grp['customers'].sum())}")
+        _say(f"  {zone}: {int(grp['customers'].sum())}")
         for r in grp.itertuples(index=False):
-            click.echo(f"    {r.status_a} -> {r.status_b}: {r.customers}")
-    click.echo(f"written: {', '.join(str(p) for p in comp.outputs)}")
+            _say(f"    {r.status_a} -> {r.status_b}: {r.customers}")
+    _say(f"written: {', '.join(str(p) for p in comp.outputs)}")
+
+
+@cli.command("init")
+@global_options
+@click.argument("config", type=click.Path(path_type=Path, dir_okay=False), default="geopress.toml", required=False)
+@click.option("--customers", type=click.Path(path_type=Path), help="Your customers: parcels or meter points.")
+@click.option("--customers-layer", metavar="LAYER", help="The customers' layer (default: the one with most features).")
+@click.option("--id-field", metavar="FIELD", help="The customer id field (default: proposed from the unique fields).")
+@click.option("--terrain", type=click.Path(path_type=Path), multiple=True, help="A DEM raster (repeatable).")
+@click.option("--zones", type=click.Path(path_type=Path), help="Your pressure-zone polygons.")
+@click.option("--zones-layer", metavar="LAYER", help="The zones' layer (default: the polygon layer with most features).")
+@click.option("--zone-field", metavar="FIELD", help="The field naming each zone (default: guessed).")
+@click.option("--force", is_flag=True, help="Replace CONFIG if it exists.")
+@click.pass_context
+@guarded
+def init_cmd(ctx: click.Context, config: Path, customers: Path | None, customers_layer: str | None,
+             id_field: str | None, terrain: tuple[Path, ...], zones: Path | None, zones_layer: str | None,
+             zone_field: str | None, force: bool) -> None:
+    """Write a commented starter CONFIG (default geopress.toml) from your own files."""
+    started = write_starter(config, customers=customers, customers_layer=customers_layer, id_field=id_field,
+                            terrain=terrain, zones=zones, zones_layer=zones_layer, zone_field=zone_field, force=force)
+    left = len(started.placeholders)
+    _say(f"wrote {started.path}: fill in the {left} values marked FILL IN, then run: geopress check {started.path}"
+         if left else f"wrote {started.path}; check it with: geopress check {started.path}")
 
 
 def demo_config_path() -> Path:
@@ -289,6 +417,7 @@ def demo_config_path() -> Path:
 
 
 @cli.command("demo")
+@global_options
 @click.option("--out", "out_dir", type=click.Path(path_type=Path), default=Path("geopress-demo-out"),
               show_default=True, help="Folder for the demo's outputs.")
 @click.pass_context
@@ -301,10 +430,11 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
         "output.mailing_dir": str(out / "mailing"),
     })
     result = pipeline.run(cfg, progress=_progress(ctx))
-    click.echo(_summary(result))
-    click.echo(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
+    _close(_progress(ctx))
+    _say(_summary(result))
+    _say(f"open {out / 'pressure.gpkg'} in a GIS viewer; mailing lists are in {out / 'mailing'}")
     if result.info.get("report", {}).get("written"):
-        click.echo(f"report: {result.info['report']['path']}")
+        _say(f"report: {result.info['report']['path']}")
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -33,13 +33,19 @@ from .units import UNIT_SYSTEMS
 
 @dataclass(frozen=True)
 class CustomersConfig:
-    """Where the customers are. ``floors_field`` holds stories above ground."""
+    """Where the customers are. ``floors_field`` holds stories above ground.
+
+    ``mail_fields`` make the mailing address, the key a mailing list groups by;
+    ``letter_fields`` are carried to the lists too but are not part of that key:
+    per address, their distinct values in account order, joined by "; ".
+    """
 
     path: Path
     id_field: str
     layer: str | None = None
     mail_fields: tuple[str, ...] = ()
     floors_field: str | None = None
+    letter_fields: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -95,16 +101,18 @@ class OutputConfig:
 
     ``units`` ("us": ft, psi; "si": m, kPa) applies to the report and the
     mailing lists; the GeoPackage keeps ft and psi. ``report`` writes
-    report.html beside the GeoPackage. ``max_drop_percent``: a run whose
-    customers dropped by more than this share of the baseline's is refused
-    (an export cut short). ``child_timeout_s``: the longest a run waits for
-    its child process's job (the service band, writing the GeoPackage).
+    report.html beside the GeoPackage. ``xlsx`` writes an .xlsx copy beside
+    each mailing list's CSV. ``max_drop_percent``: a run whose customers
+    dropped by more than this share of the baseline's is refused (an export
+    cut short). ``child_timeout_s``: the longest a run waits for its child
+    process's job (the service band, writing the GeoPackage).
     """
 
     path: Path
     mailing_dir: Path
     units: str = "us"
     report: bool = True
+    xlsx: bool = True
     max_drop_percent: float = 20.0
     child_timeout_s: float = 3600.0
 
@@ -225,6 +233,15 @@ def config_from_dict(
     data = dict(data)
     if overrides:
         data = apply_overrides(data, overrides, reader, origins)
+    left = placeholders(data)
+    if left:
+        where = []
+        for key in left:
+            line = reader.line_of(key)
+            where.append(f"{key} (line {line})" if line else key)
+        raise ConfigError(f"{len(left)} {'value is' if len(left) == 1 else 'values are'} still a placeholder: "
+                          f"{', '.join(where)}; replace each \"{PLACEHOLDER} ...\" with the real value (the comment "
+                          "above it says what)", path=reader.source_path, key=left[0])
     cfg = reader.build(data)
     return replace(cfg, overrides=tuple((str(k), v) for k, v in (overrides or {}).items()))
 
@@ -267,6 +284,23 @@ def apply_overrides(data: Mapping[str, Any], overrides: Mapping[str, Any], reade
 
 def _origin(key: str, origins: Mapping[str, str] | None) -> str:
     return (origins or {}).get(key, f"--set {key}")
+#: how a value that ``geopress init`` could not know starts: the loader refuses it, naming each key left
+PLACEHOLDER = "FILL IN"
+
+
+def placeholders(data: Mapping[str, Any], prefix: str = "") -> list[str]:
+    """The dotted keys (``zones.source[0].kind``, ``terrain.paths[0]``) whose value is still a placeholder."""
+    found: list[str] = []
+    for name, value in data.items():
+        key = f"{prefix}.{name}" if prefix else str(name)
+        items = value if isinstance(value, list) else [value]
+        for i, item in enumerate(items):
+            where = f"{key}[{i}]" if isinstance(value, list) else key
+            if isinstance(item, dict):
+                found += placeholders(item, where)
+            elif isinstance(item, str) and item.startswith(PLACEHOLDER):
+                found.append(where)
+    return found
 
 
 _GLOB_CHARS = re.compile(r"[*?\[]")
@@ -317,7 +351,7 @@ class _Reader:
             start = hits[nth]
             if leaf == "":
                 return start + 1
-        key_re = re.compile(r"^\s*" + re.escape(leaf) + r"\s*=")
+        key_re = re.compile(r"^\s*" + re.escape(re.sub(r"\[\d+\]$", "", leaf)) + r"\s*=")  # a list's item: its key
         for i in range(start + (1 if pattern is not None else 0), len(self.lines)):
             if i > start and self.lines[i].lstrip().startswith("["):
                 break
@@ -424,20 +458,32 @@ class _Reader:
 
     def customers(self, t: dict[str, Any]) -> CustomersConfig:
         s = "customers"
-        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field"})
+        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field", "letter_fields"})
         cfg = CustomersConfig(
             path=self.path(self.get(t, s, "path", "str"), "customers.path"),
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
             floors_field=self.get(t, s, "floors_field", "str", None),
+            letter_fields=self.get(t, s, "letter_fields", "str_list", ()),
         )
         named = [("customers.id_field", cfg.id_field), ("customers.floors_field", cfg.floors_field)]
         named += [(f"customers.mail_fields[{i}]", f) for i, f in enumerate(cfg.mail_fields)]
+        named += [(f"customers.letter_fields[{i}]", f) for i, f in enumerate(cfg.letter_fields)]
         for key, name in named:
             if name in RESULT_COLUMNS:
                 raise self.error(key, f"field {name!r} has the name of a result column "
                                       f"({', '.join(RESULT_COLUMNS)}); rename it in the layer")
+        listed = {cfg.id_field: "customers.id_field (the lists show it as accounts)",
+                  **{f: "customers.mail_fields, the mailing key" for f in cfg.mail_fields}}
+        seen: set[str] = set()
+        for i, name in enumerate(cfg.letter_fields):
+            if name in listed:
+                raise self.error(f"customers.letter_fields[{i}]", f"field {name!r} is already in {listed[name]}; "
+                                                                  "remove it from letter_fields")
+            if name in seen:
+                raise self.error(f"customers.letter_fields[{i}]", f"field {name!r} is listed twice; keep one")
+            seen.add(name)
         return cfg
 
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
@@ -565,16 +611,18 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "max_drop_percent", "child_timeout_s"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
         units = self.get(t, s, "units", "str", "us")
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
-        report = t.get("report", True)
-        if not isinstance(report, bool):
-            raise self.error("output.report", f"must be true or false, not {report!r}")
+        flags = {}
+        for name in ("report", "xlsx"):
+            flags[name] = t.get(name, True)
+            if not isinstance(flags[name], bool):
+                raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")
         drop = self.get(t, s, "max_drop_percent", "number", 20.0)
         if not 0 <= drop <= 100:
             raise self.error("output.max_drop_percent", f"must be between 0 and 100, not {drop:g}")
@@ -582,4 +630,4 @@ class _Reader:
         if timeout <= 0:
             raise self.error("output.child_timeout_s", f"must be positive, not {timeout:g}")
         return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"),
-                            units=units, report=report, max_drop_percent=drop, child_timeout_s=timeout)
+                            units=units, max_drop_percent=drop, child_timeout_s=timeout, **flags)

@@ -31,7 +31,7 @@ from . import classify as cls
 from . import guards
 from . import planning
 from . import runner
-from ._compat import report_missing
+from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
 from .config import Config, load_config
@@ -48,7 +48,12 @@ from .zones import assign_xy, overlaps
 
 log = logging.getLogger(__name__)
 
-Progress = Callable[[str], None]
+#: called as ``progress(step)`` when a step starts and, in a step that counts its work (customers read
+#: and sampled, outputs written), as ``progress(step, done, total, unit)`` as it goes (``total`` None when
+#: not known). The library never draws anything itself: the command line draws the bars.
+Progress = Callable[..., None]
+#: a step's count of its work: ``count(done, total)``
+Count = Callable[[int, "int | None"], None]
 
 
 
@@ -97,6 +102,14 @@ class _Clock:
         yield
         self.timings[name] = round(time.perf_counter() - t0, 4)
         log.debug("step %s took %.3f s", name, self.timings[name])
+
+    def counter(self, name: str, unit: str, total: int | None = None) -> Count | None:
+        """``count(done, total)`` reporting step ``name``'s ``done`` of ``total`` ``unit`` (``total`` here when the
+        caller gives None); None without progress."""
+        progress = self.progress
+        if progress is None:
+            return None
+        return lambda done, of=None: progress(name, done, total if of is None else of, unit)
 
 
 @contextmanager
@@ -184,8 +197,10 @@ ENGINES = ("local", "dask")
 
 
 def _values(column: pd.Series) -> Any:
-    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row)."""
-    return column.array if column.dtype == "str" else column.to_numpy()
+    """The column's values for a new frame: text as it is (Arrow-backed, no Python string per row), and
+    pandas' nullable types (the floors' Int64) as they are, with their missing values."""
+    extension = isinstance(column.dtype, pd.api.extensions.ExtensionDtype)
+    return column.array if extension else column.to_numpy()
 
 
 def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
@@ -289,7 +304,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
              partitions: int | None) -> Result:
     crit = cfg.criteria
     with clock.step("read customers"):
-        cust = vector_io.read_customers(cfg.customers)
+        cust = vector_io.read_customers(cfg.customers, count=clock.counter("read customers", "customers"))
     # --- scale-out engine: the zone join and terrain sampling per spatial partition on dask
     joined = None
     if engine == "dask":
@@ -312,7 +327,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
     with clock.step("sample terrain"):
-        terrain = joined.terrain if joined else raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs, shift)
+        terrain = joined.terrain if joined else raster_io.sample_terrain(
+            cfg.terrain, cust.x, cust.y, cust.crs, shift, count=clock.counter("sample terrain", "customers"))
         ground = terrain.ground_ft
         # the guards first: too few customers on the terrain is a CRS or extent problem, said as such
         ground_table = apply_guards(cfg, terrain, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]),
@@ -325,7 +341,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                 why = "no customer falls within the terrain's extent; check the CRS of the customers and of the rasters"
             raise InputError(f"{why} (terrain.paths: {paths})", path=cfg.terrain.paths[0], key="terrain.paths")
     with clock.step("compute pressure"):
-        floors = (cust.frame[cfg.customers.floors_field].to_numpy(dtype=np.float64)
+        floors = (cust.frame[cfg.customers.floors_field].to_numpy(dtype=np.float64, na_value=np.nan)
                   if cfg.customers.floors_field else np.full(len(ground), np.nan))
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)
@@ -358,7 +374,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
-            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields).items()}
+            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields,
+            letter_fields=cfg.customers.letter_fields).items()}
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
     with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
@@ -435,7 +452,8 @@ def run_json_path(config: Config) -> Path:
 
 def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker) -> list[Path]:
     """Write every output: the GeoPackage's customer layers in ``worker``'s process while the mailing
-    lists and the report are staged here, then its other layers, run.json, and the renames into place."""
+    lists, the layer styles and the report are staged here, then its other layers, run.json, and the
+    renames into place."""
     cfg = result.config
     out = cfg.output
     t0 = time.perf_counter()
@@ -444,24 +462,36 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker
         gpkg = stage.temp_for(out.path)
         # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
         table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"), _layer_frame(result)))
-        writer = worker.submit(write_io.write_in_child, gpkg, customer_layers(result, table), what="writer",
-                               path=out.path)
+        first_layers = customer_layers(result, table)
+        writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
-        lists = {**result.mailing, **result.new_mailing}
-        for name, df in lists.items():
-            stage.write(out.mailing_dir / f"{name}.csv", lambda tmp, df=df: write_io.write_csv(tmp, df))
         info = dict(result.info)
-        info["outputs"] = [str(out.path), *[str(out.mailing_dir / f"{n}.csv") for n in lists]]
+        files = _list_files(result, info)
+        later = later_layers(result)
+        styles = _layer_styles(result, [*first_layers, *later], info)
+        for layer, style in styles.items():
+            files[style_path(cfg, layer)] = lambda tmp, text=style.sld: write_io.write_text(tmp, text)
+        if styles:
+            later["layer_styles"] = write_io.Styles({k: (v.name, v.description, v.sld) for k, v in styles.items()})
+        # the report, the GeoPackage's first layers and the others, and run.json count as one output each
+        advance = _advance(clock.counter("write outputs", "outputs", len(files) + 4))
+        info["outputs"] = [str(out.path), *[str(p) for p in files]]
+        for target, write in files.items():
+            stage.write(target, write)
+            advance()
         _stage_report(result, info, stage)
+        advance()
         first = stage.wait(out.path, writer.result)
-        later = stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later_layers(result)))
-        info["geopackage_layers_s"] = {**first, **later}
+        advance()
+        info["geopackage_layers_s"] = {**first, **stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later))}
         if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
             stage.link(gpkg, nightly.baseline_link(out.path))
+        advance()
         # run.json is written inside this step: it records the step up to its own writing
         info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
         info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
         stage.write(run_json_path(cfg), lambda tmp: write_io.write_json(tmp, info))
+        advance()
         stage.commit()
         result.info = info
         return [p for p in stage.committed if not p.name.startswith(".")]
@@ -472,11 +502,60 @@ def _layer_frame(result: Result) -> write_io.Encoded | gpd.GeoDataFrame:
     return result.customers if result.wkb is None else write_io.Encoded(result.customers, result.wkb)
 
 
+def _advance(count: Count | None) -> Callable[[], None]:
+    """One more output written, reported through ``count``."""
+    done = [0]
+
+    def advance() -> None:
+        done[0] += 1
+        if count is not None:
+            count(done[0], None)
+
+    return advance
+
+
+def _list_files(result: Result, info: dict[str, Any]) -> dict[Path, Callable[[Path], None]]:
+    """Each mailing list's CSV and, with ``output.xlsx`` and openpyxl, its .xlsx copy, with their writers;
+    ``info["xlsx"]`` says whether the copies are written."""
+    out = result.config.output
+    reason = xlsx_missing() if out.xlsx else "output.xlsx = false"
+    if out.xlsx and reason:
+        log.warning("the mailing lists' .xlsx copies not written: %s", reason)
+    info["xlsx"] = {"written": reason is None, "reason": reason}
+    files: dict[Path, Callable[[Path], None]] = {}
+    for name, df in {**result.mailing, **result.new_mailing}.items():
+        files[out.mailing_dir / f"{name}.csv"] = lambda tmp, df=df: write_io.write_list_csv(tmp, df)
+        if info["xlsx"]["written"]:
+            files[out.mailing_dir / f"{name}.xlsx"] = lambda tmp, df=df, name=name: write_io.write_xlsx(tmp, df, name)
+    return files
+
+
+def _layer_styles(result: Result, layers: list[str], info: dict[str, Any]) -> dict[str, Any]:
+    """The SLD style of each of ``layers`` that has one (geopress.styles), or none without the report extra,
+    whose palette they share; ``info["styles"]`` says which."""
+    missing = report_missing()
+    if missing:
+        info["styles"] = {"written": False, "reason": missing}
+        return {}
+    from . import styles
+
+    found = dict(styles.layer_styles(layers))
+    info["styles"] = {"written": True, "layers": list(found)}
+    return found
+
+
+def style_path(config: Config, layer: str) -> Path:
+    """A layer's SLD file beside the GeoPackage: ``<stem>.<layer>.sld``."""
+    return config.output.path.with_name(f"{config.output.path.stem}.{layer}.sld")
+
+
 def output_targets(config: Config) -> list[Path]:
     """Every file a run of ``config`` can write."""
     out = config.output
     names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
-    return [out.path, nightly.baseline_link(out.path), *[out.mailing_dir / f"{n}.csv" for n in names],
+    lists = [out.mailing_dir / f"{n}{suffix}" for n in names for suffix in (".csv", ".xlsx")]
+    styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
+    return [out.path, nightly.baseline_link(out.path), *lists, *[style_path(config, layer) for layer in styled],
             report_path(config), run_json_path(config)]
 
 
@@ -696,8 +775,9 @@ def compare(a: str | os.PathLike, b: str | os.PathLike, *, out: str | os.PathLik
     from . import compare as compare_mod
     from .io import results
 
-    left, key = results.read_run_customers(Path(a), id_field)
-    right, _ = results.read_run_customers(Path(b), key)
+    left, key = results.read_run_customers(Path(a), id_field, key="BEFORE")
+    right, _ = results.read_run_customers(Path(b), key, key="AFTER",
+                                          id_source="--id-field" if id_field else "the first field of BEFORE")
     diff = compare_mod.status_differences(left, right, key)
     by_zone = compare_mod.counts_by_zone(diff)
     target = Path(out) if out is not None else Path(b).parent / "status_differences.gpkg"

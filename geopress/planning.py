@@ -178,7 +178,7 @@ def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
     others are NaN.
     """
     crit = cfg.criteria
-    floors_all = (customers[cfg.customers.floors_field].to_numpy(dtype=np.float64) if cfg.customers.floors_field
+    floors_all = (customers[cfg.customers.floors_field].to_numpy(dtype=np.float64, na_value=np.nan) if cfg.customers.floors_field
                   else np.full(len(customers), np.nan))
     zone_col = customers["zone"]
     ground_all = customers["ground_ft"].to_numpy(dtype=np.float64)

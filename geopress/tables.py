@@ -2,8 +2,10 @@
 
 Mailing lists group customers by their mailing address (the configured
 ``mail_fields``) so each owner gets one letter listing every account at that
-address. Text cells that a spreadsheet would run as a formula are
-neutralised with a leading apostrophe (the usual CSV-injection defence).
+address, with the ``letter_fields`` (a service address, say) of those
+accounts beside them. The lists keep their text as it is; for a CSV,
+:func:`neutralise_frame` gives text cells that a spreadsheet would run as a
+formula a leading apostrophe (the usual CSV-injection defence).
 """
 
 from __future__ import annotations
@@ -49,10 +51,31 @@ def neutralise_frame(df: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
+def _join_lists(values: pa.Array, offsets: np.ndarray) -> pa.Array:
+    """``"; "``-joined ``values[offsets[i]:offsets[i + 1]]`` for each i ("" where that is empty)."""
+    lists = pa.LargeListArray.from_arrays(pa.array(offsets, type=pa.int64()), values)
+    return pc.binary_join(lists, pa.scalar("; ", values.type))
+
+
 def _join_runs(values: pa.Array, starts: np.ndarray) -> pa.Array:
     """``"; "``-joined ``values[s:e]`` for each run, runs starting at ``starts`` and ending where the next starts."""
-    offsets = pa.array(np.r_[starts, len(values)], type=pa.int64())
-    return pc.binary_join(pa.LargeListArray.from_arrays(offsets, values), pa.scalar("; ", values.type))
+    return _join_lists(values, np.r_[starts, len(values)])
+
+
+def _distinct_per_group(column: pd.Series, order: np.ndarray, group_of_sorted: np.ndarray, n_groups: int) -> pa.Array:
+    """Per group: the distinct texts of ``column`` (missing ones left out) in the order of the sorted rows
+    (``column`` taken in ``order``; ``group_of_sorted`` numbers their groups, ascending), ``"; "``-joined;
+    missing for a group that has none."""
+    text = pa.array(column.astype("string")).cast(pa.large_string()).take(order)
+    encoded = pc.dictionary_encode(text)
+    code = encoded.indices.to_numpy(zero_copy_only=False)  # float, NaN where missing
+    positions = np.flatnonzero(~np.isnan(code))
+    pair = group_of_sorted[positions] * len(encoded.dictionary) + code[positions].astype(np.int64)
+    _, first = np.unique(pair, return_index=True)  # the first row of each (group, text), in account order
+    keep = positions[np.sort(first)]
+    counts = np.bincount(group_of_sorted[keep], minlength=n_groups)
+    joined = _join_lists(text.take(keep), np.r_[0, np.cumsum(counts)])
+    return pc.if_else(pa.array(counts > 0), joined, pa.scalar(None, pa.large_string()))
 
 
 def _group_key(column: pd.Series) -> pa.Array:
@@ -84,24 +107,28 @@ def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 
 
 def mailing_list(
-    customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str]
+    customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str],
+    letter_fields: Sequence[str] = (),
 ) -> pd.DataFrame:
     """One row per distinct mailing address among customers with ``status``.
 
-    Columns: the mail fields, ``accounts`` (ids joined by "; ", sorted),
-    ``customer_count``, ``zones`` and ``worst_psi`` (the highest psi_max for
-    high pressure, the lowest psi_min or psi_top otherwise). Rows are sorted
-    most severe first, then by first account (then by first appearance of the
-    address). Without mail fields, one row per customer.
+    Columns: the mail fields, ``accounts`` (ids joined by "; ", sorted), the
+    ``letter_fields`` (each the distinct values at the address, missing ones
+    left out, in the order of the accounts, joined by "; "), ``customer_count``,
+    ``zones`` and ``worst_psi`` (the highest psi_max for high pressure, the
+    lowest psi_min or psi_top otherwise). Rows are sorted most severe first,
+    then by first account (then by first appearance of the address). Without
+    mail fields, one row per customer. Text is as in ``customers``: see
+    :func:`neutralise_frame` for a CSV.
     """
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
-    cols = [*keys, "accounts", "customer_count", "zones", "worst_psi"]
+    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi"]
     rows = np.flatnonzero((customers["status"] == status).to_numpy(dtype=bool))
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
-    sub = customers[list(dict.fromkeys([id_field, *mail_fields, "zone", col]))].iloc[rows]
+    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col]))].iloc[rows]
     n = len(sub)
     # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
     ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
@@ -114,8 +141,9 @@ def mailing_list(
         new[1:] |= _changes(k.take(order))
     starts = np.flatnonzero(new)
     n_groups = starts.size
-    group = np.empty(n, dtype=np.intp)  # each row's address, numbered in sorted order
-    group[order] = np.cumsum(new) - 1
+    group_of_sorted = np.cumsum(new) - 1  # each sorted row's address, numbered in sorted order
+    group = np.empty(n, dtype=np.intp)  # and each row's
+    group[order] = group_of_sorted
     accounts = _join_runs(ids.take(order), starts)
     distinct, zone = _texts(sub["zone"])
     pairs = np.sort(group * distinct.size + zone)  # zones per address, by address then text
@@ -137,16 +165,21 @@ def mailing_list(
     out_order = np.r_[out_order[~missing], out_order[missing]]
     out = sub[keys].iloc[order[starts[out_order]]].reset_index(drop=True)  # the address as its first id has it
     out["accounts"] = pd.array(accounts.take(out_order), dtype="str")
+    for field in letter_fields:
+        joined = _distinct_per_group(sub[field], order, group_of_sorted, n_groups)
+        out[field] = pd.array(joined.take(out_order), dtype="str")
     out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
     out["zones"] = pd.array(zones.take(out_order), dtype="str")
     out["worst_psi"] = worst[out_order]
-    return neutralise_frame(out[cols])
+    return out[cols]
 
 
-def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str]) -> dict[str, pd.DataFrame]:
+def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
+                  letter_fields: Sequence[str] = ()) -> dict[str, pd.DataFrame]:
     """Every flagged status's mailing list, keyed by output name (``high_pressure`` ...)."""
     return {
-        FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields)
+        FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields,
+                                             letter_fields=letter_fields)
         for status in FLAGGED_LAYERS
     }
 

@@ -153,6 +153,7 @@ def write_config(work: Path) -> Path:
         [output]
         path = "out-geopress/pressure.gpkg"
         mailing_dir = "out-geopress/mailing"
+        xlsx = false  # openpyxl writes one cell at a time: tens of seconds here (README, Speed and scale)
         """)
     cfg = work / "bench.toml"
     cfg.write_text(text)

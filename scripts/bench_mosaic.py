@@ -134,6 +134,7 @@ def write_config(work: Path, name: str, dem: str, customers: str) -> Path:
         [output]
         path = "out-{name}/pressure.gpkg"
         mailing_dir = "out-{name}/mailing"
+        xlsx = false  # openpyxl writes one cell at a time: tens of seconds at this size (README, Speed and scale)
         """))
     return cfg
 

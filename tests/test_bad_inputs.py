@@ -422,8 +422,8 @@ def test_customers_replaced_while_the_run_reads_them(world, prior, monkeypatch):
 
     real = vector.read_customers
 
-    def read_then_replace(cfg):
-        out = real(cfg)
+    def read_then_replace(cfg, **kwargs):
+        out = real(cfg, **kwargs)
         xs, pts = line_points(5)  # the export overwrites the file with a partial one
         rewrite_customers(world, customer_records(xs, xs), pts)
         return out

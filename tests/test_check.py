@@ -186,7 +186,7 @@ def test_check_reads_where_the_customers_are_not_their_mail_fields(world, monkey
 
     seen = []
     real = vector.read_layer
-    monkeypatch.setattr(vector, "read_layer", lambda path, layer, columns: seen.append(columns) or real(path, layer, columns))
+    monkeypatch.setattr(vector, "read_layer", lambda path, layer, columns, **kw: seen.append(columns) or real(path, layer, columns, **kw))
     geopress.check(world.config_path)
     assert seen[0] == ["account", "floors"]  # the id and floors (checked), not owner or mail_address
 

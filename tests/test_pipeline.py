@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import geopandas as gpd
 import pandas as pd
 import pyogrio
 import pytest
@@ -373,14 +374,15 @@ def test_polygon_customers_use_point_on_surface(world):
 
 
 def read_csv(path: Path) -> list[dict[str, str]]:
-    with open(path, newline="", encoding="utf-8") as fh:
+    with open(path, newline="", encoding="utf-8-sig") as fh:  # the byte-order mark written for spreadsheets
         return list(csv.DictReader(fh))
 
 
 def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     run_crafted(crafted)
     mailing = crafted.parent / "out" / "mailing"
-    lists = ["above_hgl.csv", "high_pressure.csv", "low_pressure.csv", "upper_floors.csv"]
+    lists = [f"{n}{suffix}" for n in ("above_hgl", "high_pressure", "low_pressure", "upper_floors")
+             for suffix in (".csv", ".xlsx")]
     assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists])
     high = read_csv(mailing / "high_pressure.csv")
     # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
@@ -402,7 +404,7 @@ def test_flagged_layers_and_zone_summary(crafted):
     out = crafted.parent / "out/pressure.gpkg"
     names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert sorted(names) == sorted(["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors",
-                                    "zone_summary", "service_band", "band_limits", "changes"])
+                                    "zone_summary", "service_band", "band_limits", "changes", "layer_styles"])
     for name in ("customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors"):
         assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
     flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
@@ -428,6 +430,20 @@ def test_an_empty_flagged_layer_is_still_a_point_layer(world):
         assert pyogrio.read_info(world.out, layer=name)["geometry_type"] == "Point"
 
 
+def test_floors_stay_an_integer_field_with_unknown_stories_empty(world):
+    xs, ys = world.extra["xs"], world.extra["ys"]
+    recs = customer_records(list(xs), list(ys), floors=[3, None] + [1] * (len(xs) - 2))
+    gdf = gpd.GeoDataFrame(recs, geometry=gpd.GeoSeries([shapely.Point(x, y) for x, y in zip(xs, ys)]), crs=PROJECTED)
+    gdf["floors"] = gdf["floors"].astype("Int64")  # an integer field with one empty value, as exports have
+    pyogrio.write_dataframe(gdf, world.customers_path, layer="parcels", driver="GPKG")
+    geopress.run(world.config_path)
+    info = pyogrio.read_info(world.out, layer="customers")
+    assert dict(zip(info["fields"], info["ogr_types"]))["floors"] == "OFTInteger64"
+    floors = pyogrio.read_dataframe(world.out, layer="customers", columns=["account", "floors"])
+    assert floors["floors"].iloc[0] == 3 and pd.isna(floors["floors"].iloc[1])
+    assert pyogrio.read_info(world.out, layer="upper_floors")["fields"].tolist() == info["fields"].tolist()
+
+
 def test_customers_layer_has_a_spatial_index(crafted):
     run_crafted(crafted)
     with sqlite3.connect(crafted.parent / "out/pressure.gpkg") as con:
@@ -435,6 +451,12 @@ def test_customers_layer_has_a_spatial_index(crafted):
         assert "rtree_customers_geom" in tables
         # one entry per customer with a geometry
         assert con.execute("select count(*) from rtree_customers_geom").fetchone()[0] == len(CRAFTED) - 1
+
+
+#: the layers that get a style, in the order the GeoPackage gets them
+#: the styled layers in the order the GeoPackage gets them: customers and its views, then the others
+STYLED = ["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors", "changes", "service_band",
+          "band_limits"]
 
 
 def test_run_json_records_the_run(crafted):
@@ -449,9 +471,11 @@ def test_run_json_records_the_run(crafted):
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / f"{p}{n}.csv") for p in ("", "new_")
-        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors")
-    ] + [str(root / "out/report.html")]
+        str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
+        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors") for suffix in (".csv", ".xlsx")
+    ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
+    assert info["xlsx"] == {"written": True, "reason": None}
+    assert info["styles"] == {"written": True, "layers": STYLED}
     assert info["config"]["zones"]["source"][0] == {"zone": "Main", "high_water_ft": 1200.0, "low_water_ft": 1180.0,
                                                     "kind": "tank"}
     assert info["terrain"][0]["vertical_unit"] == "ft" and info["terrain"][0]["customers_sampled"] == 11
@@ -472,8 +496,9 @@ def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypa
     run_crafted(crafted)
     before = output_files(root)
     assert set(before) == {"out/pressure.gpkg", "out/.pressure.gpkg.baseline.gpkg", "out/run.json", "out/report.html"} | {
-        f"out/mailing/{p}{n}.csv" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
-                                                                   "upper_floors")}
+        f"out/mailing/{p}{n}{suffix}" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
+                                                                       "upper_floors") for suffix in (".csv", ".xlsx")
+    } | {f"out/pressure.{layer}.sld" for layer in STYLED}
     # a second run that would change every output, and runs out of space part way
     crafted.write_text(crafted.read_text().replace("high_water_ft = 1200.0", "high_water_ft = 1190.0"))
 

@@ -63,7 +63,7 @@ def test_whatif_run_and_compare_from_the_command_line(world, tmp_path):
     assert info["report"] == {"written": False, "reason": "output.report = false"}
 
     out = tmp_path / "cmp" / "diff.gpkg"
-    cmp_ = invoke("-q", "compare", str(world.out), str(scen / "pressure.gpkg"), "--out", str(out))
+    cmp_ = invoke("compare", str(world.out), str(scen / "pressure.gpkg"), "--out", str(out))
     assert cmp_.exit_code == 0, cmp_.output
     # independent expectation: join both runs' customers on the account number
     a = gpd.read_file(world.out, layer="customers").set_index("account")

@@ -27,6 +27,7 @@ import logging
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 import rasterio
@@ -241,14 +242,15 @@ def coverage(tiles: list[Tile], x: np.ndarray, y: np.ndarray, crs: CRS) -> tuple
 
 
 def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method: str, max_pixels: float,
-                  reports: list[RasterReport]) -> np.ndarray:
+                  reports: list[RasterReport], sampled: Callable[[int], None] | None = None) -> np.ndarray:
     """Sample ``src`` (the group opened) at fractional pixel coordinates of its grid (NaN outside).
 
     Reads only the windows :func:`~geopress.terrain.plan_windows` plans; each
     tile's report counts the windows that touched it, its pixels in them and
     the customers it served. Returns the stored values (before scale and
     offset). A masked group's windows are read with their mask as float64
-    (:func:`read_ground`), others as stored.
+    (:func:`read_ground`), others as stored. ``sampled(n)`` is told after
+    each window how many customers got a value from it.
     """
     meaning = BandMeaning(nodata=group.nodata, masked=group.masked, scale=group.scale, offset=group.offset)
     h, w = group.height, group.width
@@ -270,6 +272,8 @@ def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method:
         del arr
         touched = np.flatnonzero((rects[:, 0] < r1) & (rects[:, 1] > r0) & (rects[:, 2] < c1) & (rects[:, 3] > c0))
         got = local[~np.isnan(out[idx])]
+        if sampled is not None:
+            sampled(got.size)
         served = first_tile(rects[touched], ri[got], ci[got])
         counts = np.bincount(served[served >= 0], minlength=touched.size)
         for j, t in enumerate(touched):
@@ -285,7 +289,8 @@ def _sample_group(src, group: Group, cols: np.ndarray, rows: np.ndarray, method:
 MASKED_EXTRA_BYTES = 8 + 1
 
 
-def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, shift: DatumShift) -> TerrainResult:
+def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, shift: DatumShift, *,
+                   count: Callable[[int, int | None], None] | None = None) -> TerrainResult:
     """Ground elevation, ft, on the HGLs' datum at map points ``x``, ``y`` in ``crs``; NaN where no
     raster has a value (or, with a datum grid, where the grid has none).
 
@@ -293,8 +298,18 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, s
     each customer is reprojected to the CRS of the group that serves it.
     Never more than ``cfg.memory_mb`` of raster is read at once. Elevations
     are ``(stored * scale + offset)`` in the raster's unit, converted to ft,
-    plus ``shift``'s offset at the customer.
+    plus ``shift``'s offset at the customer. ``count(done, total)`` is told,
+    after each window read, how many of the ``total`` customers with a
+    location have a value so far, and ``total`` once every raster has been tried.
     """
+    total = int(np.count_nonzero(~np.isnan(x)))
+    done = 0
+
+    def sampled(n: int) -> None:
+        nonlocal done
+        done += n
+        count(done, total)
+
     ground = np.full(x.shape, np.nan)
     tiles = read_tiles(cfg.paths, cfg.vertical_units)
     reports = {t.path: _report(t) for t in tiles}
@@ -319,7 +334,8 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, s
         max_pixels = memory_bytes / (np.dtype(group.dtype).itemsize + (MASKED_EXTRA_BYTES if group.masked else 0))
         # GDAL_NUM_THREADS: GeoTIFF blocks of one read are decompressed on every core
         with rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS", **GDAL_OPTIONS), open_group(group) as src:
-            values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles])
+            values = _sample_group(src, group, cols, rows, cfg.method, max_pixels, [reports[t.path] for t in group.tiles],
+                                   sampled if count is not None else None)
         ft = (values * group.scale + group.offset) * feet_per_unit(group.unit)
         lo, hi = np.nanmin(ft, initial=np.inf), np.nanmax(ft, initial=-np.inf)
         result.ranges[group.label()] = (group.unit, float(lo), float(hi))
@@ -330,6 +346,8 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, s
         ground[todo] = ft
         log.info("sampled %d customers from %s", got.size, group.label())
     result.inside_any = int(inside_any.sum())
+    if count is not None:
+        count(total, total)
     return result
 
 

@@ -56,17 +56,28 @@ def read_run_layer(path: Path, fields: Sequence[str], *, required: Sequence[str]
                                   use_arrow=True)
 
 
-def read_run_customers(path: Path, id_field: str | None = None) -> tuple[gpd.GeoDataFrame, str]:
-    """The ``customers`` layer of a run's GeoPackage and its id field (the first field unless given)."""
+def read_run_customers(path: Path, id_field: str | None = None, *, key: str = "compare",
+                       id_source: str = "--id-field") -> tuple[gpd.GeoDataFrame, str]:
+    """The ``customers`` layer of a run's GeoPackage and its id field (the first field unless given).
+
+    ``key`` names the argument the path came from (``BEFORE``, ``AFTER``) and ``id_source`` where a
+    given ``id_field`` came from, for the errors; each error suggests only what applies to it
+    (--id-field only where the id field is the trouble).
+    """
     path = Path(path)
-    key = "compare"
-    hint = "give the output GeoPackage of a finished geopress run (use --id-field for another id)"
+    hint = "give the output GeoPackage of a finished geopress run"
     fields = run_layer_fields(path, key=key, hint=hint)
     id_key = id_field or (fields[0] if fields else "id")
+    whence = f"from {id_source}" if id_field else "the first field, taken as the id"
+    err_key = "--id-field" if id_field and id_source == "--id-field" else key
+    if id_key not in fields:
+        raise InputError(f"layer '{LAYER}' of the GeoPackage (from {key}) has no field '{id_key}' ({whence}); fields "
+                         f"there: {_fmt_list(fields, 20)}; pass --id-field with the id field both runs have",
+                         path=path, key=err_key)
     gdf = read_run_layer(path, fields, required=[id_key, *RUN_COLUMNS], key=key, hint=hint)
     if gdf[id_key].duplicated().any():
-        raise InputError(f"field '{id_key}' has duplicate values, so it cannot match customers; pass --id-field",
-                         path=path, key=id_key)
+        raise InputError(f"field '{id_key}' ({whence}) has duplicate values, so it cannot match customers; "
+                         "pass --id-field with a field that is unique in both runs", path=path, key=err_key)
     return gdf, id_key
 
 

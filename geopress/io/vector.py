@@ -10,6 +10,7 @@ import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Callable
 
 import geopandas as gpd
 import numpy as np
@@ -79,16 +80,26 @@ _TEXT = ({pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.St
          if int(pd.__version__.split(".")[0]) >= 3 else None)
 
 
-def read_layer(path: Path, layer: str, columns: list[str]) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
+def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
+               total: int | None = None) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
     """The ``columns`` and geometry of a layer, errors translated, and its geometries as the file's WKB.
 
     The same frame as ``pyogrio.read_dataframe(use_arrow=True)``, made without
     a Python bytes object per row: the WKB goes straight from Arrow to
     shapely, and is returned too, so that a writer can pass unchanged
-    geometries through instead of encoding them again.
+    geometries through instead of encoding them again. The features are read
+    in Arrow batches, as ``pyogrio.read_arrow`` reads them, and ``count(done,
+    total)`` is told the features read after each.
     """
     try:
-        meta, table = pyogrio.read_arrow(path, layer=layer, columns=columns)
+        with pyogrio.open_arrow(path, layer=layer, columns=columns, use_pyarrow=True) as (meta, reader):
+            batches, done = [], 0
+            for batch in reader:
+                batches.append(batch)
+                done += len(batch)
+                if count is not None:
+                    count(done, total)
+            table = pa.Table.from_batches(batches, schema=reader.schema)
         name = meta["geometry_name"] or "wkb_geometry"
         if name not in table.column_names:
             raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
@@ -126,7 +137,8 @@ def _crs(path: Path, layer: str, info_crs: str | None) -> CRS:
 class Customers:
     """The customers layer reduced to what a run needs.
 
-    ``frame`` has the id field, mail fields and floors (float, NaN unknown) and
+    ``frame`` has the id field, mail and letter fields and floors (pandas' nullable
+    Int64, so the layer written keeps an integer field; missing where unknown) and
     a point geometry in the layer's CRS; rows without a usable geometry have a
     None geometry and ``has_geometry`` False. ``x``/``y`` are the point
     coordinates (NaN where there is none). ``wkb`` is the frame's geometries
@@ -163,17 +175,20 @@ def customers_crs(cfg: CustomersConfig) -> CRS:
     return _crs(cfg.path, layer, info["crs"])
 
 
-def read_customers(cfg: CustomersConfig, *, mail: bool = True) -> Customers:
+def read_customers(cfg: CustomersConfig, *, mail: bool = True,
+                   count: Callable[[int, int | None], None] | None = None) -> Customers:
     """Read and check the customers layer; polygons become shapely's point_on_surface.
 
-    With ``mail=False`` the mail fields are checked to exist but not read (``geopress check``
-    needs only where the customers are).
+    With ``mail=False`` the mail and letter fields are checked to exist but not read
+    (``geopress check`` needs only where the customers are). ``count(done, total)`` is told
+    the features read as they are (see :func:`read_layer`).
     """
     path = cfg.path
     layer = resolve_layer(path, cfg.layer, "customers")
     info = layer_info(path, layer)
     wanted = {"customers.id_field": cfg.id_field}
     wanted.update({f"customers.mail_fields[{i}]": f for i, f in enumerate(cfg.mail_fields)})
+    wanted.update({f"customers.letter_fields[{i}]": f for i, f in enumerate(cfg.letter_fields)})
     if cfg.floors_field:
         wanted["customers.floors_field"] = cfg.floors_field
     check_fields(path, layer, info, wanted)
@@ -182,8 +197,9 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True) -> Customers:
     if info["features"] == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
     columns = list(dict.fromkeys([cfg.id_field, *(cfg.mail_fields if mail else ()),
-                                  *([cfg.floors_field] if cfg.floors_field else [])]))
-    df, wkb = read_layer(path, layer, columns)
+                                  *([cfg.floors_field] if cfg.floors_field else []),
+                                  *(cfg.letter_fields if mail else ())]))
+    df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
@@ -254,7 +270,9 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True) -> Customers:
     y[has] = shapely.get_y(points[has])
     frame = gpd.GeoDataFrame(df.drop(columns="geometry"), geometry=gpd.GeoSeries(points, crs=crs), crs=crs)
     if cfg.floors_field:
-        frame[cfg.floors_field] = floors
+        # whole numbers (checked above) as a nullable integer column: written as an INTEGER field
+        unknown = np.isnan(floors)
+        frame[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
     log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
     # the file's WKB is what shapely would encode only for 2D points: 21 bytes each (byte order, type and
     # two doubles, as OGC's WKB lays them out), none where missing; an empty point became missing above

@@ -42,6 +42,7 @@ import pyogrio.errors
 import shapely
 
 from ..errors import OutputError
+from ..tables import neutralise_frame
 
 log = logging.getLogger(__name__)
 
@@ -293,8 +294,18 @@ class ArrowFile:
     crs: str | None
 
 
-#: a layer to write: a frame, a point layer with its WKB or in an Arrow file, or a view of an earlier point layer
-Layer = pd.DataFrame | Encoded | ArrowFile | View
+@dataclass(frozen=True)
+class Styles:
+    """The ``layer_styles`` table that desktop GIS reads a layer's default style from: one row per
+    layer named in ``sld`` (layer -> (style name, description, SLD text)), its SLD in ``styleSLD``
+    (``styleQML`` left empty), each the layer's default. Written after the layers it styles."""
+
+    sld: Mapping[str, tuple[str, str, str]]
+
+
+#: a layer to write: a frame, a point layer with its WKB or in an Arrow file, a view of an earlier point layer,
+#: or styles
+Layer = pd.DataFrame | Encoded | ArrowFile | View | Styles
 
 
 def arrow_file(path: Path, layer: Encoded | gpd.GeoDataFrame) -> ArrowFile:
@@ -349,7 +360,9 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     try:
         for name, layer in layers.items():
             t0 = time.perf_counter()
-            if isinstance(layer, View):
+            if isinstance(layer, Styles):
+                _write_layer_styles(path, name, layer)
+            elif isinstance(layer, View):
                 if layer.rows:
                     _create_view(path, name, layer)
                 else:
@@ -435,6 +448,35 @@ def _create_view(path: Path, name: str, view: View) -> None:
         con.close()
 
 
+#: the columns of ``layer_styles`` as desktop GIS creates and reads it (from memory), after its id
+LAYER_STYLES_COLUMNS = (
+    "f_table_catalog TEXT(256)", "f_table_schema TEXT(256)", "f_table_name TEXT(256)",
+    "f_geometry_column TEXT(256)", "styleName TEXT(30)", "styleQML TEXT", "styleSLD TEXT", "useAsDefault BOOLEAN",
+    "description TEXT", "owner TEXT(30)", "ui TEXT(30)", "update_time DATETIME",
+)
+
+
+def _write_layer_styles(path: Path, name: str, styles: Styles) -> None:
+    """Create table ``name`` holding ``styles``, registered as an attributes table of the GeoPackage;
+    each row names its layer's geometry column as ``gpkg_geometry_columns`` has it."""
+    con = sqlite3.connect(path)
+    try:
+        with con:  # one transaction: the table is there whole or not at all
+            con.execute(f"CREATE TABLE {_quoted(name)} (id INTEGER PRIMARY KEY AUTOINCREMENT, "
+                        f"{', '.join(LAYER_STYLES_COLUMNS)})")
+            stamp = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+            for layer, (style_name, description, sld) in styles.sld.items():
+                con.execute(f"INSERT INTO {_quoted(name)} (f_table_catalog, f_table_schema, f_table_name, "
+                            "f_geometry_column, styleName, styleQML, styleSLD, useAsDefault, description, owner, ui, "
+                            "update_time) SELECT '', '', ?, column_name, ?, NULL, ?, 1, ?, '', NULL, ? "
+                            "FROM gpkg_geometry_columns WHERE table_name = ?",
+                            (layer, style_name, sld, description, stamp, layer))
+            con.execute("INSERT INTO gpkg_contents (table_name, data_type, identifier, last_change) "
+                        "VALUES (?, 'attributes', ?, ?)", (name, name, stamp))
+    finally:
+        con.close()
+
+
 def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
     """An encoded point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
     frame = layer.frame
@@ -463,8 +505,61 @@ def _crs_text(crs: Any) -> str | None:
 
 
 def write_csv(path: Path, df: pd.DataFrame) -> None:
-    """UTF-8 CSV with a header, no index."""
-    df.to_csv(path, index=False, encoding="utf-8", lineterminator="\n")
+    """UTF-8 CSV with a byte-order mark, a header, no index.
+
+    The mark is how a spreadsheet on Windows tells UTF-8 from its ANSI code
+    page: without it "Zoë" opens as "ZoÃ«". Readers that know UTF-8 skip it
+    (Python: ``encoding="utf-8-sig"``; pandas.read_csv does by itself).
+    """
+    df.to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\n")
+
+
+def write_list_csv(path: Path, df: pd.DataFrame) -> None:
+    """A mailing list as CSV (:func:`write_csv`), each text cell a spreadsheet would run as a formula
+    given a leading apostrophe (:func:`geopress.tables.neutralise_frame`)."""
+    write_csv(path, neutralise_frame(df))
+
+
+#: rows of one worksheet in an .xlsx workbook (Excel's limit; from memory)
+XLSX_MAX_ROWS = 1_048_576
+
+
+def write_xlsx(path: Path, df: pd.DataFrame, sheet: str) -> None:
+    """``df`` as an .xlsx workbook with one sheet named ``sheet`` (openpyxl, the report extra).
+
+    Every text cell is stored as text (an inline string): none can run as a
+    formula, so none needs the CSV's guard apostrophe. Numbers stay numbers,
+    missing values are empty cells. A character that XML cannot hold (a
+    control character other than tab and newline) becomes U+FFFD.
+    """
+    from openpyxl import Workbook
+    from openpyxl.cell import WriteOnlyCell
+    from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
+
+    if len(df) + 1 > XLSX_MAX_ROWS:
+        raise OutputError(f"{len(df)} rows do not fit one .xlsx sheet ({XLSX_MAX_ROWS - 1} at most); set "
+                          "output.xlsx = false and use the CSV", path=path, key="output.xlsx")
+    book = Workbook(write_only=True)
+    ws = book.create_sheet(title=sheet[:31])
+
+    def cell(value: Any) -> Any:
+        if isinstance(value, str):
+            c = WriteOnlyCell(ws, value=ILLEGAL_CHARACTERS_RE.sub("\ufffd", value))
+            c.data_type = "s"  # text, even where it starts with "=": openpyxl would take that as a formula
+            return c
+        if value is None or value is pd.NA or (isinstance(value, float) and value != value):
+            return None
+        return value
+
+    ws.append([cell(str(c)) for c in df.columns])
+    for row in zip(*(df[c].tolist() for c in df.columns)):
+        ws.append([cell(v) for v in row])
+    book.save(path)
+
+
+def write_text(path: Path, text: str) -> None:
+    """UTF-8 text."""
+    path.write_text(text, encoding="utf-8")
 
 
 def write_json(path: Path, data: Mapping[str, Any]) -> None:
