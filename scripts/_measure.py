@@ -1,8 +1,9 @@
 """Wall time and peak memory of a command, for the benchmarks (Linux: /proc and wait4).
 
-geopress forks children (the service band, the GeoPackage writer) that share
-its memory copy-on-write, so the resident set size of one process says too
-little and the sum over processes too much. :func:`measure` reports both the
+geopress runs a second process (the service band, the GeoPackage writer)
+beside a fork server, and a process tree's pages may be shared, so the
+resident set size of one process says too little and the sum over processes
+too much. :func:`measure` reports both the
 peak RSS of the largest process (``wait4``) and the peak proportional set
 size of the whole process tree (a page shared by n processes counts 1/n in
 each, so the sum is the memory the tree really holds), sampled every 50 ms.
@@ -27,6 +28,7 @@ class Measured:
     rss_gb: float  # the largest process's peak resident set size
     pss_gb: float  # the process tree's peak proportional set size, sampled
     exit_code: int
+    stdout: str = ""
 
 
 def _tree(pid: int) -> list[int]:
@@ -58,8 +60,11 @@ def _pss_kib(pids: list[int]) -> int:
 
 def measure(cmd: Sequence[str], env: Mapping[str, str] | None = None) -> Measured:
     """Run ``cmd`` to its end and measure it."""
+    import tempfile
+
+    out = tempfile.TemporaryFile(mode="w+")  # a file, not a pipe: a chatty child never blocks on it
     t0 = time.perf_counter()
-    proc = subprocess.Popen(list(cmd), env=None if env is None else dict(env))
+    proc = subprocess.Popen(list(cmd), env=None if env is None else dict(env), stdout=out)
     peak = [0]
     stop = threading.Event()
 
@@ -74,4 +79,7 @@ def measure(cmd: Sequence[str], env: Mapping[str, str] | None = None) -> Measure
     stop.set()
     sampler.join()
     proc.returncode = os.waitstatus_to_exitcode(status)
-    return Measured(wall, usage.ru_maxrss / GB, peak[0] / GB, proc.returncode)
+    out.seek(0)
+    text = out.read()
+    out.close()
+    return Measured(wall, usage.ru_maxrss / GB, peak[0] / GB, proc.returncode, text)

@@ -1,27 +1,32 @@
-"""Benchmark ``geopress run`` against the script an analyst would write for the same job.
+"""Benchmark ``geopress run`` against the floor GDAL sets and the script an analyst would write.
 
-Generates its own data under ``--work`` (deterministic, fixed seed): a
-6000 x 6000 float32 DEM at 1 m (tiled, DEFLATE-compressed GeoTIFF, metres,
-UTM 31N on open ocean), three pressure zones with a tank, a PRV and a pump,
-and N customer points in a GeoPackage (default 1,000,000). Then, alternating
-``--repeat`` times, runs each variant in its own subprocess:
+Generates its own data under ``--work`` (deterministic, fixed seed), one
+folder per size: a 6000 x 6000 float32 DEM at 1 m (tiled, DEFLATE-compressed
+GeoTIFF, metres, UTM 31N on open ocean), three pressure zones with a tank, a
+PRV and a pump, and N customer points in a GeoPackage. For each N of ``--n``
+(default 1,000,000) it runs, alternating, ``--repeat`` times, each in its own
+subprocess:
 
-(a) ``geopress run`` end to end (reading, zones, terrain, pressures,
-    statuses, reasons, GeoPackage with every layer, mailing lists, run.json);
-(b) the straightforward script: ``geopandas.read_file``, ``geopandas.sjoin``,
-    rasterio's ``DatasetReader.sample()``, pressures and statuses with numpy,
-    then ``to_file`` of the customers layer and each flagged layer.
+(a) ``geopress run`` end to end, as a first run (an empty output folder, so every
+    customer is new) and as a re-run (the previous run's outputs in place);
+(b) the floor: pyogrio writing the same customers table alone (read from
+    geopress's output beforehand, not timed), with its spatial index;
+(c) at the N of ``--script-at`` only, the straightforward script:
+    ``geopandas.read_file``, ``geopandas.sjoin``, rasterio's
+    ``DatasetReader.sample()``, pressures and statuses with numpy, then
+    ``to_file`` of the customers layer and each flagged layer.
 
-Both sample the containing pixel (``method = "nearest"``, which is what
-``sample()`` does), so their statuses must agree; the script checks they do.
-It prints the median wall time of each variant, its peak memory two ways
-(see _measure.py: the resident set size of its largest process, and the
-proportional set size of all its processes together), their ratio, the ratio within each pair of
-runs (run back to back, so under much the same load), geopress's time per step, and the in-process
-throughput of the bilinear kernel on the DEM in memory.
+geopress and the script both sample the containing pixel (``method =
+"nearest"``, which is what ``sample()`` does), so their statuses must agree;
+the bench checks they do. It prints, per N, the median wall time of each
+variant, their ratios to the floor, the time per customer, peak memory two
+ways (see _measure.py: the resident set size of the largest process, and the
+proportional set size of all its processes together), geopress's time per
+step, and the in-process throughput of the bilinear kernel.
 
-    python scripts/bench.py                 # N = 1,000,000
-    python scripts/bench.py --n 100000      # a quick check
+    python scripts/bench.py                                  # N = 1,000,000
+    python scripts/bench.py --n 1000000 4000000 10000000     # the scale targets
+    python scripts/bench.py --n 100000 --repeat 1            # a quick check
 """
 
 from __future__ import annotations
@@ -219,16 +224,48 @@ def geopress_run(work: Path) -> None:
     main(["-q", "run", str(work / "bench.toml")])
 
 
+def floor_table(work: Path):
+    """The customers table geopress wrote (attributes and WKB), as pyogrio reads it with Arrow."""
+    import pyogrio
+
+    meta, table = pyogrio.read_arrow(work / "out-geopress" / "pressure.gpkg", layer="customers")
+    return meta, table
+
+
+def floor(work: Path) -> None:
+    """Write the customers table alone, with its spatial index; only the write is timed (printed as FLOOR s)."""
+    import pyogrio
+
+    meta, table = floor_table(work)
+    out = work / "out-floor" / "customers.gpkg"
+    out.parent.mkdir(exist_ok=True)
+    out.unlink(missing_ok=True)
+    t0 = time.perf_counter()
+    pyogrio.write_arrow(table, out, layer="customers", driver="GPKG", geometry_name=meta["geometry_name"],
+                        geometry_type="Point", crs=meta["crs"], layer_options={"SPATIAL_INDEX": "YES"})
+    print(f"FLOOR {time.perf_counter() - t0:.4f}", flush=True)
+
+
 # ---------------------------------------------------------------------------
 # measuring
 
 
+VARIANTS = ("first", "rerun", "floor", "script")
+
+
 def run_child(variant: str, work: Path) -> Measured:
-    """One variant in a fresh process, measured (see _measure.py)."""
+    """One variant in a fresh process, measured (see _measure.py); the floor's time is its write alone."""
+    import shutil
+
+    if variant == "first":
+        shutil.rmtree(work / "out-geopress", ignore_errors=True)
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    m = measure([sys.executable, __file__, "--child", variant, "--work", str(work)], env)
+    child = {"first": "geopress", "rerun": "geopress", "floor": "floor", "script": "baseline"}[variant]
+    m = measure([sys.executable, __file__, "--child", child, "--work", str(work)], env)
     if m.exit_code != 0:
         sys.exit(f"{variant} failed with exit code {m.exit_code}")
+    if variant == "floor":
+        m.wall_s = float(next(line.split()[1] for line in m.stdout.splitlines() if line.startswith("FLOOR ")))
     return m
 
 
@@ -268,42 +305,63 @@ def kernel_rate(work: Path, repeat: int) -> float:
     return n / statistics.median(times)
 
 
+def bench_one(work: Path, n: int, repeat: int, with_script: bool) -> dict[str, float]:
+    """Every variant at ``n`` customers, alternating; prints and returns the medians (s) and the peak PSS (GB)."""
+    prepare(work, n)
+    variants = [v for v in VARIANTS if v != "script" or with_script]
+    run_child("first", work)  # outputs in place for the first re-run, and the floor's table
+    runs: dict[str, list[Measured]] = {v: [] for v in variants}
+    for i in range(repeat):
+        for variant in variants if i % 2 == 0 else variants[::-1]:
+            m = run_child(variant, work)
+            runs[variant].append(m)
+            print(f"N={n:,} run {i + 1} {variant:7s} {m.wall_s:8.2f} s  peak RSS {m.rss_gb:5.2f} GB  peak PSS of all "
+                  f"its processes {m.pss_gb:5.2f} GB", flush=True)
+    if with_script:
+        compare_statuses(work)
+    med = {v: statistics.median(m.wall_s for m in r) for v, r in runs.items()}
+    pss = {v: max(m.pss_gb for m in r) for v, r in runs.items()}
+    rss = {v: max(m.rss_gb for m in r) for v, r in runs.items()}
+    steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
+    print(f"\n{n:,} customers" + (", statuses identical in geopress and the script" if with_script else ""))
+    for v in variants:
+        print(f"  {v:7s} median {med[v]:8.2f} s  {1e6 * med[v] / n:6.2f} us per customer  peak RSS {rss[v]:.2f} GB  "
+              f"peak PSS {pss[v]:.2f} GB")
+    for v in ("first", "rerun"):
+        # each pair of runs follows back to back, so it shares the machine's load more than the medians do
+        pairs = [g.wall_s / f.wall_s for g, f in zip(runs[v], runs["floor"])]
+        print(f"  geopress {v} / floor: {med[v] / med['floor']:.2f}x (within pairs: median "
+              f"{statistics.median(pairs):.2f}x)")
+    if with_script:
+        pairs = [b.wall_s / g.wall_s for g, b in zip(runs["first"], runs["script"])]
+        print(f"  script / geopress first run: {med['script'] / med['first']:.2f}x faster (within pairs: median "
+              f"{statistics.median(pairs):.2f}x)")
+    print("  geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
+    return {**{f"{v}_s": med[v] for v in variants}, "pss_gb": max(pss["first"], pss["rerun"])}
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--n", type=int, default=1_000_000, help="customers (default 1,000,000)")
+    ap.add_argument("--n", type=int, nargs="+", default=[1_000_000], help="customers, one or more sizes "
+                    "(default 1,000,000)")
     ap.add_argument("--repeat", type=int, default=3, help="alternating runs of each variant (default 3)")
+    ap.add_argument("--script-at", type=int, default=1_000_000,
+                    help="the size at which the straightforward script runs too (default 1,000,000)")
     ap.add_argument("--work", type=Path, default=Path("bench-out"), help="folder for data and outputs")
-    ap.add_argument("--child", choices=["geopress", "baseline"], help=argparse.SUPPRESS)
+    ap.add_argument("--child", choices=["geopress", "baseline", "floor"], help=argparse.SUPPRESS)
     args = ap.parse_args()
     work = args.work.resolve()
     if args.child:
-        (geopress_run if args.child == "geopress" else baseline)(work)
+        {"geopress": geopress_run, "baseline": baseline, "floor": floor}[args.child](work)
         return
-    prepare(work, args.n)
-    runs: dict[str, list[Measured]] = {"geopress": [], "baseline": []}
-    for i in range(args.repeat):
-        for variant in ("geopress", "baseline") if i % 2 == 0 else ("baseline", "geopress"):
-            m = run_child(variant, work)
-            runs[variant].append(m)
-            print(f"run {i + 1} {variant:9s} {m.wall_s:7.2f} s  peak RSS {m.rss_gb:5.2f} GB  peak PSS of all its "
-                  f"processes {m.pss_gb:5.2f} GB", flush=True)
-    n = compare_statuses(work)
-    steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
-    med = {v: statistics.median(m.wall_s for m in r) for v, r in runs.items()}
-    rss = {v: max(m.rss_gb for m in r) for v, r in runs.items()}
-    pss = {v: max(m.pss_gb for m in r) for v, r in runs.items()}
-    rate = kernel_rate(work, args.repeat)
-    print(f"\n{n:,} customers, statuses identical in both variants")
-    for v, label in (("geopress", "geopress run"), ("baseline", "baseline")):
-        print(f"{label:14s} median {med[v]:7.2f} s   peak RSS (largest process) {rss[v]:.2f} GB   "
-              f"peak PSS (all processes) {pss[v]:.2f} GB")
-    print(f"ratio baseline / geopress: {med['baseline'] / med['geopress']:.2f}x faster")
-    # the two runs of a pair follow each other, so they share the machine's load more than the medians do
-    pairs = [b.wall_s / g.wall_s for g, b in zip(runs["geopress"], runs["baseline"])]
-    print(f"ratio within each pair of runs: median {statistics.median(pairs):.2f}x "
-          f"({', '.join(f'{r:.2f}x' for r in pairs)})")
-    print("geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
-    print(f"bilinear kernel in process: {rate / 1e6:.1f} million points per second")
+    results = {n: bench_one(work / f"n{n}", n, args.repeat, n == args.script_at) for n in args.n}
+    if len(results) > 1:
+        small, large = min(results), max(results)
+        for v in ("first", "rerun"):
+            ratio = (results[large][f"{v}_s"] / large) / (results[small][f"{v}_s"] / small)
+            print(f"time per customer, {v} run, at {large:,} against {small:,}: {ratio:.2f}x")
+    smallest = work / f"n{min(results)}"
+    print(f"bilinear kernel in process: {kernel_rate(smallest, args.repeat) / 1e6:.1f} million points per second")
 
 
 if __name__ == "__main__":
