@@ -116,14 +116,10 @@ class _Clock:
 def _cycle_collection_paused() -> Iterator[None]:
     """Pause CPython's cycle collector for a run, then restore it as it was.
 
-    A run holds a million GC-tracked shapely geometries per million
-    customers, and every full collection walks them all: eight times while
-    they are decoded (0.5 s at 1,000,000 customers, measured with
-    gc.callbacks), and again after each fork, where writing their GC
-    headers copies pages the child processes share. The run's large
-    objects are freed by reference counting; a collection after a run of
-    1,000,000 customers found 33,000 objects in cycles, too few to matter
-    for its peak memory.
+    A run holds one GC-tracked shapely geometry per customer, and every
+    full collection walks them all, several times while they are decoded
+    (scripts/README.md has the measurement). The run's large objects are
+    freed by reference counting, not by the collector.
     """
     enabled = gc.isenabled()
     gc.disable()

@@ -21,6 +21,7 @@ import pyogrio
 import shapely
 from pyproj import CRS
 
+from .._compat import PANDAS_GE_3
 from ..config import CustomersConfig, ZonesConfig
 from ..errors import ConfigError, GeometryWarning, InputError
 from ..zones import repair
@@ -77,7 +78,7 @@ def layer_info(path: Path, layer: str) -> dict:
 #: how Arrow text becomes pandas text: as pyogrio.read_dataframe does, pandas' own string dtype from
 #: pandas 3 on (so text stays Arrow-backed, no Python string per row), object before
 _TEXT = ({pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.StringDtype(na_value=np.nan)}.get
-         if int(pd.__version__.split(".")[0]) >= 3 else None)
+         if PANDAS_GE_3 else None)
 
 
 def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
