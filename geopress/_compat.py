@@ -1,7 +1,7 @@
-"""Optional dependencies and version differences, checked once; each message names the extra to install.
+"""Optional dependencies, checked once; each message names the extra to install.
 
-``PANDAS_GE_3`` says whether pandas is 3 or later (its own string dtype is the
-default text type from 3 on).
+pyproject.toml's lower bounds are the versions the suite runs on; where code must
+branch on a dependency's version, the flag belongs here (one module knows them all).
 
 ``HAS_REPORT`` says whether the ``report`` extra (matplotlib, jinja2 and plotly) is
 installed and :func:`report_missing` names what is missing; the layer styles
@@ -16,12 +16,8 @@ from __future__ import annotations
 import importlib.util
 from types import ModuleType
 
-import pandas as pd
-from packaging.version import Version
-
 from .errors import MissingExtraError
 
-PANDAS_GE_3 = Version(pd.__version__) >= Version("3.0.0")
 
 REPORT_MODULES = ("matplotlib", "jinja2", "plotly")
 _MISSING_REPORT = tuple(m for m in REPORT_MODULES if importlib.util.find_spec(m) is None)

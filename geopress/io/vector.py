@@ -21,7 +21,6 @@ import pyogrio
 import shapely
 from pyproj import CRS
 
-from .._compat import PANDAS_GE_3
 from ..config import CustomersConfig, ZonesConfig
 from ..errors import ConfigError, GeometryWarning, InputError
 from ..zones import repair
@@ -75,10 +74,9 @@ def layer_info(path: Path, layer: str) -> dict:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
 
 
-#: how Arrow text becomes pandas text: as pyogrio.read_dataframe does, pandas' own string dtype from
-#: pandas 3 on (so text stays Arrow-backed, no Python string per row), object before
-_TEXT = ({pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.StringDtype(na_value=np.nan)}.get
-         if PANDAS_GE_3 else None)
+#: how Arrow text becomes pandas text: as pyogrio.read_dataframe does, pandas' own string dtype (so text
+#: stays Arrow-backed, no Python string per row)
+_TEXT = {pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.StringDtype(na_value=np.nan)}.get
 
 
 def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
