@@ -50,6 +50,26 @@ class Baseline:
         return got.set_crs(self.crs, allow_override=True)
 
 
+@dataclass
+class PublishedBaseline(Baseline):
+    """The customers a run published into a database (:mod:`geopress.io.postgis`), read whole, geometry
+    included; ``path`` says where they are (no password)."""
+
+    layer: gpd.GeoDataFrame | None = None
+
+    def rows(self, positions: np.ndarray) -> gpd.GeoDataFrame:
+        got = self.layer.iloc[positions].reset_index(drop=True)
+        return got[[*self.columns, got.geometry.name]]
+
+
+def published_baseline(where: str, layer: gpd.GeoDataFrame, id_field: str, *, key: str) -> PublishedBaseline:
+    """The :class:`PublishedBaseline` of ``layer``, the published customers (``where``; ``key`` names it)."""
+    columns = [c for c in layer.columns if c != layer.geometry.name]
+    log.info("baseline: %d customers from %s (%s)", len(layer), where, key)
+    return PublishedBaseline(path=where, frame=pd.DataFrame(layer[[id_field, "status"]]), columns=columns,
+                             crs=layer.crs, layer=layer)
+
+
 def read_baseline(
     path: Path, *, id_field: str, mail_fields: Sequence[str], crs: CRS, key: str
 ) -> Baseline:
