@@ -1,7 +1,8 @@
 """A throwaway PostgreSQL/PostGIS cluster for the database tests, and loading layers into it.
 
 :func:`start` runs ``initdb`` in a temporary folder and starts the server on a Unix socket in that
-folder only (no TCP port). PostgreSQL refuses to run as root, so under root the cluster belongs to
+folder only (no TCP port), under ``$GEOPRESS_TEST_PG_ROOT`` when set (``.ci/run`` sets it and its exit
+trap stops any cluster a killed test run left there). PostgreSQL refuses to run as root, so under root the cluster belongs to
 the unprivileged user ``nobody``. The binaries are PostgreSQL's from Debian's packages
 (``/usr/lib/postgresql/<version>/bin``) or the first ``initdb`` on PATH; PostGIS must be
 installed for that server (Debian: ``postgresql-postgis``; ``.ci/run`` installs both).
@@ -89,7 +90,8 @@ class Server:
 def start() -> Server:
     """initdb, start and prepare a cluster (see the module docstring)."""
     bindir = binaries()
-    folder = Path(tempfile.mkdtemp(prefix="geopress-pg-"))
+    # under .ci/run, in the folder its exit trap cleans (a cluster a killed test run left is stopped there)
+    folder = Path(tempfile.mkdtemp(prefix="geopress-pg-", dir=os.environ.get("GEOPRESS_TEST_PG_ROOT")))
     user = None
     if os.geteuid() == 0:
         user = "nobody"
