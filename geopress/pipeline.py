@@ -34,7 +34,7 @@ from . import runner
 from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
-from .config import Config, load_config, redact_dsn
+from .config import Config, DatabaseSource, load_config, redact_dsn
 from .errors import ConfigError, GeopressWarning, InputError, OutputError, TerrainWarning, ZoneOverlapWarning
 from .io import datum as datum_io
 from .io import postgis as postgis_io
@@ -181,6 +181,13 @@ def _input_record(path: Path) -> dict[str, Any]:
         "bytes": st.st_size,
         "modified": datetime.fromtimestamp(st.st_mtime, timezone.utc).isoformat(timespec="seconds"),
     }
+
+
+def _database_record(src: DatabaseSource, key: str) -> dict[str, Any]:
+    """A layer read from a database as run.json and the report list it: the connection (no password) and
+    the table or query."""
+    what = {"table": src.table} if src.table else {"query": src.query}
+    return {"layer": key, "database": redact_dsn(src.database), **what, "geometry_column": src.geometry_column}
 
 
 def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
@@ -385,7 +392,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
         "config_file": str(cfg.source_path) if cfg.source_path else None,
         "config": cfg.to_dict(),
-        "inputs": [_input_record(p) for p in cfg.input_paths()],
+        "inputs": [*(_input_record(p) for p in cfg.input_paths()),
+                   *(_database_record(c.database, key) for key, c in (("customers", cfg.customers), ("zones", cfg.zones))
+                     if c.database is not None)],
         "customers": {
             "total": int(len(customers)),
             "layer": cust.layer,

@@ -355,3 +355,17 @@ def test_pipeline_without_write_needs_no_schema(world, db):
     result = pipeline.run(world.config_path, write=False)
     assert len(result.customers) == 20 and "geopress_runs" not in db.relations()
     assert np.isfinite(result.customers["psi_max"]).all()
+
+
+def test_an_object_of_the_dbas_on_a_published_table_stops_the_swap(world, db):
+    db.config()
+    ok(run(world))
+    before = db.read("customers")
+    db.server.sql(f"CREATE VIEW {db.schema}.mine AS SELECT account FROM {db.schema}.customers")
+    db.server.sql(f"UPDATE {db.inputs}.parcels SET floors = 9")
+    assert_bad(run(world), "cannot publish into schema", "depend", "unchanged")
+    pd.testing.assert_frame_equal(db.read("customers"), before)
+    assert len(db.runs()) == 1
+    info = json.loads((world.root / "out/run.json").read_text())
+    assert {"layer": "customers", "database": db.dsn, "table": f"{db.inputs}.parcels",
+            "geometry_column": "geom"} in info["inputs"]
