@@ -369,3 +369,54 @@ def test_an_object_of_the_dbas_on_a_published_table_stops_the_swap(world, db):
     info = json.loads((world.root / "out/run.json").read_text())
     assert {"layer": "customers", "database": db.dsn, "table": f"{db.inputs}.parcels",
             "geometry_column": "geom"} in info["inputs"]
+
+
+# ------------------------------------------------------------------ config (no server needed)
+
+
+CONFIG_ERRORS = {
+    "table and query": ('database = "service=gis"\ntable = "a.b"\nquery = "SELECT 1"\n', "customers.table",
+                        "one of customers.table"),
+    "neither": ('database = "service=gis"\n', "customers.table", "one of customers.table"),
+    "a table without a database": ('table = "a.b"\n' + FILE_CUSTOMERS, "customers.table", "needs customers.database"),
+    "path and database": ('database = "service=gis"\ntable = "a.b"\npath = "customers.gpkg"\n', "customers.path",
+                          "cannot be used with customers.database"),
+}
+
+
+@pytest.mark.parametrize("case", CONFIG_ERRORS)
+def test_database_keys_are_checked(world, case):
+    customers, *needles = CONFIG_ERRORS[case]
+    world.config_path.write_text(BASE_CONFIG.replace(FILE_CUSTOMERS, customers))
+    assert_bad(run(world), *needles)
+
+
+def test_output_database_and_schema_go_together(world):
+    world.config_path.write_text(BASE_CONFIG + 'database = "service=gis"\n')
+    assert_bad(run(world), "output.database", "output.schema is not")
+    world.config_path.write_text(BASE_CONFIG + 'database = "service=gis password=x"\nschema = "p"\n')
+    assert_bad(run(world), "output.database", "holds a password")
+
+
+@pytest.mark.parametrize("dsn, shown", [
+    ("host=db password=s3cret user=u", "host=db password=*** user=u"),
+    ("password='a b\\' c' host=db", "password=*** host=db"),
+    ("postgresql://u:s3cret@db/gis", "postgresql://u:***@db/gis"),
+    ("postgresql://db/gis?user=u&password=s3cret&sslmode=require", "postgresql://db/gis?user=u&password=***&sslmode=require"),
+    ("service=gis", "service=gis"),
+])
+def test_connection_strings_are_shown_without_their_password(dsn, shown):
+    from geopress.config import dsn_password, redact_dsn
+
+    assert redact_dsn(dsn) == shown
+    assert dsn_password(dsn) == (dsn != "service=gis")
+
+
+def test_the_config_round_trips_with_database_sources(world, db):
+    from geopress.config import config_from_dict, load_config
+
+    db.config(customers=db.source("parcels", geometry_column="geom"))
+    cfg = load_config(world.config_path)
+    assert cfg.customers.path is None and cfg.customers.database.table == f"{db.inputs}.parcels"
+    assert cfg.output.schema == db.schema
+    assert config_from_dict(cfg.to_dict(), base_dir=world.root) == cfg
