@@ -132,7 +132,9 @@ class OutputConfig:
     cut short). ``child_timeout_s``: the longest a run waits for its child
     process's job (the service band, writing the GeoPackage). ``database`` and ``schema``
     publish the same layers into that schema of a PostgreSQL/PostGIS database too
-    (:mod:`geopress.io.postgis`), atomically; None: the GeoPackage only.
+    (:mod:`geopress.io.postgis`), atomically; None: the GeoPackage only. ``geopackage = False``
+    (with a database) publishes into the database instead of writing the GeoPackage; ``path``
+    still says where run.json, the report and the lock go.
     """
 
     path: Path
@@ -144,6 +146,7 @@ class OutputConfig:
     child_timeout_s: float = 3600.0
     database: str | None = None
     schema: str | None = None
+    geopackage: bool = True
 
 
 @dataclass(frozen=True)
@@ -699,7 +702,7 @@ class _Reader:
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
         self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s",
-                               "database", "schema"})
+                               "database", "schema", "geopackage"})
         database, schema = self.get(t, s, "database", "str", None), self.get(t, s, "schema", "str", None)
         if (database is None) != (schema is None):
             given, missing = ("database", "schema") if schema is None else ("schema", "database")
@@ -709,6 +712,9 @@ class _Reader:
             self.no_password("output.database", database)
             if len(schema.encode()) > MAX_SCHEMA_BYTES:
                 raise self.error("output.schema", f"is longer than {MAX_SCHEMA_BYTES} bytes; choose a shorter name")
+        if t.get("geopackage") is False and database is None:
+            raise self.error("output.geopackage", "= false needs output.database and output.schema to publish into "
+                                                  "instead; add them, or write the GeoPackage")
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
@@ -716,7 +722,7 @@ class _Reader:
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
         flags = {}
-        for name in ("report", "xlsx"):
+        for name in ("report", "xlsx", "geopackage"):
             flags[name] = t.get(name, True)
             if not isinstance(flags[name], bool):
                 raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")

@@ -493,11 +493,14 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker
     t0 = time.perf_counter()
     with clock.step("write outputs"):
         write_io.ensure_dir(out.path.parent, "output.path")
-        gpkg = stage.temp_for(out.path)
-        # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
-        table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"), _layer_frame(result)))
-        first_layers = customer_layers(result, table)
-        writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+        first_layers, writer = customer_layers(result), None
+        if out.geopackage:
+            gpkg = stage.temp_for(out.path)
+            # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
+            table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
+                                                                     _layer_frame(result)))
+            first_layers = customer_layers(result, table)
+            writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         info = dict(result.info)
         files = _list_files(result, info)
@@ -509,7 +512,7 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker
             later["layer_styles"] = write_io.Styles({k: (v.name, v.description, v.sld) for k, v in styles.items()})
         # the report, the GeoPackage's first layers and the others, and run.json count as one output each
         advance = _advance(clock.counter("write outputs", "outputs", len(files) + 4))
-        info["outputs"] = [str(out.path), *[str(p) for p in files]]
+        info["outputs"] = [*([str(out.path)] if out.geopackage else []), *[str(p) for p in files]]
         for target, write in files.items():
             stage.write(target, write)
             advance()
@@ -518,11 +521,15 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker
         if publication is not None:  # built in one open transaction, swapped in below
             info["database"] = {"database": redact_dsn(out.database), "schema": out.schema}
             info["database"]["build_s"] = publication.build(database_layers(result))
-        first = stage.wait(out.path, writer.result)
-        advance()
-        info["geopackage_layers_s"] = {**first, **stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later))}
-        if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
-            stage.link(gpkg, nightly.baseline_link(out.path))
+        if writer is not None:
+            first = stage.wait(out.path, writer.result)
+            advance()
+            info["geopackage_layers_s"] = {**first,
+                                           **stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later))}
+            if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
+                stage.link(gpkg, nightly.baseline_link(out.path))
+        else:
+            advance()
         advance()
         # run.json is written inside this step: it records the step up to its own writing
         info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}

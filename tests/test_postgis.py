@@ -420,3 +420,20 @@ def test_the_config_round_trips_with_database_sources(world, db):
     assert cfg.customers.path is None and cfg.customers.database.table == f"{db.inputs}.parcels"
     assert cfg.output.schema == db.schema
     assert config_from_dict(cfg.to_dict(), base_dir=world.root) == cfg
+
+
+def test_publishing_instead_of_the_geopackage(world, db):
+    text = db.config().replace(f'schema = "{db.schema}"\n', f'schema = "{db.schema}"\ngeopackage = false\n')
+    world.config_path.write_text(text)
+    ok(run(world))
+    assert not world.out.exists() and not list(world.out.parent.glob(".pressure.gpkg*"))
+    assert (world.root / "out/run.json").exists() and (world.root / "out/mailing/high_pressure.csv").exists()
+    assert len(db.read("customers")) == 20 and db.runs()[0]["outputs"][0].endswith("high_pressure.csv")
+    db.server.sql(f"DELETE FROM {db.inputs}.parcels WHERE account = 'C0007'")
+    ok(run(world))
+    (first, second) = db.runs()
+    assert first["changes"]["counts"]["new_customer"] == 20 and second["changes"]["counts"]["removed"] == 1
+    assert db.read("removed_customers")["account"].tolist() == ["C0007"]
+    world.config_path.write_text(BASE_CONFIG.replace('mailing_dir = "out/mailing"', 'mailing_dir = "out/mailing"\n'
+                                                     "geopackage = false"))
+    assert_bad(run(world), "output.geopackage", "needs output.database")
