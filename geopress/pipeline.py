@@ -798,6 +798,9 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     for o in ov:
         lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
+    if cfg.output.database is not None:
+        lines.append(f"output: published into schema {cfg.output.schema} of database '{redact_dsn(cfg.output.database)}'"
+                     + ("" if cfg.output.geopackage else ", instead of the GeoPackage"))
     coverage = {r.path: n for r, n in zip(rasters, each)}
     coverage["any"] = anywhere
     return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=names,
