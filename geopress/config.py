@@ -172,6 +172,7 @@ class Config:
     def input_paths(self) -> list[Path]:
         """Every input file the run reads, with the files a Shapefile's attributes, index and CRS are in."""
         grid = [self.terrain.datum_grid] if self.terrain.datum_grid else []
+
         def files(path: Path | None) -> list[Path]:  # none for a layer read from a database
             return [] if path is None else with_sidecars(path)
 
@@ -193,8 +194,8 @@ class Config:
 
 #: the keys of a [customers] or [zones] section that read it from a database (DatabaseSource)
 DATABASE_KEYS = ("database", "table", "query", "geometry_column")
-#: the longest output.schema: PostgreSQL's 63-byte identifiers, less room for the names publishing builds from it
-MAX_SCHEMA_BYTES = 40
+#: the longest output.schema: PostgreSQL cuts a longer identifier to 63 bytes without a word (NAMEDATALEN - 1)
+MAX_SCHEMA_BYTES = 63
 #: the keys an --out-dir sets
 OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)

@@ -436,3 +436,13 @@ def test_publishing_instead_of_the_geopackage(world, db):
     world.config_path.write_text(BASE_CONFIG.replace('mailing_dir = "out/mailing"', 'mailing_dir = "out/mailing"\n'
                                                      "geopackage = false"))
     assert_bad(run(world), "output.geopackage", "needs output.database")
+
+
+def test_a_what_if_never_publishes(world, db, tmp_path):
+    db.config()
+    ok(run(world))
+    before = db.read("customers")
+    ok(invoke("run", world.config_path, "--set", "criteria.max_static_psi=60", "--out-dir", tmp_path / "scenario"))
+    assert (tmp_path / "scenario" / "run.json").exists()
+    pd.testing.assert_frame_equal(db.read("customers"), before)
+    assert len(db.runs()) == 1
