@@ -249,6 +249,9 @@ def test_a_second_run_into_the_schema_is_refused(world, db):
         cur.execute(f"SELECT pg_advisory_lock({postgis_io.LOCK_CLASS}, hashtext('{db.schema}'))")
         cur.fetchall()
         assert_bad(run(world), "another geopress run is publishing into schema", db.schema, "wait")
+        # the run's sessions say whose they are; the refused run's are gone
+        cur.execute("SELECT count(*) FROM pg_stat_activity WHERE application_name = 'geopress'")
+        assert cur.fetchone() == (0,)
     assert snapshot(world.root) == before and not (world.root / "out").exists()
     assert "geopress_runs" not in db.relations()
     ok(run(world))  # the lock ended with the other session
@@ -411,6 +414,15 @@ def test_connection_strings_are_shown_without_their_password(dsn, shown):
     assert dsn_password(dsn) == (dsn != "service=gis")
 
 
+@pytest.mark.parametrize("dsn, named", [
+    ("service=gis", "service=gis fallback_application_name=geopress"),
+    ("postgresql://db/gis", "postgresql://db/gis?fallback_application_name=geopress"),
+    ("postgresql://db/gis?sslmode=require", "postgresql://db/gis?sslmode=require&fallback_application_name=geopress"),
+])
+def test_sessions_are_named_unless_the_connection_string_names_them(dsn, named):
+    assert postgis_io.with_application_name(dsn) == named
+
+
 def test_the_config_round_trips_with_database_sources(world, db):
     from geopress.config import config_from_dict, load_config
 
@@ -446,3 +458,9 @@ def test_a_what_if_never_publishes(world, db, tmp_path):
     assert (tmp_path / "scenario" / "run.json").exists()
     pd.testing.assert_frame_equal(db.read("customers"), before)
     assert len(db.runs()) == 1
+
+
+def test_a_session_shows_as_geopress(postgis_server):
+    with postgis_io.connect(postgis_server.dsn(), "output.database") as con, con.cursor() as cur:
+        cur.execute("SELECT application_name FROM pg_stat_activity WHERE pid = pg_backend_pid()")
+        assert cur.fetchone() == ("geopress",)

@@ -85,12 +85,23 @@ def sqlstate(exc: BaseException) -> str | None:
     return getattr(exc, "sqlstate", None)
 
 
+#: how a run's sessions show in pg_stat_activity, unless the connection string names itself
+APPLICATION_NAME = "geopress"
+
+
+def with_application_name(dsn: str) -> str:
+    """``dsn`` with libpq's ``fallback_application_name``, so a DBA sees which sessions are geopress's."""
+    if re.match(r"(?i)postgres(ql)?://", dsn):
+        return f"{dsn}{'&' if '?' in dsn else '?'}fallback_application_name={APPLICATION_NAME}"
+    return f"{dsn} fallback_application_name={APPLICATION_NAME}"
+
+
 def connect(dsn: str, key: str, error: type = InputError, *, autocommit: bool = False):
     """An ADBC connection to ``dsn`` (in a transaction unless ``autocommit``); ``error`` naming ``key`` when it
     cannot connect."""
     dbapi = _driver()
     try:
-        return dbapi.connect(dsn, autocommit=autocommit)
+        return dbapi.connect(with_application_name(dsn), autocommit=autocommit)
     except dbapi.Error as exc:
         raise error(f"cannot connect to database '{redact_dsn(dsn)}' ({_message(exc)}); check {key}, that the "
                     "server runs, and the role's credentials in ~/.pgpass, the service file or PGPASSWORD",
