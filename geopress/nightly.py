@@ -119,9 +119,13 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     prev, key = None, "output.schema"
     if baseline is None and published is not None:
         columns = [cust_cfg.id_field, "status", "zone", *cust_cfg.mail_fields]
-        layer = published.previous(cust_cfg.id_field, columns, current.crs)
-        if layer is not None:
-            prev = baseline_io.published_baseline(published.where, layer, cust_cfg.id_field, key=key)
+        frame = published.previous(cust_cfg.id_field, columns)
+        if frame is not None:
+            def fetch(ids: pd.Series, names: list[str]):
+                return published.previous_rows(cust_cfg.id_field, ids, names, current.crs)
+
+            prev = baseline_io.published_baseline(published.where, frame, cust_cfg.id_field, current.crs, fetch,
+                                                  key=key)
     if prev is None:
         path, key = _baseline_path(cfg, baseline)
         prev = None if path is None else baseline_io.read_baseline(

@@ -23,7 +23,7 @@ import postgis_support
 from conftest import BASE_CONFIG
 from geopress import pipeline
 from geopress.io import postgis as postgis_io
-from nightly_support import assert_bad, error_line, invoke, run, snapshot
+from nightly_support import assert_bad, invoke, run, snapshot
 
 FILE_CUSTOMERS = 'path = "customers.gpkg"\nlayer = "parcels"\n'
 FILE_ZONES = 'path = "zones.gpkg"\nlayer = "zones"\n'

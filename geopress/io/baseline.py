@@ -12,7 +12,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 import geopandas as gpd
 import numpy as np
@@ -52,22 +52,22 @@ class Baseline:
 
 @dataclass
 class PublishedBaseline(Baseline):
-    """The customers a run published into a database (:mod:`geopress.io.postgis`), read whole, geometry
-    included; ``path`` says where they are (no password)."""
+    """The customers a run published into a database (:mod:`geopress.io.postgis`); ``path`` says where they
+    are (no password). ``fetch(ids, columns)`` reads the rows of those ids, in that order, with their geometry."""
 
-    layer: gpd.GeoDataFrame | None = None
+    fetch: Callable[[pd.Series, list[str]], gpd.GeoDataFrame] | None = None
+    id_field: str = ""
 
     def rows(self, positions: np.ndarray) -> gpd.GeoDataFrame:
-        got = self.layer.iloc[positions].reset_index(drop=True)
-        return got[[*self.columns, got.geometry.name]]
+        return self.fetch(self.frame[self.id_field].iloc[positions].reset_index(drop=True), self.columns)
 
 
-def published_baseline(where: str, layer: gpd.GeoDataFrame, id_field: str, *, key: str) -> PublishedBaseline:
-    """The :class:`PublishedBaseline` of ``layer``, the published customers (``where``; ``key`` names it)."""
-    columns = [c for c in layer.columns if c != layer.geometry.name]
-    log.info("baseline: %d customers from %s (%s)", len(layer), where, key)
-    return PublishedBaseline(path=where, frame=pd.DataFrame(layer[[id_field, "status"]]), columns=columns,
-                             crs=layer.crs, layer=layer)
+def published_baseline(where: str, frame: pd.DataFrame, id_field: str, crs: CRS, fetch, *,
+                       key: str) -> PublishedBaseline:
+    """The :class:`PublishedBaseline` of ``frame``, the published customers' fields (``where``; ``key`` names it)."""
+    log.info("baseline: %d customers from %s (%s)", len(frame), where, key)
+    return PublishedBaseline(path=where, frame=frame, columns=list(frame.columns), crs=crs, fetch=fetch,
+                             id_field=id_field)
 
 
 def read_baseline(

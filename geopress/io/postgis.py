@@ -27,7 +27,6 @@ from dataclasses import dataclass
 from typing import Any, Callable, Mapping, Sequence
 
 import geopandas as gpd
-import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -383,9 +382,9 @@ class Publication:
             self._lock = None
 
     # -- the baseline ----------------------------------------------------------
-    def previous(self, id_field: str, columns: Sequence[str], crs: CRS) -> gpd.GeoDataFrame | None:
-        """The published customers' ``id_field``, ``status`` and the ``columns`` they have, with their
-        geometry in ``crs``; None when no run has published here yet."""
+    def previous(self, id_field: str, columns: Sequence[str]) -> pd.DataFrame | None:
+        """The published customers' ``id_field``, ``status`` and those of ``columns`` they have (no geometry:
+        :meth:`previous_rows` gives it for the rows that need it); None when no run has published here yet."""
         with connect(self.dsn, "output.database", OutputError) as con, con.cursor() as cur:
             have = _fetch(cur, "SELECT a.attname AS name FROM pg_attribute a JOIN pg_class c ON c.oid = a.attrelid "
                                "JOIN pg_namespace n ON n.oid = c.relnamespace WHERE n.nspname = "
@@ -398,15 +397,32 @@ class Publication:
                     raise InputError(f"{self.where}: the published customers have no field '{needed}', so this run "
                                      "cannot be compared with them; drop that table to start a fresh history",
                                      key="output.schema")
-            geometry = next((c for c in have if c == "geometry"), None)
-            names = [c for c in dict.fromkeys([id_field, "status", *columns]) if c in have and c != geometry]
-            select = ", ".join(quote(c) for c in names)
-            if geometry:
-                select += f", ST_AsBinary({quote(geometry)}) AS geopress_wkb"
-            table = _fetch(cur, f"SELECT {select} FROM {quote(self.schema)}.customers")
-        wkb = table["geopress_wkb"].to_numpy(zero_copy_only=False) if geometry else np.full(table.num_rows, None)
-        frame = table.drop_columns(["geopress_wkb"] if geometry else []).to_pandas()
-        return gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(shapely.from_wkb(wkb), crs=crs))
+            names = [c for c in dict.fromkeys([id_field, "status", *columns]) if c in have and c != "geometry"]
+            table = _fetch(cur, f"SELECT {', '.join(quote(c) for c in names)} FROM {quote(self.schema)}.customers")
+        return table.to_pandas()
+
+    def previous_rows(self, id_field: str, ids: pd.Series, columns: Sequence[str], crs: CRS) -> gpd.GeoDataFrame:
+        """The published customers whose ``id_field`` is in ``ids`` (in that order) with ``columns`` and their
+        geometry in ``crs``: the ids go to a temporary table by binary COPY, joined to the customers."""
+        select = ", ".join(f"c.{quote(c)}" for c in columns)
+        with connect(self.dsn, "output.database", OutputError) as con, con.cursor() as cur:
+            key = quote(id_field)
+            cur.execute(f"CREATE TEMPORARY TABLE geopress_wanted AS SELECT {key} FROM {quote(self.schema)}.customers "
+                        "WITH NO DATA")
+            cur.adbc_ingest("geopress_wanted", pa.Table.from_pandas(pd.DataFrame({id_field: ids}),
+                                                                    preserve_index=False),
+                            mode="append", temporary=True)
+            table = _fetch(cur, f"SELECT {select}, ST_AsBinary(c.geometry) AS geopress_wkb FROM "
+                                f"{quote(self.schema)}.customers c JOIN geopress_wanted w USING ({key})")
+            con.rollback()  # the temporary table goes with it
+        frame = table.drop_columns(["geopress_wkb"]).to_pandas()
+        geometry = shapely.from_wkb(table["geopress_wkb"].to_numpy(zero_copy_only=False))
+        got = gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(geometry, crs=crs))
+        order = pd.Index(got[id_field]).get_indexer(ids)
+        if (order < 0).any():
+            raise InputError(f"{self.where}: the published customers changed while this run read them; run again",
+                             key="output.schema")
+        return got.iloc[order].reset_index(drop=True)
 
     # -- the new generation -------------------------------------------------------
     def build(self, layers: Mapping[str, Table | View]) -> dict[str, float]:
