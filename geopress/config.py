@@ -32,6 +32,27 @@ from .units import UNIT_SYSTEMS
 
 
 @dataclass(frozen=True)
+class DatabaseSource:
+    """A layer read from PostgreSQL/PostGIS instead of a file: a ``table`` (or view, ``schema.name``) or a
+    ``query``, whose ``geometry_column`` holds the geometries (with an SRID).
+
+    ``database`` is a libpq connection string or URI (``service=NAME``, ``host=... dbname=...``,
+    ``postgresql://host/db``). It never holds a password (the loader refuses one): libpq takes it from
+    PGPASSWORD, ``~/.pgpass`` or the service file.
+    """
+
+    database: str
+    table: str | None = None
+    query: str | None = None
+    geometry_column: str = "geom"
+
+    def describe(self) -> str:
+        """Where the layer is, for messages and run.json: the server (no password) and the table or query."""
+        what = f"table {self.table}" if self.table else "the query"
+        return f"{what} of database '{redact_dsn(self.database)}'"
+
+
+@dataclass(frozen=True)
 class CustomersConfig:
     """Where the customers are. ``floors_field`` holds stories above ground.
 
@@ -40,12 +61,14 @@ class CustomersConfig:
     per address, their distinct values in account order, joined by "; ".
     """
 
-    path: Path
+    #: the file, or None when the customers come from ``database``
+    path: Path | None
     id_field: str
     layer: str | None = None
     mail_fields: tuple[str, ...] = ()
     floors_field: str | None = None
     letter_fields: tuple[str, ...] = ()
+    database: DatabaseSource | None = None
 
 
 @dataclass(frozen=True)
@@ -81,11 +104,13 @@ class ZonesConfig:
     ``TerrainConfig.datum_offset_ft``).
     """
 
-    path: Path
+    #: the file, or None when the zones come from ``database``
+    path: Path | None
     id_field: str
     sources: tuple[Source, ...]
     layer: str | None = None
     vertical_datum: str | None = None
+    database: DatabaseSource | None = None
 
     def source_for(self, zone: str) -> Source | None:
         """The source of ``zone``, or None."""
@@ -105,7 +130,11 @@ class OutputConfig:
     each mailing list's CSV. ``max_drop_percent``: a run whose customers
     dropped by more than this share of the baseline's is refused (an export
     cut short). ``child_timeout_s``: the longest a run waits for its child
-    process's job (the service band, writing the GeoPackage).
+    process's job (the service band, writing the GeoPackage). ``database`` and ``schema``
+    publish the same layers into that schema of a PostgreSQL/PostGIS database too
+    (:mod:`geopress.io.postgis`), atomically; None: the GeoPackage only. ``geopackage = False``
+    (with a database) publishes into the database instead of writing the GeoPackage; ``path``
+    still says where run.json, the report and the lock go.
     """
 
     path: Path
@@ -115,6 +144,9 @@ class OutputConfig:
     xlsx: bool = True
     max_drop_percent: float = 20.0
     child_timeout_s: float = 3600.0
+    database: str | None = None
+    schema: str | None = None
+    geopackage: bool = True
 
 
 @dataclass(frozen=True)
@@ -140,17 +172,19 @@ class Config:
     def input_paths(self) -> list[Path]:
         """Every input file the run reads, with the files a Shapefile's attributes, index and CRS are in."""
         grid = [self.terrain.datum_grid] if self.terrain.datum_grid else []
-        return [*with_sidecars(self.customers.path), *self.terrain.paths, *grid, *with_sidecars(self.zones.path)]
+
+        def files(path: Path | None) -> list[Path]:  # none for a layer read from a database
+            return [] if path is None else with_sidecars(path)
+
+        return [*files(self.customers.path), *self.terrain.paths, *grid, *files(self.zones.path)]
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain TOML-like data (paths as strings)."""
         return {
-            "customers": _plain(self.customers),
+            "customers": _layer_dict(self.customers),
             "terrain": _plain(self.terrain),
             "zones": {
-                "path": str(self.zones.path),
-                "layer": self.zones.layer,
-                "id_field": self.zones.id_field,
+                **_layer_dict(self.zones, ("path", "layer", "id_field")),
                 "source": [_plain(s) for s in self.zones.sources],
             },
             "criteria": _plain(self.criteria),
@@ -158,6 +192,10 @@ class Config:
         }
 
 
+#: the keys of a [customers] or [zones] section that read it from a database (DatabaseSource)
+DATABASE_KEYS = ("database", "table", "query", "geometry_column")
+#: the longest output.schema: PostgreSQL cuts a longer identifier to 63 bytes without a word (NAMEDATALEN - 1)
+MAX_SCHEMA_BYTES = 63
 #: the keys an --out-dir sets
 OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
@@ -178,6 +216,30 @@ def with_sidecars(path: Path) -> list[Path]:
 #: (EPSG:5703 "NAVD88 height"; EPSG:7968 "NGVD29 height (m)"). Any other vertical CRS is
 #: given by its code, name or WKT.
 DATUM_NAMES: dict[str, str] = {"NAVD88": "EPSG:5703", "NGVD29": "EPSG:7968"}
+
+
+def _layer_dict(cfg: CustomersConfig | ZonesConfig, names: tuple[str, ...] | None = None) -> dict[str, Any]:
+    """A layer's section as the TOML has it: ``names`` (default every field), the database's keys flat in it."""
+    out = {f.name: _plain(getattr(cfg, f.name)) for f in fields(cfg)
+           if f.name != "database" and (names is None or f.name in names)}
+    if cfg.database is not None:
+        out.update(_plain(cfg.database))
+    return out
+
+
+#: a password in a libpq key/value connection string, in a URI's user info or in its parameters
+_PASSWORD_KV = re.compile(r"(?i)(\bpassword\s*=\s*)('(?:[^'\\]|\\.)*'|[^\s&]*)")
+_PASSWORD_URI = re.compile(r"(?i)^(postgres(?:ql)?://[^:@/?]*):([^@/?]*)@")
+
+
+def dsn_password(dsn: str) -> bool:
+    """Whether the libpq connection string or URI ``dsn`` holds a password."""
+    return bool(_PASSWORD_KV.search(dsn) or _PASSWORD_URI.search(dsn))
+
+
+def redact_dsn(dsn: str) -> str:
+    """``dsn`` with any password replaced by ``***``: the only form of a connection string geopress shows."""
+    return _PASSWORD_URI.sub(r"\1:***@", _PASSWORD_KV.sub(r"\1***", dsn))
 
 
 def _plain(obj: Any) -> Any:
@@ -458,9 +520,12 @@ class _Reader:
 
     def customers(self, t: dict[str, Any]) -> CustomersConfig:
         s = "customers"
-        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field", "letter_fields"})
+        self.no_unknown(t, s, {"path", "layer", "id_field", "mail_fields", "floors_field", "letter_fields",
+                               *DATABASE_KEYS})
+        database = self.database_source(t, s)
         cfg = CustomersConfig(
-            path=self.path(self.get(t, s, "path", "str"), "customers.path"),
+            path=None if database else self.path(self.get(t, s, "path", "str"), "customers.path"),
+            database=database,
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             mail_fields=self.get(t, s, "mail_fields", "str_list", ()),
@@ -536,9 +601,34 @@ class _Reader:
         code = crs.to_authority()
         return f"{code[0]}:{code[1]}" if code else crs.to_wkt()
 
+    def database_source(self, t: dict[str, Any], s: str) -> DatabaseSource | None:
+        """The section's database keys as a :class:`DatabaseSource`, or None when it names a file."""
+        given = {name: self.get(t, s, name, "str", None) for name in DATABASE_KEYS}
+        if given["database"] is None:
+            for name, value in given.items():
+                if value is not None:
+                    raise self.error(f"{s}.{name}", f"needs {s}.database, the connection to read from; add it or "
+                                                    "remove this key")
+            return None
+        for name in ("path", "layer"):
+            if t.get(name) is not None:
+                hint = "name the table with table = \"schema.name\"" if name == "layer" else "keep one"
+                raise self.error(f"{s}.{name}", f"is for a file and cannot be used with {s}.database; {hint}")
+        self.no_password(f"{s}.database", given["database"])
+        if (given["table"] is None) == (given["query"] is None):
+            raise self.error(f"{s}.table", f"give one of {s}.table (a table or view) or {s}.query (a SELECT)")
+        return DatabaseSource(database=given["database"], table=given["table"], query=given["query"],
+                              geometry_column=given["geometry_column"] or "geom")
+
+    def no_password(self, key: str, dsn: str) -> None:
+        if dsn_password(dsn):
+            raise self.error(key, "holds a password, which a config file must not; remove it and give it to libpq "
+                                  "in ~/.pgpass, a service file (PGSERVICEFILE) or PGPASSWORD")
+
     def zones(self, t: dict[str, Any]) -> ZonesConfig:
         s = "zones"
-        self.no_unknown(t, s, {"path", "layer", "id_field", "source", "vertical_datum"})
+        self.no_unknown(t, s, {"path", "layer", "id_field", "source", "vertical_datum", *DATABASE_KEYS})
+        database = self.database_source(t, s)
         raw = t.get("source")
         if raw is None:
             raise self.error("zones.source", "missing; add one [[zones.source]] table per zone")
@@ -556,7 +646,8 @@ class _Reader:
             seen[src.zone] = i
             sources.append(src)
         return ZonesConfig(
-            path=self.path(self.get(t, s, "path", "str"), "zones.path"),
+            path=None if database else self.path(self.get(t, s, "path", "str"), "zones.path"),
+            database=database,
             layer=self.get(t, s, "layer", "str", None),
             id_field=self.get(t, s, "id_field", "str"),
             sources=tuple(sources),
@@ -611,7 +702,20 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s",
+                               "database", "schema", "geopackage"})
+        database, schema = self.get(t, s, "database", "str", None), self.get(t, s, "schema", "str", None)
+        if (database is None) != (schema is None):
+            given, missing = ("database", "schema") if schema is None else ("schema", "database")
+            raise self.error(f"output.{given}", f"is set but output.{missing} is not; give both to publish into a "
+                                                "database, or neither")
+        if database is not None:
+            self.no_password("output.database", database)
+            if len(schema.encode()) > MAX_SCHEMA_BYTES:
+                raise self.error("output.schema", f"is longer than {MAX_SCHEMA_BYTES} bytes; choose a shorter name")
+        if t.get("geopackage") is False and database is None:
+            raise self.error("output.geopackage", "= false needs output.database and output.schema to publish into "
+                                                  "instead; add them, or write the GeoPackage")
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
@@ -619,7 +723,7 @@ class _Reader:
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
         flags = {}
-        for name in ("report", "xlsx"):
+        for name in ("report", "xlsx", "geopackage"):
             flags[name] = t.get(name, True)
             if not isinstance(flags[name], bool):
                 raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")
@@ -630,4 +734,5 @@ class _Reader:
         if timeout <= 0:
             raise self.error("output.child_timeout_s", f"must be positive, not {timeout:g}")
         return OutputConfig(path=path, mailing_dir=self.path(self.get(t, s, "mailing_dir", "str"), "output.mailing_dir"),
-                            units=units, max_drop_percent=drop, child_timeout_s=timeout, **flags)
+                            units=units, max_drop_percent=drop, child_timeout_s=timeout, database=database,
+                            schema=schema, **flags)

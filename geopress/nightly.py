@@ -19,11 +19,18 @@ from . import changes
 from .config import Config
 from .errors import InputError
 from .io import baseline as baseline_io
+from .io import postgis
 from .io import write as write_io
 from .io.lock import OutputLock
 from .units import customers_in_units, mailing_columns_in_units, units_for
 
 log = logging.getLogger(__name__)
+
+
+def publishes(cfg: Config) -> bool:
+    """Whether a run of ``cfg`` publishes into a database: ``output.database`` is set and the run is not a what-if
+    nor sent to another folder (``--set``, ``--out-dir``), whose results must not replace the published ones."""
+    return cfg.output.database is not None and not cfg.overrides
 
 
 def mailing_lock_target(cfg: Config) -> Path | None:
@@ -33,19 +40,23 @@ def mailing_lock_target(cfg: Config) -> Path | None:
 
 
 @contextmanager
-def guarded_outputs(cfg: Config, targets: list[Path]) -> Iterator[None]:
+def guarded_outputs(cfg: Config, targets: list[Path]) -> Iterator[postgis.Publication | None]:
     """Hold the output lock (and the mailing folder's, when it lies elsewhere); first undo a half-done
-    commit and remove stale temporaries of ``targets``."""
+    commit and remove stale temporaries of ``targets``. When the run publishes into a database
+    (:func:`publishes`), hold that schema's advisory lock too, and give its :class:`~geopress.io.postgis.Publication`."""
     with ExitStack() as stack:
         stack.enter_context(OutputLock(cfg.output.path))
         mailing = mailing_lock_target(cfg)
         if mailing is not None:
             stack.enter_context(OutputLock(mailing, key="output.mailing_dir"))
+        publication = None
+        if publishes(cfg):
+            publication = stack.enter_context(postgis.Publication(cfg.output.database, cfg.output.schema))
         write_io.recover(cfg.output.path)
         for target in targets:
             for p in write_io.remove_stale_temps(target):
                 log.info("removed a temporary file left by an earlier run: %s", p)
-        yield
+        yield publication
 
 
 def snapshot(paths: list[Path]) -> dict[Path, tuple[int, int]]:
@@ -91,8 +102,11 @@ def _baseline_path(cfg: Config, explicit: str | os.PathLike | None) -> tuple[Pat
     return (cfg.output.path, "output.path") if cfg.output.path.exists() else (None, "output.path")
 
 
-def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = False) -> None:
-    """Compare ``result`` (a pipeline Result) with the baseline (see :func:`_baseline_path`); adds the
+def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = False,
+          published: postgis.Publication | None = None) -> None:
+    """Compare ``result`` (a pipeline Result) with the baseline: ``baseline`` when given, else the customers
+    last ``published`` into the database when the run publishes and one has, else as :func:`_baseline_path`
+    says (so a run that starts publishing keeps the history of its GeoPackage); adds the
     ``previous_status`` and ``change`` columns to its customers and sets its removed customers and its
     new mailing lists.
 
@@ -102,9 +116,20 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     cfg = result.config
     cust_cfg = cfg.customers
     current = result.customers
-    path, key = _baseline_path(cfg, baseline)
-    prev = None if path is None else baseline_io.read_baseline(
-        path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=current.crs, key=key)
+    prev, key = None, "output.schema"
+    if baseline is None and published is not None:
+        columns = [cust_cfg.id_field, "status", "zone", *cust_cfg.mail_fields]
+        frame = published.previous(cust_cfg.id_field, columns)
+        if frame is not None:
+            def fetch(ids: pd.Series, names: list[str]):
+                return published.previous_rows(cust_cfg.id_field, ids, names, current.crs)
+
+            prev = baseline_io.published_baseline(published.where, frame, cust_cfg.id_field, current.crs, fetch,
+                                                  key=key)
+    if prev is None:
+        path, key = _baseline_path(cfg, baseline)
+        prev = None if path is None else baseline_io.read_baseline(
+            path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=current.crs, key=key)
     frame = prev.frame if prev is not None else pd.DataFrame({cust_cfg.id_field: [], "status": []}, dtype=object)
     try:
         table = changes.compare(frame[cust_cfg.id_field], frame["status"], current[cust_cfg.id_field],

@@ -34,9 +34,10 @@ from . import runner
 from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
-from .config import Config, load_config
+from .config import Config, DatabaseSource, load_config, redact_dsn
 from .errors import ConfigError, GeopressWarning, InputError, OutputError, TerrainWarning, ZoneOverlapWarning
 from .io import datum as datum_io
+from .io import postgis as postgis_io
 from .io import raster as raster_io
 from .io import vector as vector_io
 from .io import write as write_io
@@ -176,6 +177,13 @@ def _input_record(path: Path) -> dict[str, Any]:
         "bytes": st.st_size,
         "modified": datetime.fromtimestamp(st.st_mtime, timezone.utc).isoformat(timespec="seconds"),
     }
+
+
+def _database_record(src: DatabaseSource, key: str) -> dict[str, Any]:
+    """A layer read from a database as run.json and the report list it: the connection (no password) and
+    the table or query."""
+    what = {"table": src.table} if src.table else {"query": src.query}
+    return {"layer": key, "database": redact_dsn(src.database), **what, "geometry_column": src.geometry_column}
 
 
 def _warn_overlaps(zones: vector_io.Zones) -> list[dict[str, Any]]:
@@ -380,7 +388,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
         "config_file": str(cfg.source_path) if cfg.source_path else None,
         "config": cfg.to_dict(),
-        "inputs": [_input_record(p) for p in cfg.input_paths()],
+        "inputs": [*(_input_record(p) for p in cfg.input_paths()),
+                   *(_database_record(c.database, key) for key, c in (("customers", cfg.customers), ("zones", cfg.zones))
+                     if c.database is not None)],
         "customers": {
             "total": int(len(customers)),
             "layer": cust.layer,
@@ -441,25 +451,52 @@ def later_layers(result: Result) -> dict[str, write_io.Layer]:
     return layers
 
 
+#: every layer a run can publish into a database (a run drops those of an earlier run it does not publish)
+PUBLISHED_LAYERS = ("customers", *cls.FLAGGED_LAYERS.values(), "changes", "zone_summary", "service_band",
+                    "band_limits", "removed_customers")
+
+
+def database_layers(result: Result) -> dict[str, postgis_io.Table | postgis_io.View]:
+    """The GeoPackage's layers as a database gets them, with the same names and fields: ``customers`` keyed by
+    the id field and indexed on ``status``, the flagged layers and ``changes`` views of it, the others tables."""
+    layers: dict[str, postgis_io.Table | postgis_io.View] = {}
+    for name, layer in customer_layers(result).items():
+        if isinstance(layer, write_io.View):
+            layers[name] = postgis_io.View(of=layer.of, column=layer.column, values=layer.values)
+        else:
+            layers[name] = postgis_io.geo_table(result.customers, wkb=result.wkb, kind="Point",
+                                                key=result.config.customers.id_field, indexes=("status",))
+    for name, layer in later_layers(result).items():
+        if isinstance(layer, gpd.GeoDataFrame):
+            layers[name] = postgis_io.geo_table(layer, kind="Point" if name == "removed_customers" else "Geometry")
+        else:
+            layers[name] = postgis_io.plain_table(layer)
+    return layers
+
+
 def run_json_path(config: Config) -> Path:
     """run.json sits beside the GeoPackage."""
     return config.output.path.parent / "run.json"
 
 
-def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker) -> list[Path]:
+def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker,
+                  publication: postgis_io.Publication | None = None) -> list[Path]:
     """Write every output: the GeoPackage's customer layers in ``worker``'s process while the mailing
-    lists, the layer styles and the report are staged here, then its other layers, run.json, and the
-    renames into place."""
+    lists, the layer styles, the report and (with a ``publication``) the database's new layers are
+    staged here, then its other layers, run.json, the database's swap, and the renames into place."""
     cfg = result.config
     out = cfg.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
         write_io.ensure_dir(out.path.parent, "output.path")
-        gpkg = stage.temp_for(out.path)
-        # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
-        table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"), _layer_frame(result)))
-        first_layers = customer_layers(result, table)
-        writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+        first_layers, writer = customer_layers(result), None
+        if out.geopackage:
+            gpkg = stage.temp_for(out.path)
+            # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
+            table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
+                                                                     _layer_frame(result)))
+            first_layers = customer_layers(result, table)
+            writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         info = dict(result.info)
         files = _list_files(result, info)
@@ -471,23 +508,32 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker
             later["layer_styles"] = write_io.Styles({k: (v.name, v.description, v.sld) for k, v in styles.items()})
         # the report, the GeoPackage's first layers and the others, and run.json count as one output each
         advance = _advance(clock.counter("write outputs", "outputs", len(files) + 4))
-        info["outputs"] = [str(out.path), *[str(p) for p in files]]
+        info["outputs"] = [*([str(out.path)] if out.geopackage else []), *[str(p) for p in files]]
         for target, write in files.items():
             stage.write(target, write)
             advance()
         _stage_report(result, info, stage)
         advance()
-        first = stage.wait(out.path, writer.result)
-        advance()
-        info["geopackage_layers_s"] = {**first, **stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later))}
-        if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
-            stage.link(gpkg, nightly.baseline_link(out.path))
+        if publication is not None:  # built in one open transaction, swapped in below
+            info["database"] = {"database": redact_dsn(out.database), "schema": out.schema}
+            info["database"]["build_s"] = publication.build(database_layers(result))
+        if writer is not None:
+            first = stage.wait(out.path, writer.result)
+            advance()
+            info["geopackage_layers_s"] = {**first,
+                                           **stage.wait(out.path, lambda: write_io.write_geopackage(gpkg, later))}
+            if not cfg.what_if:  # a plain run becomes the next run's baseline; a what-if never does
+                stage.link(gpkg, nightly.baseline_link(out.path))
+        else:
+            advance()
         advance()
         # run.json is written inside this step: it records the step up to its own writing
         info["timings_s"] = {**clock.timings, "write outputs": round(time.perf_counter() - t0, 4)}
         info["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
         stage.write(run_json_path(cfg), lambda tmp: write_io.write_json(tmp, info))
         advance()
+        if publication is not None:  # the database first: a failure there leaves the files as they were too
+            publication.swap(info, PUBLISHED_LAYERS)
         stage.commit()
         result.info = info
         return [p for p in stage.committed if not p.name.startswith(".")]
@@ -629,19 +675,19 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         check_writable(cfg.output.mailing_dir, "output.mailing_dir")
     shown: list[str] = []
     with _cycle_collection_paused(), _recorded_warnings(shown), \
-            nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext(), \
+            nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext() as publication, \
             write_io.Staging(journal_for=cfg.output.path) as stage, \
             runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker:  # stopped before the staging is discarded
         inputs = nightly.snapshot(cfg.input_paths())
         result = compute(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
         nightly.check_unchanged(inputs)
         with clock.step("compare with baseline"):
-            nightly.track(result, baseline, accept_drop=accept_drop)
+            nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
         result.info["started"] = started
         result.info["engine"] = engine
         result.info["warnings"] = shown  # the same list: warnings shown while writing are added too
         if write:
-            result.outputs = write_outputs(result, clock, stage, worker)
+            result.outputs = write_outputs(result, clock, stage, worker, publication)
     result.timings = clock.timings
     result.elapsed_s = time.perf_counter() - t0
     log.debug("run finished in %.2f s: %s", result.elapsed_s,
@@ -669,6 +715,11 @@ class CheckReport:
     unzoned: int = 0
     ground: list[guards.ZoneGround] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+
+
+def _where(layer_cfg: Any) -> str:
+    """Where a customers or zones layer is read from: its file, or its table or query in a database."""
+    return str(layer_cfg.path) if layer_cfg.database is None else layer_cfg.database.describe()
 
 
 def _share(part: int, whole: int) -> str:
@@ -717,7 +768,7 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     unzoned = located - int(np.count_nonzero(zone_code >= 0))
     k = cfg.criteria.psi_per_ft
     lines = [
-        f"customers: {len(cust.frame)} from {cfg.customers.path} layer '{cust.layer}' ({cust.crs.to_string()}); "
+        f"customers: {len(cust.frame)} from {_where(cfg.customers)} layer '{cust.layer}' ({cust.crs.to_string()}); "
         f"{cust.from_polygons} polygons, {cust.no_geometry} without geometry",
     ]
     for r, n in zip(rasters, each):
@@ -726,7 +777,7 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
                      f"{_share(n, located)} of the located customers on it")
     lines.append(f"terrain: {_share(anywhere, located)} of the located customers on a raster")
     lines.append(f"datum: {shift.description}; {shift.direction()}")
-    lines.append(f"zones: {len(names)} from {cfg.zones.path} layer '{zones.layer}' ({zones.crs.to_string()}); "
+    lines.append(f"zones: {len(names)} from {_where(cfg.zones)} layer '{zones.layer}' ({zones.crs.to_string()}); "
                  f"{_share(located - unzoned, located)} of the located customers in a zone, {unzoned} unzoned")
     lines.append("per zone: ground of its customers (min, 5 %, median, 95 %, max) against its HGL, and the static "
                  "pressure range")
@@ -743,6 +794,9 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     for o in ov:
         lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
+    if cfg.output.database is not None:
+        lines.append(f"output: published into schema {cfg.output.schema} of database '{redact_dsn(cfg.output.database)}'"
+                     + ("" if cfg.output.geopackage else ", instead of the GeoPackage"))
     coverage = {r.path: n for r, n in zip(rasters, each)}
     coverage["any"] = anywhere
     return CheckReport(config=cfg, customers=len(cust.frame), no_geometry=cust.no_geometry, zones=names,

@@ -27,6 +27,14 @@ step, and the in-process throughput of the bilinear kernel.
     python scripts/bench.py                                  # N = 1,000,000
     python scripts/bench.py --n 1000000 4000000 10000000     # the scale targets
     python scripts/bench.py --n 100000 --repeat 1            # a quick check
+    python scripts/bench.py --postgis "host=/tmp/pg dbname=gis"  # with the database beside the GeoPackage
+
+With ``--postgis DSN`` (a PostgreSQL database with PostGIS, where the role may create the schema
+``geopress_bench``), it also times, each in its own subprocess and alternating, reading the
+customers with ``geopress.io.vector.read_customers`` from the GeoPackage and from the same rows in
+a table there (loaded beforehand, not timed), and publishing geopress's customers layer (the
+floor's table, with the views of the flagged layers) through ``geopress.io.postgis.Publication``,
+against the floor's GeoPackage write.
 """
 
 from __future__ import annotations
@@ -247,6 +255,91 @@ def floor(work: Path) -> None:
 
 
 # ---------------------------------------------------------------------------
+# the database beside the GeoPackage (--postgis)
+
+DB_SCHEMA = "geopress_bench"
+
+
+def customers_config(work: Path, dsn: str | None):
+    """The bench's [customers] as geopress reads it: the GeoPackage, or with ``dsn`` the table loaded there."""
+    from geopress.config import CustomersConfig, DatabaseSource
+
+    db = None if dsn is None else DatabaseSource(database=dsn, table=f"{DB_SCHEMA}.customers")
+    return CustomersConfig(path=None if db else work / "customers.gpkg", layer=None if db else "customers",
+                           id_field="account", mail_fields=("owner", "mail_address"), floors_field="floors",
+                           database=db)
+
+
+def load_database(work: Path, dsn: str) -> None:
+    """The bench's customers into ``geopress_bench.customers`` (as a GIS would keep them: a GiST index)."""
+    import adbc_driver_postgresql.dbapi as dbapi
+    import pyogrio
+
+    from geopress.io import postgis
+
+    meta, table = pyogrio.read_arrow(work / "customers.gpkg", layer="customers")
+    geometry = meta["geometry_name"] or "wkb_geometry"
+    table = table.rename_columns(["geom" if c == geometry else c for c in table.column_names])
+    columns = ", ".join("geom geometry(Point, 32631)" if f.name == "geom" else
+                        f"{postgis.quote(f.name)} {postgis._sql_type(f, 'customers')}" for f in table.schema)
+    with dbapi.connect(dsn) as con, con.cursor() as cur:
+        cur.execute(f"DROP SCHEMA IF EXISTS {DB_SCHEMA} CASCADE")
+        cur.execute(f"CREATE SCHEMA {DB_SCHEMA}")
+        cur.execute(f"CREATE TABLE {DB_SCHEMA}.customers ({columns})")
+        cur.adbc_ingest("customers", table, mode="append", db_schema_name=DB_SCHEMA)
+        cur.execute(f"CREATE INDEX ON {DB_SCHEMA}.customers USING gist (geom)")
+        con.commit()
+
+
+def read_child(work: Path, dsn: str | None) -> None:
+    """Read the customers as a run does; prints READ s."""
+    from geopress.io.vector import read_customers
+
+    t0 = time.perf_counter()
+    cust = read_customers(customers_config(work, dsn))
+    print(f"READ {time.perf_counter() - t0:.4f} {len(cust.frame)}", flush=True)
+
+
+def publish_child(work: Path, dsn: str) -> None:
+    """Publish the floor's customers table with the flagged views, as a run does; prints PUBLISH s."""
+    from geopress.io import postgis
+
+    meta, table = floor_table(work)
+    geometry = meta["geometry_name"]
+    layers = {"customers": postgis.Table(data=table, geometry=geometry, kind="Point", srid=32631, key="account",
+                                         indexes=("status",))}
+    layers.update({name: postgis.View(of="customers", column="status", values=(code,)) for code, name in FLAGGED.items()})
+    t0 = time.perf_counter()
+    with postgis.Publication(dsn, DB_SCHEMA) as pub:
+        pub.build(layers)
+        pub.swap({"bench": True}, list(layers))
+    print(f"PUBLISH {time.perf_counter() - t0:.4f}", flush=True)
+
+
+def bench_database(work: Path, n: int, repeat: int, dsn: str, floor_s: float) -> None:
+    """Read and publish times of the database beside the GeoPackage's at ``n`` customers."""
+    load_database(work, dsn)
+    runs: dict[str, list[float]] = {"read gpkg": [], "read db": [], "publish db": []}
+    tags = {"read gpkg": ("read", "READ"), "read db": ("read-db", "READ"), "publish db": ("publish-db", "PUBLISH")}
+    for i in range(repeat):
+        for variant in list(runs) if i % 2 == 0 else list(runs)[::-1]:
+            child, tag = tags[variant]
+            env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+            m = measure([sys.executable, __file__, "--child", child, "--work", str(work), "--postgis", dsn], env)
+            if m.exit_code != 0:
+                sys.exit(f"{variant} failed with exit code {m.exit_code}")
+            seconds = float(next(line.split()[1] for line in m.stdout.splitlines() if line.startswith(tag + " ")))
+            runs[variant].append(seconds)
+            print(f"N={n:,} run {i + 1} {variant:10s} {seconds:8.2f} s  peak RSS {m.rss_gb:5.2f} GB", flush=True)
+    med = {v: statistics.median(r) for v, r in runs.items()}
+    print(f"\n{n:,} customers, the database beside the GeoPackage")
+    print(f"  read: GeoPackage {med['read gpkg']:.2f} s, database {med['read db']:.2f} s "
+          f"({med['read db'] / med['read gpkg']:.2f}x)")
+    print(f"  publish: floor GeoPackage write {floor_s:.2f} s, database (COPY, indexes, views, swap) "
+          f"{med['publish db']:.2f} s ({med['publish db'] / floor_s:.2f}x)")
+
+
+# ---------------------------------------------------------------------------
 # measuring
 
 
@@ -337,7 +430,7 @@ def bench_one(work: Path, n: int, repeat: int, with_script: bool) -> dict[str, f
         print(f"  script / geopress first run: {med['script'] / med['first']:.2f}x faster (within pairs: median "
               f"{statistics.median(pairs):.2f}x)")
     print("  geopress steps (last run): " + ", ".join(f"{k} {v:.2f} s" for k, v in steps.items()))
-    return {**{f"{v}_s": med[v] for v in variants}, "pss_gb": max(pss["first"], pss["rerun"])}
+    return {**{f"{v}_s": med[v] for v in variants}, "pss_gb": max(pss["first"], pss["rerun"]), "floor_s": med["floor"]}
 
 
 def main() -> None:
@@ -348,13 +441,23 @@ def main() -> None:
     ap.add_argument("--script-at", type=int, default=1_000_000,
                     help="the size at which the straightforward script runs too (default 1,000,000)")
     ap.add_argument("--work", type=Path, default=Path("bench-out"), help="folder for data and outputs")
-    ap.add_argument("--child", choices=["geopress", "baseline", "floor"], help=argparse.SUPPRESS)
+    ap.add_argument("--postgis", metavar="DSN", help="also time reading and publishing with this PostgreSQL/PostGIS "
+                    "database (libpq connection string; the role creates the schema geopress_bench)")
+    ap.add_argument("--child", choices=["geopress", "baseline", "floor", "read", "read-db", "publish-db"],
+                    help=argparse.SUPPRESS)
     args = ap.parse_args()
     work = args.work.resolve()
     if args.child:
-        {"geopress": geopress_run, "baseline": baseline, "floor": floor}[args.child](work)
+        children = {"geopress": geopress_run, "baseline": baseline, "floor": floor,
+                    "read": lambda w: read_child(w, None), "read-db": lambda w: read_child(w, args.postgis),
+                    "publish-db": lambda w: publish_child(w, args.postgis)}
+        children[args.child](work)
         return
-    results = {n: bench_one(work / f"n{n}", n, args.repeat, n == args.script_at) for n in args.n}
+    results = {}
+    for n in args.n:
+        results[n] = bench_one(work / f"n{n}", n, args.repeat, n == args.script_at)
+        if args.postgis:
+            bench_database(work / f"n{n}", n, args.repeat, args.postgis, results[n]["floor_s"])
     if len(results) > 1:
         small, large = min(results), max(results)
         for v in ("first", "rerun"):

@@ -914,6 +914,10 @@ def config_text(customers_path: str, layer: str, out_path: str,
 [customers]
 path = "{customers_path}"
 layer = "{layer}"
+# From a PostGIS database instead (pip install 'geopress[postgis]'; see README, "A PostGIS database"):
+# database = "service=gis"            # libpq: the password in ~/.pgpass or PGPASSWORD, never here
+# table = "{TOWN.lower()}.{layer}"       # or: query = "SELECT account, owner, ..., geom FROM ..."
+# geometry_column = "geom"
 id_field = "account"
 mail_fields = ["owner", "mail_address", "mail_city", "mail_state", "mail_zip"]
 floors_field = "floors"
@@ -926,6 +930,8 @@ method = "bilinear"
 [zones]
 path = "zones.gpkg"
 layer = "zones"
+# database = "service=gis"
+# table = "{TOWN.lower()}.zones"
 id_field = "zone"
 
 [[zones.source]]
@@ -954,6 +960,9 @@ floor_height_ft = {CRITERIA['floor_height_ft']}
 [output]
 path = "{out_path}"
 mailing_dir = "{mailing_dir}"
+# Publish the same layers into a PostGIS schema too (it must exist; the role needs CREATE on it):
+# database = "service=gis"
+# schema = "pressure"
 """
 
 

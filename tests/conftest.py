@@ -183,3 +183,29 @@ def restore_logging():
         lg.handlers[:] = handlers
         lg.setLevel(level)
         lg.propagate = propagate
+
+
+# ---- a PostgreSQL/PostGIS server for the database tests ------------------------------------
+
+
+@pytest.fixture(scope="session")
+def postgis_server():
+    """A throwaway cluster with PostGIS (tests/postgis_support.py), started once and stopped at the end.
+
+    Without PostgreSQL, PostGIS or the driver the database tests skip, saying why; under CI
+    (CI=true), where .ci/run installs them, they fail instead: a skipped database test there hides
+    a broken install."""
+    import os
+
+    import postgis_support
+
+    why = postgis_support.missing()
+    if why:
+        if os.environ.get("CI", "").lower() == "true":
+            pytest.fail(f"CI: the database tests need a PostgreSQL/PostGIS server: {why}", pytrace=False)
+        pytest.skip(why)
+    server = postgis_support.start()
+    try:
+        yield server
+    finally:
+        postgis_support.remove(server)

@@ -12,7 +12,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 import geopandas as gpd
 import numpy as np
@@ -48,6 +48,26 @@ class Baseline:
         if got.crs is not None and not CRS.from_user_input(got.crs).equals(self.crs):
             return got.to_crs(self.crs)
         return got.set_crs(self.crs, allow_override=True)
+
+
+@dataclass
+class PublishedBaseline(Baseline):
+    """The customers a run published into a database (:mod:`geopress.io.postgis`); ``path`` says where they
+    are (no password). ``fetch(ids, columns)`` reads the rows of those ids, in that order, with their geometry."""
+
+    fetch: Callable[[pd.Series, list[str]], gpd.GeoDataFrame] | None = None
+    id_field: str = ""
+
+    def rows(self, positions: np.ndarray) -> gpd.GeoDataFrame:
+        return self.fetch(self.frame[self.id_field].iloc[positions].reset_index(drop=True), self.columns)
+
+
+def published_baseline(where: str, frame: pd.DataFrame, id_field: str, crs: CRS, fetch, *,
+                       key: str) -> PublishedBaseline:
+    """The :class:`PublishedBaseline` of ``frame``, the published customers' fields (``where``; ``key`` names it)."""
+    log.info("baseline: %d customers from %s (%s)", len(frame), where, key)
+    return PublishedBaseline(path=where, frame=frame, columns=list(frame.columns), crs=crs, fetch=fetch,
+                             id_field=id_field)
 
 
 def read_baseline(

@@ -103,13 +103,28 @@ def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[i
         if name not in table.column_names:
             raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
         wkb = table[name]
-        geometry = shapely.from_wkb(wkb.to_numpy(zero_copy_only=False))
-        frame = table.drop_columns([name]).to_pandas(types_mapper=_TEXT)
+        frame = _frame(table.drop_columns([name]), wkb, meta["crs"])
     except InputError:
         raise
     except Exception as exc:
         raise InputError(f"cannot read layer '{layer}': {str(exc).splitlines()[0]}", path=path) from exc
-    return gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(geometry, crs=meta["crs"])), wkb
+    return frame, wkb
+
+
+def _frame(attributes: pa.Table, wkb: pa.ChunkedArray, crs) -> gpd.GeoDataFrame:
+    """A layer's attributes (Arrow) and its WKB as a GeoDataFrame, as :func:`read_layer` gives it."""
+    geometry = shapely.from_wkb(wkb.to_numpy(zero_copy_only=False))
+    return gpd.GeoDataFrame(attributes.to_pandas(types_mapper=_TEXT), geometry=gpd.GeoSeries(geometry, crs=crs))
+
+
+def _read_database(src, key: str, wanted: dict[str, str], count=None, columns: list[str] | None = None
+                   ) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray, CRS, str, str]:
+    """A layer from a database (:mod:`geopress.io.postgis`), its ``wanted`` fields checked and its ``columns``
+    read: the frame, its WKB, its CRS, its name, and where it is."""
+    from . import postgis
+
+    got = postgis.read_source(src, key, wanted, count=count, columns=columns)
+    return _frame(got.table, got.wkb, got.crs), got.wkb, got.crs, got.name, got.where
 
 
 def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
@@ -168,6 +183,10 @@ def _located(path: Path, layer: str, info: dict, key: str) -> None:
 
 def customers_crs(cfg: CustomersConfig) -> CRS:
     """The customers layer's CRS, from its metadata (an InputError when it has no geometry or no CRS)."""
+    if cfg.database is not None:
+        from . import postgis
+
+        return postgis.source_crs(cfg.database, "customers")
     layer = resolve_layer(cfg.path, cfg.layer, "customers")
     info = layer_info(cfg.path, layer)
     _located(cfg.path, layer, info, "customers")
@@ -182,23 +201,26 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
     (``geopress check`` needs only where the customers are). ``count(done, total)`` is told
     the features read as they are (see :func:`read_layer`).
     """
-    path = cfg.path
-    layer = resolve_layer(path, cfg.layer, "customers")
-    info = layer_info(path, layer)
     wanted = {"customers.id_field": cfg.id_field}
     wanted.update({f"customers.mail_fields[{i}]": f for i, f in enumerate(cfg.mail_fields)})
     wanted.update({f"customers.letter_fields[{i}]": f for i, f in enumerate(cfg.letter_fields)})
     if cfg.floors_field:
         wanted["customers.floors_field"] = cfg.floors_field
-    check_fields(path, layer, info, wanted)
-    _located(path, layer, info, "customers")
-    crs = _crs(path, layer, info["crs"])
-    if info["features"] == 0:
-        raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
     columns = list(dict.fromkeys([cfg.id_field, *(cfg.mail_fields if mail else ()),
                                   *([cfg.floors_field] if cfg.floors_field else []),
                                   *(cfg.letter_fields if mail else ())]))
-    df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None)
+    if cfg.database is not None:
+        df, wkb, crs, layer, path = _read_database(cfg.database, "customers", wanted, count=count, columns=columns)
+    else:
+        path = cfg.path
+        layer = resolve_layer(path, cfg.layer, "customers")
+        info = layer_info(path, layer)
+        check_fields(path, layer, info, wanted)
+        _located(path, layer, info, "customers")
+        crs = _crs(path, layer, info["crs"])
+        if info["features"] == 0:
+            raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
+        df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
@@ -299,13 +321,16 @@ class Zones:
 def read_zones(cfg: ZonesConfig) -> Zones:
     """Read the zones layer, repair invalid polygons and check the sources; the polygons stay in the
     layer's own CRS, where their edges are straight (the join reprojects the customers instead)."""
-    path = cfg.path
-    layer = resolve_layer(path, cfg.layer, "zones")
-    info = layer_info(path, layer)
-    check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
-    _located(path, layer, info, "zones")
-    crs = _crs(path, layer, info["crs"])
-    df, _ = read_layer(path, layer, [cfg.id_field])
+    if cfg.database is not None:
+        df, _, crs, layer, path = _read_database(cfg.database, "zones", {"zones.id_field": cfg.id_field})
+    else:
+        path = cfg.path
+        layer = resolve_layer(path, cfg.layer, "zones")
+        info = layer_info(path, layer)
+        check_fields(path, layer, info, {"zones.id_field": cfg.id_field})
+        _located(path, layer, info, "zones")
+        crs = _crs(path, layer, info["crs"])
+        df, _ = read_layer(path, layer, [cfg.id_field])
     if len(df) == 0:
         raise InputError(f"layer '{layer}' has no zone polygons", path=path, key="zones.layer")
     ids = df[cfg.id_field]
