@@ -100,6 +100,11 @@ class Status:
         """The customer's boolean column for this finding."""
         return f"finding_{self.name}"
 
+    @property
+    def area_column(self) -> str:
+        """The customer's column naming its target area of this finding (geopress.targets), missing where none."""
+        return f"target_area_{self.name}"
+
 
 _C = OKABE_ITO
 REGISTRY: tuple[Status, ...] = (
@@ -143,6 +148,8 @@ FINDINGS: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.finding is not N
 FLAGGED_LAYERS: dict[str, str] = {s.name: s.finding.layer for s in REGISTRY if s.finding is not None}
 #: finding -> its boolean column of the customers
 FINDING_COLUMNS: dict[str, str] = {name: BY_NAME[name].column for name in FINDINGS}
+#: finding -> the customers' column naming their target area of it
+AREA_COLUMNS: dict[str, str] = {name: BY_NAME[name].area_column for name in FINDINGS}
 #: finding -> (the pressure column that is worst, whether its "max" or "min" is worse)
 WORST: dict[str, tuple[str, str]] = {s.name: (s.finding.worst, s.finding.worse) for s in REGISTRY
                                      if s.finding is not None}
