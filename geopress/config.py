@@ -617,14 +617,17 @@ class _Reader:
     def targets(self, t: dict[str, Any]) -> TargetCriteria:
         s = "targets"
         defaults = TargetCriteria()
-        self.no_unknown(t, s, {"distance_ft", "min_customers"})
+        self.no_unknown(t, s, {"distance_ft", "min_customers", "enabled"})
         distance = self.get(t, s, "distance_ft", "number", defaults.distance_ft)
         if distance <= 0:
             raise self.error("targets.distance_ft", f"must be positive, not {distance:g}")
         count = self.get(t, s, "min_customers", "number", float(defaults.min_customers))
         if count < 1 or count != int(count):
             raise self.error("targets.min_customers", f"must be a whole number of at least 1, not {count:g}")
-        return TargetCriteria(distance_ft=distance, min_customers=int(count))
+        enabled = t.get("enabled", True)
+        if not isinstance(enabled, bool):
+            raise self.error("targets.enabled", f"must be true or false, not {enabled!r}")
+        return TargetCriteria(distance_ft=distance, min_customers=int(count), enabled=enabled)
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"

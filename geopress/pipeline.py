@@ -455,7 +455,8 @@ def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray,
     layer = gpd.GeoDataFrame(areas.table, geometry="geometry", crs=crs)
     if not crs.equals(cust.crs):
         layer = layer.to_crs(cust.crs)
-    info = {"distance_ft": cfg.targets.distance_ft, "min_customers": cfg.targets.min_customers,
+    info = {"enabled": cfg.targets.enabled, "distance_ft": cfg.targets.distance_ft,
+            "min_customers": cfg.targets.min_customers,
             "clustered_in": crs.to_string(), "areas": int(len(layer)),
             "by_finding": {f: int((layer["finding"] == f).sum()) for f in cls.FINDINGS},
             "customers_in_areas": int(layer["customers"].sum())}

@@ -54,11 +54,13 @@ class TargetCriteria:
 
     Defaults: 300 ft, about a city block, so customers along one street or in one subdivision pocket join, while
     a neighbourhood across a valley stays apart; 10 customers, below which individual PRVs or service boosters
-    are usually cheaper than a zone-level PRV station or booster (both common practice, no source).
+    are usually cheaper than a zone-level PRV station or booster (both common practice, no source). ``enabled``
+    false skips them (they cost most where most customers are flagged: see scripts/README.md).
     """
 
     distance_ft: float = 300.0
     min_customers: int = 10
+    enabled: bool = True
 
 
 @dataclass(frozen=True)
@@ -111,7 +113,9 @@ def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distanc
     if x_ft.size == 0:
         return np.zeros(0, dtype=np.intp)
     # a ball tree: 0.9 s for 100,000 points with about 110 neighbours each, against 2.1 s with the k-d tree that
-    # "auto" picks (measured on 2 cores, scikit-learn 1.9)
+    # "auto" picks (measured on 2 cores, scikit-learn 1.9). Giving DBSCAN the Delaunay triangulation's short
+    # edges as a sparse graph instead (the same clusters, 3 neighbours a point) was slower at these densities:
+    # 12 s against 7.8 s for 200,000 points on a loaded machine, most of it in qhull.
     return DBSCAN(eps=distance_ft, min_samples=1, algorithm="ball_tree").fit_predict(
         np.column_stack([x_ft, y_ft])).astype(np.intp)
 
@@ -145,6 +149,8 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     for finding in FINDINGS:
         member = np.full(x.size, -1, dtype=np.intp)
         members[finding] = member
+        if not targets.enabled:
+            continue
         worst_col, worse = WORST[finding]
         served = top_ft if finding == "low_upper_floors" else ground_ft
         for z, zname in enumerate(zone_names):

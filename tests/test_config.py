@@ -121,7 +121,10 @@ def test_targets_table_is_optional_with_its_defaults(tmp_path):
     cfg = load_config(write(tmp_path, BASE_CONFIG + "\n[targets]\ndistance_ft = 150\nmin_customers = 4\n"))
     assert cfg.targets == TargetCriteria(distance_ft=150.0, min_customers=4)
     assert isinstance(cfg.targets.min_customers, int) and cfg.to_dict()["targets"] == {"distance_ft": 150.0,
-                                                                                        "min_customers": 4}
+                                                                                        "min_customers": 4,
+                                                                                        "enabled": True}
+    off = load_config(write(tmp_path, BASE_CONFIG + "\n[targets]\nenabled = false\n")).targets
+    assert off == TargetCriteria(enabled=False)
 
 
 @pytest.mark.parametrize("line, key, says", [
@@ -130,7 +133,8 @@ def test_targets_table_is_optional_with_its_defaults(tmp_path):
     ('distance_ft = "300 ft"', "targets.distance_ft", "must be a finite number"),
     ("min_customers = 0", "targets.min_customers", "at least 1"),
     ("min_customers = 2.5", "targets.min_customers", "whole number"),
-    ("distance_m = 90", "targets.distance_m", "allowed keys are distance_ft, min_customers"),
+    ("distance_m = 90", "targets.distance_m", "allowed keys are distance_ft, enabled, min_customers"),
+    ('enabled = "no"', "targets.enabled", "true or false"),
 ])
 def test_bad_targets_name_their_key_and_line(tmp_path, line, key, says):
     text = BASE_CONFIG + f"\n[targets]\n{line}\n"

@@ -522,7 +522,7 @@ def test_target_area_of_the_two_high_customers(crafted):
     high = read_csv(root / "out/mailing/high_pressure.csv")
     assert [(r["accounts"], r["target_area"]) for r in high] == [("A-high; A-high-2", "T2")]
     info = json.loads((root / "out/run.json").read_text())
-    assert info["target_areas"] == {"distance_ft": 700.0, "min_customers": 2, "clustered_in": res.customers.crs.to_string(),
+    assert info["target_areas"] == {"enabled": True, "distance_ft": 700.0, "min_customers": 2, "clustered_in": res.customers.crs.to_string(),
                                     "areas": 2, "by_finding": {"above_hgl": 1, "low": 0, "high": 1,
                                                                "low_upper_floors": 0}, "customers_in_areas": 5}
     html = (root / "out/report.html").read_text(encoding="utf-8")

@@ -111,6 +111,16 @@ def test_polygon_is_the_hull_buffered_by_half_the_distance_and_small_clusters_ar
     assert poly.area == pytest.approx(10_000 + 20_000 + np.pi * 2_500, rel=2e-3)  # shapely's 8 segments per quarter
 
 
+def test_no_areas_when_they_are_off():
+    x = np.arange(5.0, 96.0, 10.0)
+    got = target_areas(x=x, y=np.zeros_like(x), ft_per_unit=1.0, zone=np.zeros(x.size, np.intp), zone_names=["Z"],
+                       zone_low_hgl_ft=np.array([1e6]), ground_ft=x, top_ft=x,
+                       pressures={c: x for c in ("psi_min", "psi_max", "psi_top")},
+                       found={f: np.full(x.size, f == "high") for f in FINDINGS}, ok=np.zeros(x.size, bool),
+                       address=np.arange(x.size), criteria=EXAMPLE, targets=TargetCriteria(enabled=False))
+    assert got.table.empty and all(m.isna().all() for m in got.member.values())
+
+
 def test_areas_per_zone_and_finding_and_distinct_addresses():
     x = np.arange(0.0, 60.0, 10.0)
     got = areas(x, np.zeros(6), np.full(6, 50.0), zone=[0, 0, 0, 1, 1, 1], address=[7, 7, 8, 9, 9, 9],
@@ -141,3 +151,4 @@ def test_every_customer_is_within_the_window_across_the_range(ground, lo, span):
     assert exact.hgl_ft_from - 1e-7 <= row["hgl_ft_from"] <= row["hgl_ft_to"] <= exact.hgl_ft_to + 1e-7
     if exact.hgl_ft_to - exact.hgl_ft_from >= 0.2:
         assert row["hgl_ft_from"] - exact.hgl_ft_from < 0.1 and exact.hgl_ft_to - row["hgl_ft_to"] < 0.1
+
