@@ -62,8 +62,8 @@ def test_interactive_map_works_offline_and_a_click_shows_the_customer(world, bro
     browser.open(report.resolve().as_uri())  # the network emulated offline, and no host name resolves
     browser.wait_for('document.getElementById("imap").getAttribute("data-ready") === "1"')
     state = browser.evaluate(STATE)
-    # the overview, and per zone (two) a map and a histogram
-    assert len(state["images"]) == 5 and all(i["ok"] for i in state["images"]), state["images"]
+    # the overview, the target areas' map, and per zone (two) a map and a histogram
+    assert len(state["images"]) == 6 and all(i["ok"] for i in state["images"]), state["images"]
     assert state["zoneRows"] == 2
     assert state["webgl"] and state["points"] == len(result.customers)  # 20 customers: every one drawn
     # nothing was fetched but the file itself and its data: URIs
@@ -117,7 +117,7 @@ def test_report_is_self_contained_and_says_what_it_is(world):
     spec = json.loads(re.search(r'<script type="application/json" id="imap-spec">(.*?)</script>', html, re.S).group(1))
     images = [i["source"] for i in spec["layout"]["images"]]
     assert images and all(i.startswith("data:image/png;base64,") for i in images)  # the map's hillshade too
-    assert outside_scripts.count('src="data:image/png;base64,') == 5
+    assert outside_scripts.count('src="data:image/png;base64,') == 6  # as above, with the target areas' map
     assert "static screening estimate" in html and "licensed engineering practice" in html
     assert "Changes since the last run" not in html  # a first run has no earlier run to compare with
     for status in ("ok", "high", "low"):
@@ -148,12 +148,13 @@ def test_changes_section_and_si_units():
     info = {"geopress_version": "x", "counts": {"ok": 2}, "config": {"zones": {"source": []}},
             "changes": {"baseline": "/runs/2026-01-01/pressure.gpkg",
                         "counts": {"unchanged": 1, "newly_flagged": 1, "cleared": 0},
-                        "newly_in_status": {"high": 1, "low": 0}}}
+                        "newly_in_status": {"high": 1, "low": 0}, "newly_in_finding": {"high": 1, "low": 0}}}
     pressures = {"Z": (np.array([40.0, 50.0]), np.array([60.0, 70.0]))}
     html = render(info=info, summary=_summary(), bands=None, maps=[], pressures=pressures, criteria=Criteria(),
                   units=SI)
     assert "Changes since the last run" in html and "/runs/2026-01-01/pressure.gpkg" in html
     assert "<td>newly_flagged</td><td class=\"num\">1</td>" in html
+    assert "<code>new_high_pressure</code></td><td class=\"num\">1</td>" in html  # the new list per finding
     # 1150 ft * 0.3048 = 350.52 m; 80 psi * 6.894757 = 551.6 kPa (NIST SP 811 factor, secondary)
     assert "high water 350.5 to 353.6 m" in html
     assert "551.6 kPa" in html

@@ -93,21 +93,39 @@ def test_every_status_has_a_rule_in_the_reports_colour_and_marker():
     assert len(drawn) == len(STATUSES) - 1
 
 
-def test_a_flagged_layer_has_only_its_status():
-    for status, layer in FLAGGED_LAYERS.items():
-        assert list(rules_by_status(parse(styles.status_style(layer, [status]).sld))) == [status]
+def test_a_findings_layer_draws_every_customer_in_its_findings_style():
+    # a finding's layer holds customers whose status may be another finding (a tall building on the
+    # upper-floors list is high first): one rule, no filter, in the finding's colour and marker
+    for finding, layer in FLAGGED_LAYERS.items():
+        doc = parse(styles.layer_styles([layer])[layer].sld)
+        rules = doc.findall(".//sld:Rule", NS)
+        assert len(rules) == 1 and rules[0].find("ogc:Filter", NS) is None
+        assert rules[0].findtext("sld:Name", namespaces=NS) == finding
+        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STATUS_STYLE[finding].colour
+
+
+def css_by_value(doc, field: str, symbol: str) -> dict[str, dict[str, str]]:
+    """Each rule's ``symbol`` CSS parameters by the value its filter asks ``field`` to equal."""
+    got = {}
+    for rule in doc.iterfind(".//sld:Rule", NS):
+        eq = rule.find("ogc:Filter/ogc:PropertyIsEqualTo", NS)
+        assert eq.findtext("ogc:PropertyName", namespaces=NS) == field
+        got[eq.findtext("ogc:Literal", namespaces=NS)] = css(rule.find(symbol, NS))
+    return got
+
+
+def test_target_areas_are_filled_in_their_findings_colour():
+    got = css_by_value(parse(styles.area_style().sld), "finding", "sld:PolygonSymbolizer/sld:Fill")
+    assert list(got) == list(FLAGGED_LAYERS)
+    for finding, fill in got.items():
+        assert fill["fill"] == STATUS_STYLE[finding].colour and 0 < float(fill["fill-opacity"]) < 1
 
 
 def test_band_and_limit_styles_use_the_reports_colours():
     band = parse(styles.band_style().sld)
     fill = css(band.find(".//sld:PolygonSymbolizer/sld:Fill", NS))
     assert fill["fill"] == BAND_COLOUR and 0 < float(fill["fill-opacity"]) < 1
-    limits = parse(styles.limit_style().sld)
-    got = {}
-    for rule in limits.iterfind(".//sld:Rule", NS):
-        eq = rule.find("ogc:Filter/ogc:PropertyIsEqualTo", NS)
-        assert eq.findtext("ogc:PropertyName", namespaces=NS) == "limit"
-        got[eq.findtext("ogc:Literal", namespaces=NS)] = css(rule.find("sld:LineSymbolizer/sld:Stroke", NS))
+    got = css_by_value(parse(styles.limit_style().sld), "limit", "sld:LineSymbolizer/sld:Stroke")
     assert set(got) == set(LIMIT_STYLE)
     for limit, (colour, dashes, _) in LIMIT_STYLE.items():
         assert got[limit]["stroke"] == colour
@@ -124,7 +142,7 @@ def test_sld_files_beside_the_geopackage_and_in_its_layer_styles(styled_run):
     out = styled_run.out
     layers = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert "layer_styles" in layers
-    styled = ["customers", *FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
+    styled = ["customers", *FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes", "target_areas"]
     for layer in styled:
         text = (out.parent / f"pressure.{layer}.sld").read_text(encoding="utf-8")
         parse(text)
