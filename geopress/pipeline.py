@@ -513,8 +513,8 @@ def later_layers(result: Result) -> dict[str, write_io.Layer]:
 
 
 #: every layer a run can publish into a database (a run drops those of an earlier run it does not publish)
-PUBLISHED_LAYERS = ("customers", *cls.FLAGGED_LAYERS.values(), "changes", "zone_summary", "service_band",
-                    "band_limits", "removed_customers")
+PUBLISHED_LAYERS = ("customers", *cls.FLAGGED_LAYERS.values(), "changes", "zone_summary", "target_areas",
+                    "service_band", "band_limits", "removed_customers")
 
 
 def database_layers(result: Result) -> dict[str, postgis_io.Table | postgis_io.View]:
@@ -528,7 +528,9 @@ def database_layers(result: Result) -> dict[str, postgis_io.Table | postgis_io.V
             layers[name] = postgis_io.geo_table(result.customers, wkb=result.wkb, kind="Point",
                                                 key=result.config.customers.id_field, indexes=("status",))
     for name, layer in later_layers(result).items():
-        if isinstance(layer, gpd.GeoDataFrame):
+        if isinstance(layer, write_io.Polygons):
+            layers[name] = postgis_io.geo_table(layer.frame, kind="Geometry")
+        elif isinstance(layer, gpd.GeoDataFrame):
             layers[name] = postgis_io.geo_table(layer, kind="Point" if name == "removed_customers" else "Geometry")
         else:
             layers[name] = postgis_io.plain_table(layer)

@@ -117,7 +117,10 @@ def qualified(name: str) -> str:
     return ".".join(quote(part) for part in name.split(".", 1))
 
 
-def _literal(value: str) -> str:
+def _literal(value: str | bool) -> str:
+    """An SQL literal: text quoted, a boolean (a finding's column) as TRUE or FALSE."""
+    if isinstance(value, bool):
+        return "TRUE" if value else "FALSE"
     return "'" + value.replace("'", "''") + "'"
 
 
@@ -308,7 +311,7 @@ class View:
 
     of: str
     column: str
-    values: tuple[str, ...]
+    values: tuple[str | bool, ...]
 
 
 def srid_of(crs: Any) -> int:
