@@ -26,8 +26,10 @@ import pyarrow as pa
 import pyogrio
 import pyproj
 import rasterio
+import shapely
 
 from . import classify as cls
+from . import fieldcheck
 from . import guards
 from . import planning
 from . import runner
@@ -84,6 +86,9 @@ class Result:
     plan: planning.Plan | None = None
     #: the customers' geometries as the file's WKB when they are the file's own points (for the writer), else None
     wkb: pa.ChunkedArray | None = None
+    #: the field readings checked against the screening and their per-zone table (None without [readings])
+    field_check: gpd.GeoDataFrame | None = None
+    field_check_by_zone: pd.DataFrame | None = None
     # set by geopress.nightly.track: the baseline's customers this run lacks, and the new_* mailing lists
     removed: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
@@ -379,6 +384,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
     with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
+    readings = by_zone = None
+    if cfg.readings is not None:  # read after the customers' results: they never depend on the readings
+        with clock.step("check field readings"):
+            readings, by_zone = field_check(cfg, zones, shift)
     info = {
         "geopress_version": __version__,
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
@@ -399,9 +408,87 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   "overlaps": overlap_info},
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
+        "terrain_accuracy": terrain_accuracy(cfg),
     }
+    if readings is not None:
+        info["field_check"] = field_check_info(cfg, readings, by_zone)
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan, wkb=cust.wkb)
+                  plan=plan, wkb=cust.wkb, field_check=readings, field_check_by_zone=by_zone)
+
+
+def terrain_accuracy(cfg: Config) -> dict[str, Any]:
+    """The DEM accuracy a run assumes, for run.json and the report: each raster's vertical RMSE, ft, or that the
+    config states none (then the DEM adds nothing to any uncertainty)."""
+    t = cfg.terrain
+    if t.vertical_rmse_ft is None:
+        return {"stated": False, "note": "terrain.vertical_rmse_ft not set: uncertainties leave the DEM out"}
+    return {"stated": True, "vertical_rmse_ft": {str(p): r for p, r in zip(t.paths, t.vertical_rmse_ft)}}
+
+
+def field_check(cfg: Config, zones: vector_io.Zones,
+                shift: datum_io.DatumShift) -> tuple[gpd.GeoDataFrame, pd.DataFrame]:
+    """The field readings of ``cfg.readings`` against the screening: each reading's zone and ground (the
+    customers' zone join, tie rule and terrain sampling), prediction, residual and check, and the per-zone table
+    (:mod:`geopress.fieldcheck`)."""
+    rc = cfg.readings
+    k = cfg.criteria.psi_per_ft
+    r = vector_io.read_readings(rc)
+    zi = assign_xy(r.x, r.y, r.crs, zones.polygons, zones.crs, zones.priority)
+    zoned = zi >= 0
+    safe = np.where(zoned, zi, 0)
+    source = {s.zone: s for s in cfg.zones.sources}
+
+    def per_zone(value: Callable[[Any], float]) -> np.ndarray:
+        table = np.array([value(source[z]) for z in zones.zone_ids] or [np.nan])
+        return np.where(zoned, table[safe], np.nan)
+
+    high = per_zone(lambda s: s.hgl_range(k)[0])
+    low = per_zone(lambda s: s.hgl_range(k)[1])
+    recorded = ~np.isnan(r.hgl_ft)
+    hgl_high, hgl_low = np.where(recorded, r.hgl_ft, high), np.where(recorded, r.hgl_ft, low)
+    terrain = raster_io.sample_terrain(cfg.terrain, r.x, r.y, r.crs, shift)
+    height = np.where(np.isnan(r.gauge_height_ft), rc.gauge_height_ft, r.gauge_height_ft)
+    default = (np.full(r.x.shape, rc.gauge_accuracy_psi) if rc.gauge_accuracy_psi is not None
+               else fieldcheck.grade_accuracy_psi(rc.gauge_grade, rc.gauge_span_psi, r.measured_psi))
+    gauge = np.where(np.isnan(r.accuracy_psi), default, r.accuracy_psi)
+    rmse = np.nan_to_num(terrain.rmse_ft, nan=0.0)  # a DEM of unstated accuracy adds nothing (run.json says so)
+    hgl_unc = np.nan_to_num(per_zone(lambda s: s.hgl_uncertainty_ft), nan=0.0)
+    rules = fieldcheck.Rules(outlier_psi=rc.outlier_psi, outlier_sigmas=rc.outlier_sigmas, bias_psi=rc.bias_psi,
+                             min_readings=rc.min_readings)
+    checked = fieldcheck.check_readings(
+        measured_psi=r.measured_psi, has_geometry=r.has_geometry, zoned=zoned, ground_ft=terrain.ground_ft,
+        gauge_height_ft=height, hgl_low_ft=hgl_low, hgl_high_ft=hgl_high, gauge_psi=gauge, dem_rmse_ft=rmse,
+        hgl_uncertainty_ft=hgl_unc, psi_per_ft=k, rules=rules)
+    zone = cls.names_at(zones.zone_ids, zi, zoned)
+    data = {
+        "reading": pd.array(r.ids, dtype="str"), "taken": r.taken, "zone": zone, "ground_ft": terrain.ground_ft,
+        "gauge_height_ft": height, "measured_psi": r.measured_psi, "hgl_recorded_ft": r.hgl_ft,
+        "hgl_low_ft": hgl_low, "hgl_high_ft": hgl_high, **{c: checked[c].to_numpy() for c in checked.columns
+                                                           if c != "check"},
+        "gauge_accuracy_psi": gauge, "dem_rmse_ft": rmse, "hgl_uncertainty_ft": hgl_unc, "check": checked["check"].array,
+    }
+    points = np.full(r.x.shape, None, dtype=object)
+    points[r.has_geometry] = shapely.points(r.x[r.has_geometry], r.y[r.has_geometry])
+    frame = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(points, crs=r.crs))
+    by_zone = fieldcheck.zone_table(zone=zone, checks=checked["check"].to_numpy(dtype=object),
+                                    residual_psi=checked["residual_psi"], sigma_psi=checked["sigma_psi"], x=r.x, y=r.y,
+                                    ids=r.ids, sources=cfg.zones.sources, psi_per_ft=k, rules=rules)
+    return frame, by_zone
+
+
+def field_check_info(cfg: Config, readings: pd.DataFrame, by_zone: pd.DataFrame) -> dict[str, Any]:
+    """What run.json records of the field check: counts per check, and per zone the bias and the outliers."""
+    counts = readings["check"].value_counts()
+    return {
+        "path": str(cfg.readings.path),
+        "readings": int(len(readings)),
+        "checks": {c: int(counts.get(c, 0)) for c in fieldcheck.CHECKS},
+        "zones_with_bias": by_zone.loc[by_zone["significant_bias"], "zone"].tolist(),
+        "by_zone": [{"zone": row["zone"], "readings": int(row["readings"]), "bias_psi": _r(row["bias_psi"]),
+                     "bias_ft": _r(row["bias_ft"]), "outliers": int(row["outliers"]),
+                     "significant_bias": bool(row["significant_bias"]), "pattern": row["pattern"]}
+                    for row in by_zone.to_dict("records")],
+    }
 
 
 def _ground_row(zg: guards.ZoneGround, psi_per_ft: float) -> dict[str, Any]:
@@ -442,6 +529,9 @@ def later_layers(result: Result) -> dict[str, write_io.Layer]:
         layers["band_limits"] = result.plan.limits
     if result.removed is not None:
         layers["removed_customers"] = result.removed
+    if result.field_check is not None:
+        layers["field_check"] = result.field_check
+        layers["field_check_by_zone"] = result.field_check_by_zone
     return layers
 
 
