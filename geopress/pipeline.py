@@ -668,7 +668,8 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     path = report_path(cfg)
     info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
     info["outputs"].append(str(path))
-    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info)
+    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info, result.field_check,
+                                result.field_check_by_zone)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 

@@ -238,7 +238,8 @@ def _xy(geom: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
 
 
 def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
-                info: dict[str, Any]) -> str:
+                info: dict[str, Any], readings: gpd.GeoDataFrame | None = None,
+                readings_by_zone: pd.DataFrame | None = None) -> str:
     """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`).
 
     Each zone map is drawn in the CRS of its zone's first raster; the maps of
@@ -310,5 +311,15 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         psi_max=psi_max[pick], status=status_names[status_code[pick]], reason=picked("reason"), counts=counts,
     )
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
+    field = None
+    if readings is not None:
+        from . import report_field
+
+        located = readings.geometry.notna().to_numpy()
+        rx, ry = _xy(readings.geometry.to_numpy()[located], readings.crs, crs)
+        fmap = report_field.FieldMap(terrain=background, frame=frame, outlines=outlines, x=rx, y=ry,
+                                     residual_psi=readings["residual_psi"].to_numpy(dtype=np.float64)[located],
+                                     check=readings["check"].to_numpy(dtype=object)[located])
+        field = report_field.section(readings, readings_by_zone, fmap, info.get("field_check", {}), units)
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
-                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive)
+                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive, field=field)

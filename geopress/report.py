@@ -805,14 +805,15 @@ def _plain(value: Any) -> Any:
 def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFrame | None, maps: Sequence[ZoneMap],
            pressures: Mapping[str, tuple[np.ndarray, np.ndarray]], criteria: Criteria, units: Units,
            overview: OverviewMap | None = None, interactive: InteractiveMap | None = None,
-           title: str = "geopress static pressure screening") -> str:
+           field: Mapping[str, Any] | None = None, title: str = "geopress static pressure screening") -> str:
     """The report page as HTML text.
 
     ``pressures`` maps zone -> (psi_min, psi_max) arrays in psi; ``maps``
     holds one :class:`ZoneMap` per zone that has terrain; ``overview`` and
     ``interactive`` are the maps of all zones (each left out when None);
     ``info`` is what run.json records (its ``changes`` section is shown when
-    there was an earlier run to compare with).
+    there was an earlier run to compare with). ``field`` is the field-check
+    section (:func:`geopress.report_field.section`), left out when None.
     """
     env = jinja2.Environment(loader=jinja2.PackageLoader("geopress", "templates"),
                              autoescape=jinja2.select_autoescape(["html", "j2"]), undefined=jinja2.StrictUndefined)
@@ -847,5 +848,5 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         criteria=crit, units=units, cautions=CAUTIONS, changes=_plain(changes) if (changes := info.get("changes")) and changes.get("baseline") else None,
         status_style=STATUS_STYLE, overrides=info.get("overrides") or {},
         overview=overview_map(overview, units) if overview is not None else None, imap=imap,
-        sources=source_rows(sources, summary, units),
+        sources=source_rows(sources, summary, units), field=field,
     )

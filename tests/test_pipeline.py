@@ -645,6 +645,20 @@ def test_cli_demo(tmp_path, invoke):
     assert res.exit_code == 0, res.stderr
     assert (tmp_path / "demo" / "pressure.gpkg").exists()
     assert "customers:" in res.stdout
+    # the demo's invented readings (scripts/make_demo.py): Lowfield's are all 4 ft of head high, and two Ridgeway
+    # call-outs read about 20 psi low close together
+    by_zone = pyogrio.read_dataframe(tmp_path / "demo" / "pressure.gpkg", layer="field_check_by_zone").set_index("zone")
+    # 12 readings with 0.3 psi of noise (0.7 ft): their median is within 0.5 ft of the offset
+    assert by_zone.loc["Lowfield", "bias_ft"] == pytest.approx(4.0, abs=0.5)
+    assert by_zone.loc["Lowfield", "significant_bias"] and by_zone.loc["Lowfield", "pattern"] == "steady"
+    assert not by_zone.loc["Ridgeway", "significant_bias"] and by_zone.loc["Ridgeway", "pattern"] == "cluster"
+    assert not by_zone.loc["Summit", "significant_bias"] and by_zone.loc["Summit", "outliers"] == 0
+    readings = pyogrio.read_dataframe(tmp_path / "demo" / "pressure.gpkg", layer="field_check")
+    assert sorted(readings.loc[readings["check"] == "outlier", "reading"]) == ["CALL-135", "CALL-136"]
+    html = (tmp_path / "demo" / "report.html").read_text()
+    section = html[html.index('id="field-check"'):html.index('id="inputs"')]
+    assert "significant bias" in section and "closed valve" in section and "CALL-135" in section
+    assert section.count("data:image/png") == 2  # residual against ground, and the map of residuals
 
 
 # ---------------------------------------------------------------- input problems

@@ -353,7 +353,7 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, s
         ft[got] += offsets
         ground[todo] = ft
         result.rmse_ft[todo[got]] = max(cfg.rmse_of(t.path) for t in group.tiles)
-        log.info("sampled %d customers from %s", got.size, group.label())
+        log.info("sampled %d points from %s", got.size, group.label())
     result.inside_any = int(inside_any.sum())
     if count is not None:
         count(total, total)
