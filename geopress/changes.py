@@ -156,14 +156,14 @@ def newly_in_status(table: pd.DataFrame) -> dict[str, np.ndarray]:
 
 def new_mailing_lists(
     customers: pd.DataFrame, table: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
-    full: Mapping[str, pd.DataFrame] | None = None, letter_fields: Sequence[str] = (),
+    full: Mapping[str, pd.DataFrame] | None = None, letter_fields: Sequence[str] = (), firm_only: bool = False,
 ) -> dict[str, pd.DataFrame]:
     """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the newly-in-status customers.
 
     ``full`` may hold the run's own lists by name (``high_pressure`` ...),
     as :func:`geopress.tables.mailing_lists` makes them from ``customers``
     with the same fields (``letter_fields`` as there): a status whose every customer is newly in it (a
-    first run) then takes a copy of its list instead of building it again.
+    first run) then takes a copy of its list instead of building it again. ``firm_only`` as there.
     """
     out = {}
     status_col = customers["status"]
@@ -173,7 +173,7 @@ def new_mailing_lists(
             out[f"new_{name}"] = full[name].copy()
             continue
         out[f"new_{name}"] = mailing_list(customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields,
-                                          letter_fields=letter_fields)
+                                          letter_fields=letter_fields, firm_only=firm_only)
     return out
 
 

@@ -156,6 +156,9 @@ class OutputConfig:
     dropped by more than this share of the baseline's is refused (an export
     cut short). ``child_timeout_s``: the longest a run waits for its child
     process's job (the service band, writing the GeoPackage).
+    ``mail_firm_only``: the mailing lists hold only the firm flags
+    (:mod:`geopress.confidence`); the borderline ones are on the
+    field-verification list only.
     """
 
     path: Path
@@ -165,6 +168,7 @@ class OutputConfig:
     xlsx: bool = True
     max_drop_percent: float = 20.0
     child_timeout_s: float = 3600.0
+    mail_firm_only: bool = False
 
 
 @dataclass(frozen=True)
@@ -739,7 +743,8 @@ class _Reader:
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
-        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s"})
+        self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s",
+                               "mail_firm_only"})
         path = self.path(self.get(t, s, "path", "str"), "output.path")
         if path.suffix.lower() != ".gpkg":
             raise self.error("output.path", f"must end in .gpkg, not {path.name!r}")
@@ -747,8 +752,8 @@ class _Reader:
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
         flags = {}
-        for name in ("report", "xlsx"):
-            flags[name] = t.get(name, True)
+        for name, default in (("report", True), ("xlsx", True), ("mail_firm_only", False)):
+            flags[name] = t.get(name, default)
             if not isinstance(flags[name], bool):
                 raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")
         drop = self.get(t, s, "max_drop_percent", "number", 20.0)

@@ -29,6 +29,7 @@ import rasterio
 import shapely
 
 from . import classify as cls
+from . import confidence
 from . import fieldcheck
 from . import guards
 from . import planning
@@ -331,6 +332,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         safe = np.where(zoned, zi, 0)
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
+        unc = {s.zone: s.hgl_uncertainty_ft for s in cfg.zones.sources}
+        hgl_unc = np.where(zoned, np.array([unc[z] for z in zones.zone_ids] or [0.0])[safe], np.nan)
     with clock.step("sample terrain"):
         terrain = joined.terrain if joined else raster_io.sample_terrain(
             cfg.terrain, cust.x, cust.y, cust.crs, shift, count=clock.counter("sample terrain", "customers"))
@@ -354,6 +357,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                              psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
                              psi_top=p.psi_top, floors=floors, criteria=crit)
+        margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+        sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
         frame = cust.frame
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
@@ -368,6 +373,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "psi_top": p.psi_top,
             "status": cls.status_names(codes),
             "reason": reason,
+            "margin_psi": margin,
+            "sigma_psi": sigma,
+            "confidence": confidence.classes(codes, margin, sigma),
         }
         for c in extra:
             data[c] = _values(frame[c])
@@ -378,9 +386,14 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
+        shown = customers_in_units(customers, units)
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
-            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields,
-            letter_fields=cfg.customers.letter_fields).items()}
+            shown, id_field=id_field, mail_fields=cfg.customers.mail_fields,
+            letter_fields=cfg.customers.letter_fields, firm_only=cfg.output.mail_firm_only).items()}
+        mailing[confidence.VERIFICATION_LIST] = mailing_columns_in_units(confidence.verification_list(
+            shown, id_field=id_field, fields=[*cfg.customers.mail_fields, *cfg.customers.letter_fields]), units)
+        summary = summary.merge(confidence.zone_counts(customers["zone"], customers["confidence"],
+                                                       [s.zone for s in cfg.zones.sources]), on="zone", how="left")
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
     with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
@@ -409,6 +422,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
         "terrain_accuracy": terrain_accuracy(cfg),
+        "confidence": {"counts": {c: int((customers["confidence"] == c).sum()) for c in confidence.CLASSES},
+                       "mail_firm_only": cfg.output.mail_firm_only},
     }
     if readings is not None:
         info["field_check"] = field_check_info(cfg, readings, by_zone)
@@ -642,7 +657,8 @@ def style_path(config: Config, layer: str) -> Path:
 def output_targets(config: Config) -> list[Path]:
     """Every file a run of ``config`` can write."""
     out = config.output
-    names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
+    names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()],
+             confidence.VERIFICATION_LIST]
     lists = [out.mailing_dir / f"{n}{suffix}" for n in names for suffix in (".csv", ".xlsx")]
     styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
     return [out.path, nightly.baseline_link(out.path), *lists, *[style_path(config, layer) for layer in styled],

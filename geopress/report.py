@@ -754,6 +754,8 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "high": str(int(r.get("n_high", 0))), "low": str(int(r.get("n_low", 0))),
             "above_hgl": str(int(r.get("n_above_hgl", 0))), "upper": str(int(r.get("n_low_upper_floors", 0))),
             "flagged": str(flagged), "best": best,
+            "firm": str(int(r.get("n_firm", 0))), "borderline": str(int(r.get("n_borderline", 0))),
+            "near_limit": str(int(r.get("n_near_limit", 0))), "unrated": str(int(r.get("n_unrated", 0))),
             "flagged_at_best": _fmt(r.get("flagged_at_best"), 0) if "flagged_at_best" in r else "–",
             "band": band,
         })
@@ -791,6 +793,20 @@ def source_rows(sources: Sequence[Mapping[str, Any]], summary: pd.DataFrame, uni
                                           f"{_fmt(float(units.length_from_ft(h['hgl_high_ft'])))} {units.length}"),
         })
     return rows
+
+
+def dem_accuracy_text(accuracy: Mapping[str, Any], criteria: Criteria, units: Units) -> str:
+    """The DEM accuracy a run assumed (run.json's ``terrain_accuracy``), with what it means in pressure."""
+    if not accuracy.get("stated"):
+        return ("not stated (terrain.vertical_rmse_ft): the flags' confidence is unrated and the field check's "
+                "sigmas leave the DEM out")
+    parts = []
+    for path, rmse_ft in accuracy["vertical_rmse_ft"].items():
+        length = float(units.length_from_ft(rmse_ft))
+        psi = float(units.pressure_from_psi(criteria.psi_per_ft * rmse_ft))
+        parts.append(f"{path.rsplit('/', 1)[-1]}: vertical RMSE {length:.2f} {units.length} "
+                     f"({psi:.2f} {units.pressure} at one standard deviation)")
+    return "; ".join(parts) + "; a flag is firm when its margin exceeds 1.96 of these (ASPRS 95 % convention)"
 
 
 def _plain(value: Any) -> Any:
@@ -839,6 +855,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         "story height": f"{float(units.length_from_ft(criteria.floor_height_ft)):.4g} {units.length}",
     }
     sources = ((info.get("config") or {}).get("zones") or {}).get("source") or []
+    crit["DEM accuracy assumed"] = dem_accuracy_text(info.get("terrain_accuracy") or {}, criteria, units)
     imap = None
     if interactive is not None:
         imap = {"spec": _json_for_script(interactive_figure(interactive, units)), "note": interactive_note(interactive),

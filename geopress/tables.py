@@ -28,6 +28,8 @@ WORST: dict[str, tuple[str, str]] = {
     "low_upper_floors": ("psi_top", "min"),
 }
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
+#: the confidence classes a flagged customer can have, surest first (see geopress.confidence)
+ADDRESS_CLASSES = ("firm", "borderline", "unrated")
 
 
 def neutralise(value: object) -> object:
@@ -108,7 +110,7 @@ def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 
 def mailing_list(
     customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str],
-    letter_fields: Sequence[str] = (),
+    letter_fields: Sequence[str] = (), firm_only: bool = False,
 ) -> pd.DataFrame:
     """One row per distinct mailing address among customers with ``status``.
 
@@ -120,15 +122,26 @@ def mailing_list(
     then by first account (then by first appearance of the address). Without
     mail fields, one row per customer. Text is as in ``customers``: see
     :func:`neutralise_frame` for a CSV.
+
+    When ``customers`` has the columns of :mod:`geopress.confidence`, each
+    row has ``margin_psi`` (its accounts' largest: that of the most severe)
+    and ``confidence`` ("firm" when any account's flag is firm, else that of
+    its most severe account); ``firm_only`` keeps only the firm accounts.
     """
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
-    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi"]
-    rows = np.flatnonzero((customers["status"] == status).to_numpy(dtype=bool))
+    rated = "confidence" in customers.columns
+    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi",
+            *(["margin_psi", "confidence"] if rated else [])]
+    selected = customers["status"] == status
+    if firm_only:
+        selected = selected & (customers["confidence"] == "firm")
+    rows = np.flatnonzero(selected.to_numpy(dtype=bool))
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
-    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col]))].iloc[rows]
+    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col,
+                                        *(["margin_psi", "confidence"] if rated else [])]))].iloc[rows]
     n = len(sub)
     # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
     ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
@@ -171,15 +184,28 @@ def mailing_list(
     out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
     out["zones"] = pd.array(zones.take(out_order), dtype="str")
     out["worst_psi"] = worst[out_order]
+    if rated:
+        margin = pd.Series(sub["margin_psi"].to_numpy(dtype=np.float64)).groupby(group, sort=False).max()
+        best = np.full(n_groups, np.nan)
+        best[margin.index.to_numpy()] = margin.to_numpy().round(2)
+        # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
+        rank = pd.Series(pd.Categorical(sub["confidence"], categories=ADDRESS_CLASSES).codes).replace(-1, 99)
+        surest = rank.groupby(group, sort=False).min()
+        code = np.full(n_groups, 99)
+        code[surest.index.to_numpy()] = surest.to_numpy()
+        names = np.array([*ADDRESS_CLASSES, None], dtype=object)
+        out["margin_psi"] = best[out_order]
+        out["confidence"] = pd.array(names[np.minimum(code, len(ADDRESS_CLASSES))][out_order], dtype="str")
     return out[cols]
 
 
 def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
-                  letter_fields: Sequence[str] = ()) -> dict[str, pd.DataFrame]:
-    """Every flagged status's mailing list, keyed by output name (``high_pressure`` ...)."""
+                  letter_fields: Sequence[str] = (), firm_only: bool = False) -> dict[str, pd.DataFrame]:
+    """Every flagged status's mailing list, keyed by output name (``high_pressure`` ...); ``firm_only`` as in
+    :func:`mailing_list`."""
     return {
         FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields,
-                                             letter_fields=letter_fields)
+                                             letter_fields=letter_fields, firm_only=firm_only)
         for status in FLAGGED_LAYERS
     }
 
