@@ -1,7 +1,8 @@
 """How sure each status is: the margin from the threshold that set it, its uncertainty, a confidence class. Pure.
 
 ``margin_psi`` is how far the deciding pressure lies from the threshold that
-set the status, positive inside the flagged side:
+set the status, positive inside the flagged side; each finding's deciding
+column and threshold are its registry entry's (:class:`geopress.findings.Finding`):
 
 ==================  ==========================================  ======================
 status              deciding pressure and threshold              margin_psi
@@ -31,13 +32,15 @@ no_terrain, unzoned).
 from __future__ import annotations
 
 import math
-from typing import Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 
-from .classify import CODE, FLAGGED_LAYERS, Criteria
+from .classify import CODE, Criteria
+from .findings import BY_NAME, FINDINGS
+from .tables import in_finding
 
 #: the confidence classes, most certain flag first
 CLASSES: tuple[str, ...] = ("firm", "borderline", "near_limit", "clear", "unrated")
@@ -51,16 +54,32 @@ def margins(codes: ArrayLike, *, psi_min: ArrayLike, psi_max: ArrayLike, psi_top
             criteria: Criteria) -> NDArray[np.float64]:
     """``margin_psi`` per customer (see the module's table); NaN for no_geometry, no_terrain and unzoned."""
     codes = np.asarray(codes)
-    pmin = np.asarray(psi_min, dtype=np.float64)
-    pmax = np.asarray(psi_max, dtype=np.float64)
-    ptop = np.asarray(psi_top, dtype=np.float64)
-    lo, hi = criteria.min_static_psi, criteria.max_static_psi
-    # an ok customer's distance to each threshold it could cross (psi_top only for several stories)
-    nearest = np.fmin(np.fmin(hi - pmax, pmin - lo), ptop - lo)
-    return np.select(
-        [codes == CODE["high"], codes == CODE["low"], codes == CODE["above_hgl"], codes == CODE["low_upper_floors"],
-         codes == CODE["ok"]],
-        [pmax - hi, lo - pmin, -pmin, lo - ptop, -nearest], default=np.nan)
+    each = finding_margins(psi_min=psi_min, psi_max=psi_max, psi_top=psi_top, criteria=criteria)
+    out = np.full(codes.shape, np.nan)
+    for name, m in each.items():
+        own = codes == CODE[name]
+        out[own] = m[own]
+    # an ok customer: the nearest threshold it could cross, every margin being negative (fmax skips the NaN
+    # psi_top of a single story)
+    ok = codes == CODE["ok"]
+    out[ok] = np.fmax.reduce([m[ok] for m in each.values()])
+    return out
+
+
+def finding_margins(*, psi_min: ArrayLike, psi_max: ArrayLike, psi_top: ArrayLike,
+                    criteria: Criteria) -> dict[str, NDArray[np.float64]]:
+    """Each finding's margin for every customer, psi: its worst column beyond its threshold, positive on the
+    flagged side (:meth:`geopress.findings.Finding.margin`)."""
+    columns = {"psi_min": np.asarray(psi_min, dtype=np.float64), "psi_max": np.asarray(psi_max, dtype=np.float64),
+               "psi_top": np.asarray(psi_top, dtype=np.float64)}
+    return {name: BY_NAME[name].finding.margin(columns[BY_NAME[name].finding.worst], criteria) for name in FINDINGS}
+
+
+def rate(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.ExtensionArray:
+    """A finding's confidence for each customer as if flagged by it: firm, borderline or unrated (see
+    :func:`classes`), for the mailing list of that finding."""
+    m = np.asarray(margin_psi, dtype=np.float64)
+    return classes(np.full(m.shape, CODE[FINDINGS[0]]), m, sigma_psi)
 
 
 def sigmas(dem_rmse_ft: ArrayLike, hgl_uncertainty_ft: ArrayLike, psi_per_ft: float) -> NDArray[np.float64]:
@@ -75,7 +94,7 @@ def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd
     codes = np.asarray(codes)
     m = np.asarray(margin_psi, dtype=np.float64)
     s = np.asarray(sigma_psi, dtype=np.float64)
-    flagged = np.isin(codes, [CODE[st] for st in FLAGGED_LAYERS])
+    flagged = np.isin(codes, [CODE[st] for st in FINDINGS])
     ok = codes == CODE["ok"]
     sure = np.where(flagged, m, -m) > Z95 * s  # beyond 1.96 sigma on the side the status is on
     rated = ~np.isnan(m)
@@ -94,24 +113,36 @@ def chance_other_side(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> NDArray[np
     return np.array([0.5 * math.erfc(v / math.sqrt(2.0)) for v in np.atleast_1d(z)])
 
 
-def verification_list(customers: pd.DataFrame, *, id_field: str, fields: Sequence[str] = ()) -> pd.DataFrame:
-    """The borderline flagged customers, one row each, the ones a field reading would decide most first.
+def verification_list(customers: pd.DataFrame, rated: Mapping[str, tuple[ArrayLike, ArrayLike]], *, id_field: str,
+                      fields: Sequence[str] = ()) -> pd.DataFrame:
+    """Every borderline flag, one row per customer and finding, the ones a field reading would decide most first.
 
-    Columns: the id, ``zone``, ``status``, ``ground_ft``, ``psi_min``,
-    ``psi_max``, ``psi_top``, ``margin_psi``, ``sigma_psi``,
-    ``chance_other_side`` (:func:`chance_other_side`), ``reason`` and
-    ``fields`` (e.g. the mail and letter fields). Sorted by
-    ``chance_other_side``, highest first, then by id.
+    ``rated`` maps each finding to each customer's margin from its threshold
+    and its class for it (:func:`finding_margins`, :func:`rate`). Columns: the
+    id, ``fields`` (e.g. the mail and letter fields), ``zone``, ``list`` (the
+    finding's mailing list), ``status``, ``ground_ft``, ``psi_min``,
+    ``psi_max``, ``psi_top``, ``margin_psi`` (for that finding), ``sigma_psi``,
+    ``chance_other_side`` (:func:`chance_other_side`) and ``reason``. Sorted
+    by ``chance_other_side``, highest first, then by id and list.
     """
-    cols = [id_field, *[f for f in fields if f != id_field], "zone", "status", "ground_ft", "psi_min", "psi_max",
-            "psi_top", "margin_psi", "sigma_psi", "reason"]
-    sub = customers.loc[(customers["confidence"] == "borderline").to_numpy(dtype=bool), cols]
-    out = pd.DataFrame(sub).reset_index(drop=True)
-    out.insert(len(cols) - 1, "chance_other_side",
+    keep = [id_field, *[f for f in fields if f != id_field], "zone"]
+    after = ["status", "ground_ft", "psi_min", "psi_max", "psi_top"]
+    parts = []
+    for name in FINDINGS:
+        margin, cls = rated[name]
+        borderline = pd.Series(pd.array(cls, dtype="str")).eq("borderline").to_numpy(dtype=bool, na_value=False)
+        sel = in_finding(customers, name) & borderline
+        part = pd.DataFrame(customers.loc[sel, [*keep, *after, "sigma_psi", "reason"]]).reset_index(drop=True)
+        part.insert(len(keep), "list", BY_NAME[name].finding.layer)
+        part.insert(len(keep) + 1 + len(after), "margin_psi", np.asarray(margin, dtype=np.float64)[sel])
+        parts.append(part)
+    out = pd.concat(parts, ignore_index=True)
+    out.insert(len(out.columns) - 1, "chance_other_side",
                np.round(chance_other_side(out["margin_psi"], out["sigma_psi"]), 3) if len(out) else [])
     for c in ("ground_ft", "psi_min", "psi_max", "psi_top", "margin_psi", "sigma_psi"):
         out[c] = out[c].to_numpy(dtype=np.float64).round(2)
-    order = np.lexsort((out[id_field].astype(str).to_numpy(), -out["chance_other_side"].to_numpy(dtype=np.float64)))
+    order = np.lexsort((out["list"].astype(str).to_numpy(), out[id_field].astype(str).to_numpy(),
+                        -out["chance_other_side"].to_numpy(dtype=np.float64)))
     return out.iloc[order].reset_index(drop=True)
 
 

@@ -87,6 +87,8 @@ class Result:
     plan: planning.Plan | None = None
     #: the customers' geometries as the file's WKB when they are the file's own points (for the writer), else None
     wkb: pa.ChunkedArray | None = None
+    #: per finding, each customer's margin from its threshold (display unit) and class: the mailing lists' ``rated``
+    rated: dict[str, tuple[np.ndarray, Any]] | None = None
     #: the field readings checked against the screening and their per-zone table (None without [readings])
     field_check: gpd.GeoDataFrame | None = None
     field_check_by_zone: pd.DataFrame | None = None
@@ -353,10 +355,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   if cfg.customers.floors_field else np.full(len(ground), np.nan))
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)
-        codes = cls.classify(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
-                             psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+        codes, found = cls.screen(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
+                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
-                             psi_top=p.psi_top, floors=floors, criteria=crit)
+                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found)
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
         frame = cust.frame
@@ -376,22 +378,27 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "margin_psi": margin,
             "sigma_psi": sigma,
             "confidence": confidence.classes(codes, margin, sigma),
+            **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
         }
         for c in extra:
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+        finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
         shown = customers_in_units(customers, units)
+        # each finding's margin (in the display unit) and class, for its mailing list
+        rated = {name: (units.pressure_from_psi(m), confidence.rate(m, sigma)) for name, m in confidence.finding_margins(
+            psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit).items()}
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
-            shown, id_field=id_field, mail_fields=cfg.customers.mail_fields,
-            letter_fields=cfg.customers.letter_fields, firm_only=cfg.output.mail_firm_only).items()}
+            shown, id_field=id_field, mail_fields=cfg.customers.mail_fields, letter_fields=cfg.customers.letter_fields,
+            rated=rated, firm_only=cfg.output.mail_firm_only).items()}
         mailing[confidence.VERIFICATION_LIST] = mailing_columns_in_units(confidence.verification_list(
-            shown, id_field=id_field, fields=[*cfg.customers.mail_fields, *cfg.customers.letter_fields]), units)
+            shown, rated, id_field=id_field, fields=[*cfg.customers.mail_fields, *cfg.customers.letter_fields]), units)
         summary = summary.merge(confidence.zone_counts(customers["zone"], customers["confidence"],
                                                        [s.zone for s in cfg.zones.sources]), on="zone", how="left")
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
@@ -414,6 +421,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "no_geometry": cust.no_geometry,
         },
         "counts": counts,
+        "counts_by_finding": finding_counts,
         "terrain": [vars(r) for r in terrain.rasters],
         "datum": {**shift.info(), "direction": shift.direction()},
         "ground_vs_hgl": [_ground_row(zg, crit.psi_per_ft) for zg in ground_table],
@@ -428,7 +436,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     if readings is not None:
         info["field_check"] = field_check_info(cfg, readings, by_zone)
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan, wkb=cust.wkb, field_check=readings, field_check_by_zone=by_zone)
+                  plan=plan, wkb=cust.wkb, field_check=readings, field_check_by_zone=by_zone, rated=rated)
 
 
 def terrain_accuracy(cfg: Config) -> dict[str, Any]:
@@ -529,8 +537,8 @@ def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> 
     and ``changes``, views of it (see write_io.View)."""
     customers = result.customers
     layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
-    for code, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = write_io.view_of("customers", customers, "status", (code,))
+    for finding, name in cls.FLAGGED_LAYERS.items():
+        layers[name] = write_io.view_of("customers", customers, cls.FINDING_COLUMNS[finding], (True,))
     if "change" in customers.columns:
         layers["changes"] = write_io.view_of("customers", customers, "change", CHANGED)
     return layers

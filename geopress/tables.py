@@ -10,23 +10,16 @@ formula a leading apostrophe (the usual CSV-injection defence).
 
 from __future__ import annotations
 
-from typing import Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .classify import FLAGGED_LAYERS, STATUSES
+from .findings import FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, WORST
 from .pressure import Source
 
-#: for each flagged status, the pressure column that is worst and whether low or high is worse.
-WORST: dict[str, tuple[str, str]] = {
-    "high": ("psi_max", "max"),
-    "low": ("psi_min", "min"),
-    "above_hgl": ("psi_min", "min"),
-    "low_upper_floors": ("psi_top", "min"),
-}
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
 #: the confidence classes a flagged customer can have, surest first (see geopress.confidence)
 ADDRESS_CLASSES = ("firm", "borderline", "unrated")
@@ -108,11 +101,20 @@ def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return distinct, rank[code]
 
 
+def in_finding(customers: pd.DataFrame, finding: str) -> np.ndarray:
+    """Whether each customer has ``finding``: its ``finding_<name>`` column, or (a frame without it, as an earlier
+    run's) its status."""
+    column = FINDING_COLUMNS[finding]
+    if column in customers.columns:
+        return customers[column].to_numpy(dtype=bool, na_value=False)
+    return (customers["status"] == finding).to_numpy(dtype=bool)
+
+
 def mailing_list(
     customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str],
-    letter_fields: Sequence[str] = (), firm_only: bool = False,
+    letter_fields: Sequence[str] = (), rated: tuple[np.ndarray, Any] | None = None, firm_only: bool = False,
 ) -> pd.DataFrame:
-    """One row per distinct mailing address among customers with ``status``.
+    """One row per distinct mailing address among customers with the finding ``status`` (see :func:`in_finding`).
 
     Columns: the mail fields, ``accounts`` (ids joined by "; ", sorted), the
     ``letter_fields`` (each the distinct values at the address, missing ones
@@ -123,25 +125,25 @@ def mailing_list(
     mail fields, one row per customer. Text is as in ``customers``: see
     :func:`neutralise_frame` for a CSV.
 
-    When ``customers`` has the columns of :mod:`geopress.confidence`, each
-    row has ``margin_psi`` (its accounts' largest: that of the most severe)
-    and ``confidence`` ("firm" when any account's flag is firm, else that of
-    its most severe account); ``firm_only`` keeps only the firm accounts.
+    ``rated``: each customer's margin from this finding's threshold (in the
+    display unit of ``worst_psi``) and its confidence class for the finding
+    (:func:`geopress.confidence.rate`); with it each row has ``margin_psi``
+    (its accounts' largest: that of the most severe) and ``confidence`` (the
+    surest of its accounts': firm, borderline, unrated), and ``firm_only``
+    keeps only the accounts whose flag is firm.
     """
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
-    rated = "confidence" in customers.columns
     cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi",
-            *(["margin_psi", "confidence"] if rated else [])]
-    selected = customers["status"] == status
+            *(["margin_psi", "confidence"] if rated is not None else [])]
+    selected = in_finding(customers, status)
     if firm_only:
-        selected = selected & (customers["confidence"] == "firm")
-    rows = np.flatnonzero(selected.to_numpy(dtype=bool))
+        selected = selected & pd.Series(pd.array(rated[1], dtype="str")).eq("firm").to_numpy(dtype=bool, na_value=False)
+    rows = np.flatnonzero(selected)
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
-    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col,
-                                        *(["margin_psi", "confidence"] if rated else [])]))].iloc[rows]
+    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col]))].iloc[rows]
     n = len(sub)
     # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
     ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
@@ -184,12 +186,13 @@ def mailing_list(
     out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
     out["zones"] = pd.array(zones.take(out_order), dtype="str")
     out["worst_psi"] = worst[out_order]
-    if rated:
-        margin = pd.Series(sub["margin_psi"].to_numpy(dtype=np.float64)).groupby(group, sort=False).max()
+    if rated is not None:
+        margin = pd.Series(np.asarray(rated[0], dtype=np.float64)[rows]).groupby(group, sort=False).max()
         best = np.full(n_groups, np.nan)
         best[margin.index.to_numpy()] = margin.to_numpy().round(2)
         # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
-        rank = pd.Series(pd.Categorical(sub["confidence"], categories=ADDRESS_CLASSES).codes).replace(-1, 99)
+        classes = np.asarray(pd.array(rated[1], dtype="str").to_numpy(dtype=object, na_value=None))[rows]
+        rank = pd.Series(pd.Categorical(classes, categories=ADDRESS_CLASSES).codes).replace(-1, 99)
         surest = rank.groupby(group, sort=False).min()
         code = np.full(n_groups, 99)
         code[surest.index.to_numpy()] = surest.to_numpy()
@@ -200,21 +203,25 @@ def mailing_list(
 
 
 def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
-                  letter_fields: Sequence[str] = (), firm_only: bool = False) -> dict[str, pd.DataFrame]:
-    """Every flagged status's mailing list, keyed by output name (``high_pressure`` ...); ``firm_only`` as in
-    :func:`mailing_list`."""
+                  letter_fields: Sequence[str] = (), rated: Mapping[str, tuple[np.ndarray, Any]] | None = None,
+                  firm_only: bool = False) -> dict[str, pd.DataFrame]:
+    """Every finding's mailing list, keyed by output name (``high_pressure`` ...); ``rated`` maps each finding to
+    the ``rated`` of :func:`mailing_list`, and ``firm_only`` is as there."""
     return {
         FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields,
-                                             letter_fields=letter_fields, firm_only=firm_only)
+                                             letter_fields=letter_fields, firm_only=firm_only,
+                                             rated=None if rated is None else rated[status])
         for status in FLAGGED_LAYERS
     }
 
 
 def zone_summary(customers: pd.DataFrame, sources: Sequence[Source], psi_per_ft: float) -> pd.DataFrame:
-    """Per zone: source kind, HGL range, customer count, count by status, ground and psi_max spread."""
+    """Per zone: source kind, HGL range, customer count, count by status (``n_<status>``) and by finding
+    (``n_finding_<finding>``), ground and psi_max spread."""
     rows = []
     zone, status = customers["zone"], customers["status"]
     values = {col: customers[col].to_numpy(dtype=np.float64) for col in ("ground_ft", "psi_max")}
+    found = {name: in_finding(customers, name) for name in FINDINGS}
     for src in sources:
         high, low = src.hgl_range(psi_per_ft)
         sel = (zone == src.zone).to_numpy(dtype=bool)  # only the columns summarised, not a copy of every one
@@ -228,6 +235,8 @@ def zone_summary(customers: pd.DataFrame, sources: Sequence[Source], psi_per_ft:
         counts = status[sel].value_counts()
         for name in STATUSES:
             row[f"n_{name}"] = int(counts.get(name, 0))
+        for name in FINDINGS:
+            row[f"n_{FINDING_COLUMNS[name]}"] = int(np.count_nonzero(found[name][sel]))
         for col, all_vals in values.items():
             vals = all_vals[sel]
             vals = vals[~np.isnan(vals)]

@@ -72,11 +72,15 @@ def test_verification_list_puts_the_closest_calls_first():
     customers = pd.DataFrame({
         "account": ["A", "B", "C", "D"], "owner": ["o1", "o2", "o3", "o4"], "zone": ["Z"] * 4,
         "status": ["high", "low", "high", "ok"], "ground_ft": [1.0] * 4, "psi_min": [70.0, 33.0, 70.0, 50.0],
-        "psi_max": [81.0, 33.0, 80.2, 60.0], "psi_top": [np.nan] * 4, "margin_psi": [1.0, 2.0, 0.2, -20.0],
-        "sigma_psi": [1.16] * 4, "confidence": ["borderline", "borderline", "borderline", "clear"],
-        "reason": ["r"] * 4})
-    out = cf.verification_list(customers, id_field="account", fields=["owner"])
+        "psi_max": [81.0, 33.0, 80.2, 60.0], "psi_top": [np.nan] * 4, "sigma_psi": [1.16] * 4, "reason": ["r"] * 4})
+    margins = cf.finding_margins(psi_min=customers["psi_min"], psi_max=customers["psi_max"],
+                                 psi_top=customers["psi_top"], criteria=CRIT)
+    # high: 81 - 80 = 1, 80.2 - 80 = 0.2; low: 35 - 33 = 2; all within 1.96 * 1.16 = 2.27 psi: borderline
+    rated = {name: (m, cf.rate(m, customers["sigma_psi"])) for name, m in margins.items()}
+    out = cf.verification_list(customers, rated, id_field="account", fields=["owner"])
     assert out["account"].tolist() == ["C", "A", "B"]
+    assert out["list"].tolist() == ["high_pressure", "high_pressure", "low_pressure"]
+    assert out["margin_psi"].tolist() == pytest.approx([0.2, 1.0, 2.0])
     assert out["chance_other_side"].tolist() == pytest.approx(
         [round(0.5 * math.erfc(m / 1.16 / math.sqrt(2)), 3) for m in (0.2, 1.0, 2.0)])
 
@@ -101,7 +105,7 @@ def test_customers_carry_margin_sigma_and_confidence(world):
     by_zone = res.zone_summary.set_index("zone")
     assert (by_zone["n_firm"] + by_zone["n_borderline"]).sum() == int(flagged.sum())
     assert res.mailing["high_pressure"].columns[-2:].tolist() == ["margin_psi", "confidence"]
-    # the field-verification list holds every borderline flag
+    # the field-verification list holds every borderline flag (each customer here has one finding, its status)
     assert len(res.mailing["field_verification"]) == int((c["confidence"] == "borderline").sum())
 
 
@@ -127,6 +131,6 @@ def test_firm_only_changes_the_mailing_lists_and_nothing_else(world):
         assert set(only["accounts"]) <= set(all_["accounts"])
         changed += len(all_) - len(only)
     assert changed == int((both.customers["confidence"] == "borderline").sum())  # one account per address here
-    same = {k: v for k, v in both.info.items() if k not in ("config", "overrides", "confidence")}
-    assert same == {k: v for k, v in firm.info.items() if k not in ("config", "overrides", "confidence")}
+    same = {k: v for k, v in both.info.items() if k not in ("config", "overrides", "confidence", "started")}
+    assert same == {k: v for k, v in firm.info.items() if k not in ("config", "overrides", "confidence", "started")}
     assert both.info["confidence"]["counts"] == firm.info["confidence"]["counts"]
