@@ -134,3 +134,37 @@ def test_firm_only_changes_the_mailing_lists_and_nothing_else(world):
     same = {k: v for k, v in both.info.items() if k not in ("config", "overrides", "confidence", "started")}
     assert same == {k: v for k, v in firm.info.items() if k not in ("config", "overrides", "confidence", "started")}
     assert both.info["confidence"]["counts"] == firm.info["confidence"]["counts"]
+
+
+@settings(max_examples=300, deadline=None)
+@given(pmin=st.floats(-20, 120), spread=st.floats(0, 20), top=st.one_of(st.just(np.nan), st.floats(-20, 120)))
+def test_a_finding_that_holds_has_a_margin_on_its_side(pmin, spread, top):
+    # the registry's condition and its threshold agree: a customer with a finding is at or beyond its threshold
+    from geopress.classify import screen
+
+    kw = dict(psi_min=[pmin], psi_max=[pmin + spread], psi_top=[top])
+    _, found = screen(has_geometry=[True], ground_ft=[1000.0], zoned=[True], criteria=CRIT, **kw)
+    margins = cf.finding_margins(criteria=CRIT, **kw)
+    for name, held in found.items():
+        if held[0]:
+            assert margins[name][0] >= 0, name
+
+
+def test_firm_only_is_decided_per_finding():
+    from geopress.tables import mailing_lists
+
+    # one customer, 85 psi at the street (5 psi over 80: firm at sigma 1) and 34 psi on its top floor (1 psi under
+    # 35: borderline): mailed for the high pressure, not for the upper floors
+    customers = pd.DataFrame({"account": ["A"], "owner": ["o"], "zone": ["Z"], "status": ["high"],
+                              "psi_min": [84.0], "psi_max": [85.0], "psi_top": [34.0], "sigma_psi": [1.0],
+                              "finding_above_hgl": [False], "finding_low": [False], "finding_high": [True],
+                              "finding_low_upper_floors": [True]})
+    margins = cf.finding_margins(psi_min=customers["psi_min"], psi_max=customers["psi_max"],
+                                 psi_top=customers["psi_top"], criteria=CRIT)
+    rated = {name: (m, cf.rate(m, customers["sigma_psi"])) for name, m in margins.items()}
+    lists = mailing_lists(customers, id_field="account", mail_fields=["owner"], rated=rated, firm_only=True)
+    assert lists["high_pressure"]["accounts"].tolist() == ["A"]
+    assert lists["high_pressure"]["margin_psi"].tolist() == [5.0]
+    assert lists["upper_floors"].empty
+    every = mailing_lists(customers, id_field="account", mail_fields=["owner"], rated=rated)
+    assert every["upper_floors"]["confidence"].tolist() == ["borderline"]
