@@ -798,7 +798,8 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     """Validate the config and every input as a run would, and say how they fit together; write nothing.
 
     Reads where the customers are (not their mail fields), samples the terrain
-    under them and joins them to the zones, then applies the run's guards
+    under them and joins them to the zones, checks the field readings (when
+    the config has them) as a run would, then applies the run's guards
     (:func:`apply_guards`): too little coverage or ground off the Earth raise
     InputError, a zone whose ground looks wrong against its HGL warns.
 
@@ -861,6 +862,12 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
         lines.append(f"  {zg.zone} ({src.kind}, {zg.customers} customers): {ground} under {hgl}{psi}{flag}")
     for o in ov:
         lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
+    if cfg.readings is not None:
+        with _recorded_warnings(shown):
+            readings, _ = field_check(cfg, zones, shift)
+        checks = readings["check"].value_counts()
+        lines.append(f"readings: {len(readings)} from {cfg.readings.path} ("
+                     + ", ".join(f"{checks[c]} {c}" for c in fieldcheck.CHECKS if checks.get(c, 0)) + ")")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
     coverage = {r.path: n for r, n in zip(rasters, each)}
     coverage["any"] = anywhere

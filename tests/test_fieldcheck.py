@@ -314,3 +314,17 @@ def test_written_layers_and_run_json(world):
     assert list(table["zone"]) == ["West", "East"] and list(table["readings"]) == [1, 1]
     info = json.loads((world.out.parent / "run.json").read_text())
     assert info["field_check"]["checks"]["consistent"] + info["field_check"]["checks"]["outlier"] == 2
+
+
+def test_check_reads_the_readings_as_a_run_would(world):
+    import shapely
+
+    _readings(world, {"tag": ["W1", "far"], "static_psi": [50.0, 50.0], "height_ft": [2.0, 2.0],
+                      "tank_ft": [None, None]}, [shapely.Point(X0 + 100, Y1 - 500), shapely.Point(X0 - 5000, Y1 - 500)])
+    report = pipeline.check(world.config_path)
+    line = next(x for x in report.lines if x.startswith("readings:"))
+    assert line.endswith("(1 unzoned, 1 consistent)") or line.endswith("(1 unzoned, 1 outlier)")
+    _readings(world, {"tag": ["W1"], "psi": [50.0]}, [shapely.Point(X0 + 100, Y1 - 500)],
+              config=READINGS.replace('gauge_height_field = "height_ft"\nhgl_field = "tank_ft"\n', ""))
+    with pytest.raises(InputError, match="readings.pressure_field"):
+        pipeline.check(world.config_path)
