@@ -165,16 +165,26 @@ def check_readings(*, measured_psi: ArrayLike, has_geometry: ArrayLike, zoned: A
     })
 
 
+#: at most this many points enter a pairwise-distance computation (an evenly spaced selection beyond it): a
+#: median and a mean of distances are stable long before, and memory stays at a few MB per zone
+MAX_PAIRWISE = 400
+
+
+def _pairwise(pts: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The distances between every two of ``pts`` (an evenly spaced selection of MAX_PAIRWISE when more)."""
+    if len(pts) > MAX_PAIRWISE:
+        pts = pts[np.linspace(0, len(pts) - 1, MAX_PAIRWISE).astype(np.intp)]
+    d = np.sqrt(((pts[:, None, :] - pts[None, :, :]) ** 2).sum(axis=-1))
+    return d[np.triu_indices(len(pts), k=1)]
+
+
 def clustered(x: NDArray[np.float64], y: NDArray[np.float64], members: NDArray[np.bool_]) -> bool:
     """Whether the ``members`` (two or more) lie closer together than the zone's readings do: the mean distance
     between two members is below the median distance between two readings of the zone (scale-free: any CRS units)."""
     if members.sum() < 2 or members.size < 3:
         return False
     pts = np.column_stack([x, y])
-    d = np.sqrt(((pts[:, None, :] - pts[None, :, :]) ** 2).sum(axis=-1))
-    upper = np.triu(np.ones(d.shape, dtype=bool), k=1)
-    among = d[np.ix_(members, members)][np.triu(np.ones((members.sum(),) * 2, dtype=bool), k=1)]
-    return bool(np.mean(among) < np.median(d[upper]))
+    return bool(np.mean(_pairwise(pts[members])) < np.median(_pairwise(pts)))
 
 
 #: per kind of source, the HGL error a steady bias may be, in words

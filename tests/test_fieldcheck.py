@@ -328,3 +328,19 @@ def test_check_reads_the_readings_as_a_run_would(world):
               config=READINGS.replace('gauge_height_field = "height_ft"\nhgl_field = "tank_ft"\n', ""))
     with pytest.raises(InputError, match="readings.pressure_field"):
         pipeline.check(world.config_path)
+
+
+def test_a_zone_of_many_readings_stays_fast_and_finds_its_cluster():
+    # 20,000 readings (a logger network): the distances use an evenly spaced selection of 400, not 20,000^2 pairs
+    import time
+
+    rng = np.random.default_rng(11)
+    n = 20_000
+    x, y = rng.uniform(0, 1000, n), rng.uniform(0, 1000, n)
+    res = rng.normal(0.0, 0.5, n)
+    x[:3], y[:3], res[:3] = [100.0, 110.0, 120.0], [100.0, 100.0, 100.0], [-20.0, -19.0, -21.0]
+    t0 = time.perf_counter()
+    row = _zone(res, 1.0, x=x, y=y)
+    # a few MB and well under a second on one core; 10 s leaves room for a loaded test machine
+    assert time.perf_counter() - t0 < 10.0
+    assert row["pattern"] == "cluster" and row["outliers"] == 3
