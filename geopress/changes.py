@@ -30,7 +30,7 @@ mails only them never mails an owner twice for the same finding.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -184,6 +184,7 @@ def newly_in_finding(table: pd.DataFrame, current: Mapping[str, np.ndarray],
 def new_mailing_lists(
     customers: pd.DataFrame, newly: Mapping[str, np.ndarray], *, id_field: str, mail_fields: Sequence[str],
     full: Mapping[str, pd.DataFrame] | None = None, letter_fields: Sequence[str] = (),
+    rated: Mapping[str, tuple[np.ndarray, Any]] | None = None, firm_only: bool = False,
 ) -> dict[str, pd.DataFrame]:
     """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the customers newly in each finding
     (``newly``, as :func:`newly_in_finding` gives them).
@@ -191,7 +192,8 @@ def new_mailing_lists(
     ``full`` may hold the run's own lists by name (``high_pressure`` ...),
     as :func:`geopress.tables.mailing_lists` makes them from ``customers``
     with the same fields (``letter_fields`` as there): a finding whose every customer is newly in it (a
-    first run) then takes a copy of its list instead of building it again.
+    first run) then takes a copy of its list instead of building it again. ``rated`` and ``firm_only`` as in
+    :func:`geopress.tables.mailing_lists`.
     """
     out = {}
     for finding, rows in newly.items():
@@ -200,7 +202,9 @@ def new_mailing_lists(
             out[f"new_{name}"] = full[name].copy()
             continue
         out[f"new_{name}"] = mailing_list(customers.iloc[rows], finding, id_field=id_field, mail_fields=mail_fields,
-                                          letter_fields=letter_fields)
+                                          letter_fields=letter_fields, firm_only=firm_only,
+                                          rated=None if rated is None else (rated[finding][0][rows],
+                                                                            rated[finding][1][rows]))
     return out
 
 

@@ -41,7 +41,7 @@ __all__ = ["CODE", "FINDINGS", "FINDING_COLUMNS", "FLAGGED_LAYERS", "RESULT_COLU
 #: per-customer result columns written after the id field; input fields may not reuse these names.
 RESULT_COLUMNS: tuple[str, ...] = (
     "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "status", "reason",
-    *FINDING_COLUMNS.values(), *AREA_COLUMNS.values(), "geometry",
+    "margin_psi", "sigma_psi", "confidence", *FINDING_COLUMNS.values(), *AREA_COLUMNS.values(), "geometry",
 )
 CODE = {name: np.int8(i) for i, name in enumerate(STATUSES)}
 

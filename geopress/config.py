@@ -27,6 +27,7 @@ from pyproj.exceptions import CRSError
 from .classify import RESULT_COLUMNS, Criteria
 from .targets import TargetCriteria
 from .errors import ConfigError
+from .fieldcheck import GRADES
 from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
 from .terrain import METHODS
 from .units import UNIT_SYSTEMS
@@ -84,7 +85,10 @@ class TerrainConfig:
     once. ``vertical_datum`` (with ``ZonesConfig.vertical_datum``) names the
     DEM's vertical datum as a vertical CRS ("EPSG:5703"), so that the offset
     is computed per location (:mod:`geopress.io.datum`), with the offset grid
-    ``datum_grid`` when PROJ does not have it.
+    ``datum_grid`` when PROJ does not have it. ``vertical_rmse_ft``: each
+    raster's vertical accuracy as an RMSE, ft, one per path in ``paths``
+    (after globs are expanded), or None when the config does not state it;
+    it sets the DEM's part of every uncertainty (:mod:`geopress.fieldcheck`).
     """
 
     paths: tuple[Path, ...]
@@ -94,6 +98,52 @@ class TerrainConfig:
     datum_offset_ft: float = 0.0
     vertical_datum: str | None = None
     datum_grid: Path | None = None
+    vertical_rmse_ft: tuple[float, ...] | None = None
+
+    def rmse_of(self, path: Path) -> float:
+        """``path``'s vertical RMSE, ft; NaN when the config states none."""
+        if self.vertical_rmse_ft is None:
+            return math.nan
+        return self.vertical_rmse_ft[self.paths.index(path)]
+
+
+@dataclass(frozen=True)
+class ReadingsConfig:
+    """Field readings of static pressure to check the screening against (:mod:`geopress.fieldcheck`).
+
+    A point layer with the measured static pressure, psi (``pressure_field``),
+    and optionally a reading id, the date and time, the gauge's height above
+    ground, ft, the HGL at the time of the reading, ft, on the HGLs' datum (a
+    tank's level from SCADA), and the gauge's accuracy, psi; where a reading
+    has no height or accuracy of its own, ``gauge_height_ft`` and the layer's
+    gauge accuracy apply (``gauge_accuracy_psi``, or ``gauge_grade`` of a
+    gauge with the span ``gauge_span_psi``). Outlier and bias rules are in
+    :class:`geopress.fieldcheck.Rules`.
+    """
+
+    path: Path
+    pressure_field: str
+    layer: str | None = None
+    id_field: str | None = None
+    time_field: str | None = None
+    gauge_height_field: str | None = None
+    hgl_field: str | None = None
+    accuracy_field: str | None = None
+    gauge_height_ft: float = 0.0
+    gauge_accuracy_psi: float | None = None
+    gauge_grade: str | None = None
+    gauge_span_psi: float | None = None
+    outlier_psi: float = 5.0
+    outlier_sigmas: float = 2.0
+    bias_psi: float = 1.0
+    min_readings: int = 3
+
+    def fields(self) -> dict[str, str]:
+        """The layer's fields the config names, by key (``readings.pressure_field`` ...)."""
+        named = {"pressure_field": self.pressure_field, "id_field": self.id_field, "time_field": self.time_field,
+                 "gauge_height_field": self.gauge_height_field, "hgl_field": self.hgl_field,
+                 "accuracy_field": self.accuracy_field}
+        return {f"readings.{k}": v for k, v in named.items() if v is not None}
 
 
 @dataclass(frozen=True)
@@ -136,6 +186,9 @@ class OutputConfig:
     (:mod:`geopress.io.postgis`), atomically; None: the GeoPackage only. ``geopackage = False``
     (with a database) publishes into the database instead of writing the GeoPackage; ``path``
     still says where run.json, the report and the lock go.
+    ``mail_firm_only``: the mailing lists hold only the firm flags
+    (:mod:`geopress.confidence`); the borderline ones are on the
+    field-verification list only.
     """
 
     path: Path
@@ -148,6 +201,7 @@ class OutputConfig:
     database: str | None = None
     schema: str | None = None
     geopackage: bool = True
+    mail_firm_only: bool = False
 
 
 @dataclass(frozen=True)
@@ -161,6 +215,7 @@ class Config:
     output: OutputConfig
     #: how target areas are formed (the optional ``[targets]`` section)
     targets: TargetCriteria = TargetCriteria()
+    readings: ReadingsConfig | None = None
     source_path: Path | None = field(default=None, compare=False)
     #: the dotted-key overrides applied on top of the file (what-if runs), in the order given.
     overrides: tuple[tuple[str, Any], ...] = field(default=(), compare=False)
@@ -179,7 +234,8 @@ class Config:
         def files(path: Path | None) -> list[Path]:  # none for a layer read from a database
             return [] if path is None else with_sidecars(path)
 
-        return [*files(self.customers.path), *self.terrain.paths, *grid, *files(self.zones.path)]
+        readings = files(self.readings.path) if self.readings else []
+        return [*files(self.customers.path), *self.terrain.paths, *grid, *files(self.zones.path), *readings]
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain TOML-like data (paths as strings)."""
@@ -193,6 +249,7 @@ class Config:
             "criteria": _plain(self.criteria),
             "output": _plain(self.output),
             "targets": _plain(self.targets),
+            **({"readings": _plain(self.readings)} if self.readings else {}),
         }
 
 
@@ -200,6 +257,10 @@ class Config:
 DATABASE_KEYS = ("database", "table", "query", "geometry_column")
 #: the longest output.schema: PostgreSQL cuts a longer identifier to 63 bytes without a word (NAMEDATALEN - 1)
 MAX_SCHEMA_BYTES = 63
+
+#: above this a value of terrain.vertical_rmse_ft is not a DEM's RMSE in ft (the coarsest 3DEP products are
+#: a few ft; 100 ft is a value in cm or inches, or a typo)
+MAX_PLAUSIBLE_RMSE_FT = 100.0
 #: the keys an --out-dir sets
 OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
@@ -488,7 +549,7 @@ class _Reader:
 
     # -- sections ----------------------------------------------------------
     def build(self, data: dict[str, Any]) -> Config:
-        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "targets"})
+        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "targets", "readings"})
         cfg = Config(
             customers=self.customers(self.table(data, "customers")),
             terrain=self.terrain(self.table(data, "terrain")),
@@ -496,10 +557,13 @@ class _Reader:
             criteria=self.criteria(self.table(data, "criteria", required=False)),
             output=self.output(self.table(data, "output")),
             targets=self.targets(self.table(data, "targets", required=False)),
+            readings=self.readings(self.table(data, "readings", required=False)) if "readings" in data else None,
             source_path=self.source_path,
         )
         inputs = {p: name for name, p in [("customers.path", cfg.customers.path), ("zones.path", cfg.zones.path)]}
         inputs.update({p: "terrain.paths" for p in cfg.terrain.paths})
+        if cfg.readings is not None:
+            inputs[cfg.readings.path] = "readings.path"
         if cfg.source_path is not None:
             inputs[Path(cfg.source_path).resolve()] = "the config file"
         for out_key, out_path in (("output.path", cfg.output.path),):
@@ -559,20 +623,24 @@ class _Reader:
     def terrain(self, t: dict[str, Any]) -> TerrainConfig:
         s = "terrain"
         self.no_unknown(t, s, {"paths", "vertical_units", "method", "memory_mb", "datum_offset_ft", "vertical_datum",
-                               "datum_grid"})
+                               "datum_grid", "vertical_rmse_ft"})
         raw = self.get(t, s, "paths", "str_list")
         if not raw:
             raise self.error("terrain.paths", "must list at least one raster")
+        rmse_each = self.rmse(t, len(raw))
         paths: list[Path] = []
-        for item in raw:
+        rmse: dict[Path, float] = {}
+        for item, item_rmse in zip(raw, rmse_each or [math.nan] * len(raw)):
             p = self.path(item, "terrain.paths")
             if _GLOB_CHARS.search(item):
                 hits = sorted(Path(h) for h in glob.glob(str(p)))
                 if not hits:
                     raise self.error("terrain.paths", f"the pattern {item!r} matches no file")
-                paths.extend(hits)
             else:
-                paths.append(p)
+                hits = [p]
+            paths.extend(hits)
+            for h in hits:
+                rmse.setdefault(h, item_rmse)  # a raster listed twice: its first entry, as for the ground
         units = self.get(t, s, "vertical_units", "str", None)
         if units is not None and units not in VERTICAL_UNITS:
             raise self.error("terrain.vertical_units", f"must be one of {', '.join(VERTICAL_UNITS)}, not {units!r}")
@@ -585,9 +653,32 @@ class _Reader:
         offset = self.get(t, s, "datum_offset_ft", "number", 0.0)
         datum = self.vertical_datum(t, s)
         grid = self.get(t, s, "datum_grid", "str", None)
-        return TerrainConfig(paths=tuple(dict.fromkeys(paths)), vertical_units=units, method=method, memory_mb=memory_mb,
+        unique = tuple(dict.fromkeys(paths))
+        return TerrainConfig(paths=unique, vertical_units=units, method=method, memory_mb=memory_mb,
                              datum_offset_ft=offset, vertical_datum=datum,
-                             datum_grid=None if grid is None else self.path(grid, "terrain.datum_grid"))
+                             datum_grid=None if grid is None else self.path(grid, "terrain.datum_grid"),
+                             vertical_rmse_ft=None if rmse_each is None else tuple(rmse[p] for p in unique))
+
+    def rmse(self, t: dict[str, Any], n_paths: int) -> list[float] | None:
+        """``terrain.vertical_rmse_ft``: one number for every raster, or one per entry of ``terrain.paths``
+        (a glob's entry for every file it matches); None when not given."""
+        key = "terrain.vertical_rmse_ft"
+        value = t.get("vertical_rmse_ft")
+        if value is None:
+            return None
+        items = value if isinstance(value, list) else [value] * n_paths
+        if isinstance(value, list) and len(value) != n_paths:
+            raise self.error(key, f"lists {len(value)} values for {n_paths} entries of terrain.paths; give one per "
+                                  "entry, or one number for all")
+        out = []
+        for v in items:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(_float_or_inf(v)) or v < 0:
+                raise self.error(key, f"must be a non-negative number of ft (or a list of them), not {_short(v)}")
+            out.append(float(v))
+        if any(v > MAX_PLAUSIBLE_RMSE_FT for v in out):
+            raise self.error(key, f"{max(out):g} ft is not a DEM's vertical RMSE (3DEP 1/3 arc-second is about "
+                                  f"2.7 ft); give it in ft, not cm or inches")
+        return out
 
     def vertical_datum(self, t: dict[str, Any], section: str) -> str | None:
         """``section.vertical_datum`` as a vertical CRS ("EPSG:5703", or WKT when it has no code), or None."""
@@ -672,8 +763,11 @@ class _Reader:
         if kind not in self._KIND_KEYS:
             raise self.error(f"{s}.kind", f"must be one of {', '.join(self._KIND_KEYS)}, not {kind!r}")
         keys = self._KIND_KEYS[kind]
-        self.no_unknown(t, s, {"zone", "kind", *keys})
+        self.no_unknown(t, s, {"zone", "kind", *keys, "hgl_uncertainty_ft"})
         v = {k: self.get(t, s, k, "number") for k in keys}
+        v["hgl_uncertainty_ft"] = self.get(t, s, "hgl_uncertainty_ft", "number", 0.0)
+        if v["hgl_uncertainty_ft"] < 0:
+            raise self.error(f"{s}.hgl_uncertainty_ft", "must not be negative")
         if kind == "tank":
             if v["low_water_ft"] > v["high_water_ft"]:
                 raise self.error(
@@ -720,10 +814,48 @@ class _Reader:
             raise self.error("targets.enabled", f"must be true or false, not {enabled!r}")
         return TargetCriteria(distance_ft=distance, min_customers=int(count), enabled=enabled)
 
+    def readings(self, t: dict[str, Any]) -> ReadingsConfig:
+        s = "readings"
+        text_keys = ("layer", "id_field", "time_field", "gauge_height_field", "hgl_field", "accuracy_field",
+                     "gauge_grade")
+        number_keys = {"gauge_height_ft": 0.0, "gauge_accuracy_psi": None, "gauge_span_psi": None, "outlier_psi": 5.0,
+                       "outlier_sigmas": 2.0, "bias_psi": 1.0, "min_readings": 3.0}
+        self.no_unknown(t, s, {"path", "pressure_field", *text_keys, *number_keys})
+        v: dict[str, Any] = {k: self.get(t, s, k, "str", None) for k in text_keys}
+        v.update({k: self.get(t, s, k, "number", d) for k, d in number_keys.items()})
+        for k in ("gauge_accuracy_psi", "gauge_span_psi", "outlier_psi", "outlier_sigmas", "bias_psi"):
+            if v[k] is not None and v[k] <= 0:
+                raise self.error(f"readings.{k}", f"must be positive, not {v[k]:g}")
+        if v["gauge_height_ft"] < 0:
+            raise self.error("readings.gauge_height_ft", "must not be negative (the gauge's height above ground)")
+        if v["min_readings"] < 1 or v["min_readings"] != int(v["min_readings"]):
+            raise self.error("readings.min_readings", f"must be a whole number >= 1, not {v['min_readings']:g}")
+        v["min_readings"] = int(v["min_readings"])
+        grade = v["gauge_grade"]
+        if grade is not None:
+            if grade.upper() not in GRADES:
+                raise self.error("readings.gauge_grade", f"must be one of {', '.join(GRADES)} (ASME B40.100 accuracy "
+                                                         f"grades), not {grade!r}")
+            v["gauge_grade"] = grade.upper()
+            if v["gauge_span_psi"] is None:
+                raise self.error("readings.gauge_grade", "needs readings.gauge_span_psi, the gauge's full scale in "
+                                                         "psi (a grade's accuracy is a share of it); add it")
+            if v["gauge_accuracy_psi"] is not None:
+                raise self.error("readings.gauge_grade", "cannot be used with readings.gauge_accuracy_psi; keep one")
+        elif v["gauge_span_psi"] is not None:
+            raise self.error("readings.gauge_span_psi", "is used only with readings.gauge_grade; add the grade or "
+                                                        "remove the span")
+        if grade is None and v["gauge_accuracy_psi"] is None:
+            raise self.error("readings", "says nothing of the gauges' accuracy; add readings.gauge_accuracy_psi "
+                                         "(psi) or readings.gauge_grade with readings.gauge_span_psi (used where "
+                                         "a reading has no accuracy_field value of its own)")
+        return ReadingsConfig(path=self.path(self.get(t, s, "path", "str"), "readings.path"),
+                              pressure_field=self.get(t, s, "pressure_field", "str"), **v)
+
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"
         self.no_unknown(t, s, {"path", "mailing_dir", "units", "report", "xlsx", "max_drop_percent", "child_timeout_s",
-                               "database", "schema", "geopackage"})
+                               "database", "schema", "geopackage", "mail_firm_only"})
         database, schema = self.get(t, s, "database", "str", None), self.get(t, s, "schema", "str", None)
         if (database is None) != (schema is None):
             given, missing = ("database", "schema") if schema is None else ("schema", "database")
@@ -743,8 +875,8 @@ class _Reader:
         if units not in UNIT_SYSTEMS:
             raise self.error("output.units", f"must be one of {', '.join(UNIT_SYSTEMS)}, not {units!r}")
         flags = {}
-        for name in ("report", "xlsx", "geopackage"):
-            flags[name] = t.get(name, True)
+        for name, default in (("report", True), ("xlsx", True), ("geopackage", True), ("mail_firm_only", False)):
+            flags[name] = t.get(name, default)
             if not isinstance(flags[name], bool):
                 raise self.error(f"output.{name}", f"must be true or false, not {flags[name]!r}")
         drop = self.get(t, s, "max_drop_percent", "number", 20.0)

@@ -51,7 +51,7 @@ def _partition(part: gpd.GeoDataFrame, polygons: np.ndarray, zones_crs_wkt: str,
     zi = assign_xy(x, y, crs, polygons, CRS.from_wkt(zones_crs_wkt), priority, points=pts)
     # the guards on the sampled ground run once, in the driver, on the merged ranges
     result = raster_io.sample_terrain(terrain, x, y, crs, shift)
-    return {"rows": part["_row"].to_numpy(), "zone_index": zi, "ground_ft": result.ground_ft,
+    return {"rows": part["_row"].to_numpy(), "zone_index": zi, "ground_ft": result.ground_ft, "rmse_ft": result.rmse_ft,
             "rasters": result.rasters, "inside_any": result.inside_any, "ranges": result.ranges,
             "outside_datum_grid": result.outside_datum_grid}
 
@@ -80,12 +80,14 @@ def _client(distributed, scheduler: Any) -> Iterator[Any]:
 def _merge(parts: list[dict[str, Any]], n: int, template: raster_io.TerrainResult) -> Joined:
     zone_index = np.full(n, -1, dtype=np.intp)
     ground = np.full(n, np.nan)
+    rmse = np.full(n, np.nan)
     reports = {r.path: r for r in template.rasters}
     ranges: dict[str, tuple[str, float, float]] = {}
     inside_any = outside_grid = 0
     for p in parts:
         zone_index[p["rows"]] = p["zone_index"]
         ground[p["rows"]] = p["ground_ft"]
+        rmse[p["rows"]] = p["rmse_ft"]
         inside_any += p["inside_any"]
         outside_grid += p["outside_datum_grid"]
         for r in p["rasters"]:
@@ -97,7 +99,7 @@ def _merge(parts: list[dict[str, Any]], n: int, template: raster_io.TerrainResul
             _, lo0, hi0 = ranges.get(label, (unit, np.inf, -np.inf))
             ranges[label] = (unit, min(lo0, lo), max(hi0, hi))
     terrain = raster_io.TerrainResult(ground_ft=ground, rasters=list(reports.values()), inside_any=inside_any,
-                                      ranges=ranges, outside_datum_grid=outside_grid)
+                                      ranges=ranges, outside_datum_grid=outside_grid, rmse_ft=rmse)
     return Joined(zone_index=zone_index, terrain=terrain)
 
 

@@ -73,11 +73,19 @@ class Values:
 @dataclass(frozen=True)
 class Finding:
     """What a flagged status adds: its output layer (GeoPackage view and mailing list of that name, and
-    ``new_<layer>``), and the pressure column that is worst for it with whether its ``max`` or ``min`` is worse."""
+    ``new_<layer>``), the pressure column that is worst for it with whether its ``max`` or ``min`` is worse,
+    and the ``threshold`` (psi, from the criteria) that column is judged against."""
 
     layer: str
     worst: str
     worse: str
+    threshold: Callable[[Any], float]
+
+    def margin(self, worst: NDArray[np.float64], criteria: Any) -> NDArray[np.float64]:
+        """How far ``worst`` (the values of the worst column) lies beyond the threshold, psi: positive on the
+        flagged side (above it for ``max``, below it for ``min``)."""
+        limit = self.threshold(criteria)
+        return worst - limit if self.worse == "max" else limit - worst
 
 
 @dataclass(frozen=True)
@@ -119,21 +127,21 @@ REGISTRY: tuple[Status, ...] = (
            "ground at {} ft is at or above the low HGL of {} ft: no service by gravity, booster service needed",
            ("ground", "hgl_low"),
            Style(_C["reddish_purple"], "D", "above HGL: no gravity service", "diamond", 36.0, "◆"), 6,
-           Finding("above_hgl", "psi_min", "min")),
+           Finding("above_hgl", "psi_min", "min", lambda c: 0.0)),
     Status("low", lambda v: (v.psi_min > 0.0) & (v.psi_min < v.criteria.min_static_psi),
            "static pressure down to {} psi is below {lo} psi: low service pressure", ("pmin",),
            Style(_C["blue"], "v", "low: below the minimum static pressure", "triangle-down", 40.0, "▼"), 4,
-           Finding("low_pressure", "psi_min", "min")),
+           Finding("low_pressure", "psi_min", "min", lambda c: c.min_static_psi)),
     Status("high", lambda v: v.psi_max > v.criteria.max_static_psi,
            "static pressure up to {} psi exceeds {hi} psi: individual PRV expected", ("pmax",),
            Style(_C["vermillion"], "^", "high: above the maximum static pressure", "triangle-up", 40.0, "▲"), 5,
-           Finding("high_pressure", "psi_max", "max")),
+           Finding("high_pressure", "psi_max", "max", lambda c: c.max_static_psi)),
     # psi_top is NaN for a single story, which compares False; the street is not low (that letter covers the floors)
     Status("low_upper_floors",
            lambda v: (v.psi_top < v.criteria.min_static_psi) & ~(v.psi_min < v.criteria.min_static_psi),
            "top floor of {} stories down to {} psi is below {lo} psi: upper floors need a booster", ("stories", "ptop"),
            Style(_C["sky_blue"], "s", "low upper floors: top floor below the minimum", "square", 36.0, "■"), 3,
-           Finding("upper_floors", "psi_top", "min")),
+           Finding("upper_floors", "psi_top", "min", lambda c: c.min_static_psi)),
     Status("ok", None, "static pressure {} to {} psi, within {lo} to {hi} psi", ("pmin", "pmax"),
            Style(_C["bluish_green"], "o", "ok: within the pressure window", "circle", 14.0, "●"), 0),
 )

@@ -162,6 +162,7 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     units = units_for(cfg.output.units)
     result.new_mailing = {name: mailing_columns_in_units(df, units) for name, df in changes.new_mailing_lists(
         customers_in_units(current, units), newly, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields,
-        letter_fields=cust_cfg.letter_fields, full=result.mailing).items()}
+        letter_fields=cust_cfg.letter_fields, full=result.mailing, rated=result.rated,
+        firm_only=cfg.output.mail_firm_only).items()}
     result.info["changes"] = summary.to_dict()
     log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())

@@ -26,8 +26,11 @@ import pyarrow as pa
 import pyogrio
 import pyproj
 import rasterio
+import shapely
 
 from . import classify as cls
+from . import confidence
+from . import fieldcheck
 from . import guards
 from . import planning
 from . import runner
@@ -87,6 +90,11 @@ class Result:
     plan: planning.Plan | None = None
     #: the customers' geometries as the file's WKB when they are the file's own points (for the writer), else None
     wkb: pa.ChunkedArray | None = None
+    #: per finding, each customer's margin from its threshold (display unit) and class: the mailing lists' ``rated``
+    rated: dict[str, tuple[np.ndarray, Any]] | None = None
+    #: the field readings checked against the screening and their per-zone table (None without [readings])
+    field_check: gpd.GeoDataFrame | None = None
+    field_check_by_zone: pd.DataFrame | None = None
     # set by geopress.nightly.track: the baseline's customers this run lacks, and the new_* mailing lists
     removed: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
@@ -334,6 +342,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         safe = np.where(zoned, zi, 0)
         hgl_high = np.where(zoned, zone_high[safe], np.nan)
         hgl_low = np.where(zoned, zone_low[safe], np.nan)
+        unc = {s.zone: s.hgl_uncertainty_ft for s in cfg.zones.sources}
+        hgl_unc = np.where(zoned, np.array([unc[z] for z in zones.zone_ids] or [0.0])[safe], np.nan)
     with clock.step("sample terrain"):
         terrain = joined.terrain if joined else raster_io.sample_terrain(
             cfg.terrain, cust.x, cust.y, cust.crs, shift, count=clock.counter("sample terrain", "customers"))
@@ -357,6 +367,8 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                                   psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
                              psi_top=p.psi_top, floors=floors, criteria=crit, findings=found)
+        margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+        sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
     with clock.step("target areas"):
         areas, area_layer, area_info = _target_areas(
             cfg, cust, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]), ground, floors, p, codes, found)
@@ -375,6 +387,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "psi_top": p.psi_top,
             "status": cls.status_names(codes),
             "reason": reason,
+            "margin_psi": margin,
+            "sigma_psi": sigma,
+            "confidence": confidence.classes(codes, margin, sigma),
             **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
             **{AREA_COLUMNS[name]: areas.member[name] for name in cls.FINDINGS},
         }
@@ -388,12 +403,24 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
+        shown = customers_in_units(customers, units)
+        # each finding's margin (in the display unit) and class, for its mailing list
+        rated = {name: (units.pressure_from_psi(m), confidence.rate(m, sigma)) for name, m in confidence.finding_margins(
+            psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit).items()}
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
-            customers_in_units(customers, units), id_field=id_field, mail_fields=cfg.customers.mail_fields,
-            letter_fields=cfg.customers.letter_fields).items()}
+            shown, id_field=id_field, mail_fields=cfg.customers.mail_fields, letter_fields=cfg.customers.letter_fields,
+            rated=rated, firm_only=cfg.output.mail_firm_only).items()}
+        mailing[confidence.VERIFICATION_LIST] = mailing_columns_in_units(confidence.verification_list(
+            shown, rated, id_field=id_field, fields=[*cfg.customers.mail_fields, *cfg.customers.letter_fields]), units)
+        summary = summary.merge(confidence.zone_counts(customers["zone"], customers["confidence"],
+                                                       [s.zone for s in cfg.zones.sources]), on="zone", how="left")
     # -- planning: serviceable band and best HGL per zone (geopress.planning) --
     with clock.step("best HGL"):
         summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
+    readings = by_zone = None
+    if cfg.readings is not None:  # read after the customers' results: they never depend on the readings
+        with clock.step("check field readings"):
+            readings, by_zone = field_check(cfg, zones, shift)
     info = {
         "geopress_version": __version__,
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
@@ -418,9 +445,15 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
         "target_areas": area_info,
+        "terrain_accuracy": terrain_accuracy(cfg),
+        "confidence": {"counts": {c: int((customers["confidence"] == c).sum()) for c in confidence.CLASSES},
+                       "mail_firm_only": cfg.output.mail_firm_only},
     }
+    if readings is not None:
+        info["field_check"] = field_check_info(cfg, readings, by_zone)
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan, wkb=cust.wkb, areas=area_layer)
+                  plan=plan, wkb=cust.wkb, areas=area_layer, field_check=readings,
+                  field_check_by_zone=by_zone, rated=rated)
 
 
 def _projected(x: np.ndarray, y: np.ndarray, crs: pyproj.CRS) -> tuple[np.ndarray, np.ndarray, float, pyproj.CRS]:
@@ -469,6 +502,81 @@ def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray,
     return areas, layer, info
 
 
+def terrain_accuracy(cfg: Config) -> dict[str, Any]:
+    """The DEM accuracy a run assumes, for run.json and the report: each raster's vertical RMSE, ft, or that the
+    config states none (then the DEM adds nothing to any uncertainty)."""
+    t = cfg.terrain
+    if t.vertical_rmse_ft is None:
+        return {"stated": False, "note": "terrain.vertical_rmse_ft not set: uncertainties leave the DEM out"}
+    return {"stated": True, "vertical_rmse_ft": {str(p): r for p, r in zip(t.paths, t.vertical_rmse_ft)}}
+
+
+def field_check(cfg: Config, zones: vector_io.Zones,
+                shift: datum_io.DatumShift) -> tuple[gpd.GeoDataFrame, pd.DataFrame]:
+    """The field readings of ``cfg.readings`` against the screening: each reading's zone and ground (the
+    customers' zone join, tie rule and terrain sampling), prediction, residual and check, and the per-zone table
+    (:mod:`geopress.fieldcheck`)."""
+    rc = cfg.readings
+    k = cfg.criteria.psi_per_ft
+    r = vector_io.read_readings(rc)
+    zi = assign_xy(r.x, r.y, r.crs, zones.polygons, zones.crs, zones.priority)
+    zoned = zi >= 0
+    safe = np.where(zoned, zi, 0)
+    source = {s.zone: s for s in cfg.zones.sources}
+
+    def per_zone(value: Callable[[Any], float]) -> np.ndarray:
+        table = np.array([value(source[z]) for z in zones.zone_ids] or [np.nan])
+        return np.where(zoned, table[safe], np.nan)
+
+    high = per_zone(lambda s: s.hgl_range(k)[0])
+    low = per_zone(lambda s: s.hgl_range(k)[1])
+    recorded = ~np.isnan(r.hgl_ft)
+    hgl_high, hgl_low = np.where(recorded, r.hgl_ft, high), np.where(recorded, r.hgl_ft, low)
+    terrain = raster_io.sample_terrain(cfg.terrain, r.x, r.y, r.crs, shift)
+    height = np.where(np.isnan(r.gauge_height_ft), rc.gauge_height_ft, r.gauge_height_ft)
+    default = (np.full(r.x.shape, rc.gauge_accuracy_psi) if rc.gauge_accuracy_psi is not None
+               else fieldcheck.grade_accuracy_psi(rc.gauge_grade, rc.gauge_span_psi, r.measured_psi))
+    gauge = np.where(np.isnan(r.accuracy_psi), default, r.accuracy_psi)
+    rmse = np.nan_to_num(terrain.rmse_ft, nan=0.0)  # a DEM of unstated accuracy adds nothing (run.json says so)
+    hgl_unc = np.nan_to_num(per_zone(lambda s: s.hgl_uncertainty_ft), nan=0.0)
+    rules = fieldcheck.Rules(outlier_psi=rc.outlier_psi, outlier_sigmas=rc.outlier_sigmas, bias_psi=rc.bias_psi,
+                             min_readings=rc.min_readings)
+    checked = fieldcheck.check_readings(
+        measured_psi=r.measured_psi, has_geometry=r.has_geometry, zoned=zoned, ground_ft=terrain.ground_ft,
+        gauge_height_ft=height, hgl_low_ft=hgl_low, hgl_high_ft=hgl_high, gauge_psi=gauge, dem_rmse_ft=rmse,
+        hgl_uncertainty_ft=hgl_unc, psi_per_ft=k, rules=rules)
+    zone = cls.names_at(zones.zone_ids, zi, zoned)
+    data = {
+        "reading": pd.array(r.ids, dtype="str"), "taken": r.taken, "zone": zone, "ground_ft": terrain.ground_ft,
+        "gauge_height_ft": height, "measured_psi": r.measured_psi, "hgl_recorded_ft": r.hgl_ft,
+        "hgl_low_ft": hgl_low, "hgl_high_ft": hgl_high, **{c: checked[c].to_numpy() for c in checked.columns
+                                                           if c != "check"},
+        "gauge_accuracy_psi": gauge, "dem_rmse_ft": rmse, "hgl_uncertainty_ft": hgl_unc, "check": checked["check"].array,
+    }
+    points = np.full(r.x.shape, None, dtype=object)
+    points[r.has_geometry] = shapely.points(r.x[r.has_geometry], r.y[r.has_geometry])
+    frame = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(points, crs=r.crs))
+    by_zone = fieldcheck.zone_table(zone=zone, checks=checked["check"].to_numpy(dtype=object),
+                                    residual_psi=checked["residual_psi"], sigma_psi=checked["sigma_psi"], x=r.x, y=r.y,
+                                    ids=r.ids, sources=cfg.zones.sources, psi_per_ft=k, rules=rules)
+    return frame, by_zone
+
+
+def field_check_info(cfg: Config, readings: pd.DataFrame, by_zone: pd.DataFrame) -> dict[str, Any]:
+    """What run.json records of the field check: counts per check, and per zone the bias and the outliers."""
+    counts = readings["check"].value_counts()
+    return {
+        "path": str(cfg.readings.path),
+        "readings": int(len(readings)),
+        "checks": {c: int(counts.get(c, 0)) for c in fieldcheck.CHECKS},
+        "zones_with_bias": by_zone.loc[by_zone["significant_bias"], "zone"].tolist(),
+        "by_zone": [{"zone": row["zone"], "readings": int(row["readings"]), "bias_psi": _r(row["bias_psi"]),
+                     "bias_ft": _r(row["bias_ft"]), "outliers": int(row["outliers"]),
+                     "significant_bias": bool(row["significant_bias"]), "pattern": row["pattern"]}
+                    for row in by_zone.to_dict("records")],
+    }
+
+
 def _ground_row(zg: guards.ZoneGround, psi_per_ft: float) -> dict[str, Any]:
     """A zone's ground against its HGL, as run.json and ``check`` give it (ft, psi, rounded to 0.1)."""
     lo, hi = zg.psi_range(psi_per_ft)
@@ -509,6 +617,9 @@ def later_layers(result: Result) -> dict[str, write_io.Layer]:
         layers["band_limits"] = result.plan.limits
     if result.removed is not None:
         layers["removed_customers"] = result.removed
+    if result.field_check is not None:
+        layers["field_check"] = result.field_check
+        layers["field_check_by_zone"] = result.field_check_by_zone
     return layers
 
 
@@ -657,7 +768,8 @@ def style_path(config: Config, layer: str) -> Path:
 def output_targets(config: Config) -> list[Path]:
     """Every file a run of ``config`` can write."""
     out = config.output
-    names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
+    names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()],
+             confidence.VERIFICATION_LIST]
     lists = [out.mailing_dir / f"{n}{suffix}" for n in names for suffix in (".csv", ".xlsx")]
     styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes", "target_areas"]
     return [out.path, nightly.baseline_link(out.path), *lists, *[style_path(config, layer) for layer in styled],
@@ -683,7 +795,8 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     path = report_path(cfg)
     info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
     info["outputs"].append(str(path))
-    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info, result.areas)
+    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info, result.areas,
+                                result.field_check, result.field_check_by_zone)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 
@@ -793,7 +906,8 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
     """Validate the config and every input as a run would, and say how they fit together; write nothing.
 
     Reads where the customers are (not their mail fields), samples the terrain
-    under them and joins them to the zones, then applies the run's guards
+    under them and joins them to the zones, checks the field readings (when
+    the config has them) as a run would, then applies the run's guards
     (:func:`apply_guards`): too little coverage or ground off the Earth raise
     InputError, a zone whose ground looks wrong against its HGL warns.
 
@@ -856,6 +970,12 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
         lines.append(f"  {zg.zone} ({src.kind}, {zg.customers} customers): {ground} under {hgl}{psi}{flag}")
     for o in ov:
         lines.append(f"overlap: zones {o['zones'][0]} and {o['zones'][1]} share {o['area']:,.1f} square CRS units")
+    if cfg.readings is not None:
+        with _recorded_warnings(shown):
+            readings, _ = field_check(cfg, zones, shift)
+        checks = readings["check"].value_counts()
+        lines.append(f"readings: {len(readings)} from {cfg.readings.path} ("
+                     + ", ".join(f"{checks[c]} {c}" for c in fieldcheck.CHECKS if checks.get(c, 0)) + ")")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
     if cfg.output.database is not None:
         lines.append(f"output: published into schema {cfg.output.schema} of database '{redact_dsn(cfg.output.database)}'"

@@ -238,7 +238,8 @@ def _xy(geom: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
 
 
 def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
-                info: dict[str, Any], areas: gpd.GeoDataFrame | None = None) -> str:
+                info: dict[str, Any], areas: gpd.GeoDataFrame | None = None,
+                readings: gpd.GeoDataFrame | None = None, readings_by_zone: pd.DataFrame | None = None) -> str:
     """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`).
 
     Each zone map is drawn in the CRS of its zone's first raster; the maps of
@@ -314,7 +315,17 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
     if areas is not None:
         shapes = areas.geometry.to_numpy() if areas.crs is None or areas.crs.equals(crs) else areas.to_crs(crs).geometry.to_numpy()
         areas_drawn = report.AreasMap(background=overview, areas=list(zip(areas["area"], areas["finding"], shapes)))
+    field = None
+    if readings is not None:
+        from . import report_field
+
+        located = readings.geometry.notna().to_numpy()
+        rx, ry = _xy(readings.geometry.to_numpy()[located], readings.crs, crs)
+        fmap = report_field.FieldMap(terrain=background, frame=frame, outlines=outlines, x=rx, y=ry,
+                                     residual_psi=readings["residual_psi"].to_numpy(dtype=np.float64)[located],
+                                     check=readings["check"].to_numpy(dtype=object)[located])
+        field = report_field.section(readings, readings_by_zone, fmap, info.get("field_check", {}), units)
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
                          criteria=cfg.criteria, units=units, overview=overview, interactive=interactive,
                          areas=None if areas is None else pd.DataFrame(areas.drop(columns=areas.geometry.name)),
-                         areas_drawn=areas_drawn)
+                         areas_drawn=areas_drawn, field=field)

@@ -79,6 +79,8 @@ class TankSource:
     zone: str
     high_water_ft: float
     low_water_ft: float
+    #: one standard uncertainty of the HGL, ft (level sensor, datum of the records); 0 when not known
+    hgl_uncertainty_ft: float = 0.0
     kind: Literal["tank"] = "tank"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:
@@ -93,6 +95,8 @@ class PrvSource:
     zone: str
     valve_elevation_ft: float
     setting_psi: float
+    #: one standard uncertainty of the HGL, ft (the valve's setting drift, its surveyed elevation); 0 when not known
+    hgl_uncertainty_ft: float = 0.0
     kind: Literal["prv"] = "prv"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:
@@ -107,6 +111,8 @@ class PumpSource:
 
     zone: str
     discharge_hgl_ft: float
+    #: one standard uncertainty of the HGL, ft (the discharge gauge, its elevation); 0 when not known
+    hgl_uncertainty_ft: float = 0.0
     kind: Literal["pump"] = "pump"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:

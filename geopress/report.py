@@ -806,6 +806,8 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "by_status": [str(int(r.get(f"n_{s}", 0))) for s in FLAGGED_LAYERS],
             "by_finding": [str(int(r.get(f"n_{c}", 0))) for c in FINDING_COLUMNS.values()],
             "flagged": str(flagged), "best": best,
+            "firm": str(int(r.get("n_firm", 0))), "borderline": str(int(r.get("n_borderline", 0))),
+            "near_limit": str(int(r.get("n_near_limit", 0))), "unrated": str(int(r.get("n_unrated", 0))),
             "flagged_at_best": _fmt(r.get("flagged_at_best"), 0) if "flagged_at_best" in r else "–",
             "band": band,
         })
@@ -845,6 +847,20 @@ def source_rows(sources: Sequence[Mapping[str, Any]], summary: pd.DataFrame, uni
     return rows
 
 
+def dem_accuracy_text(accuracy: Mapping[str, Any], criteria: Criteria, units: Units) -> str:
+    """The DEM accuracy a run assumed (run.json's ``terrain_accuracy``), with what it means in pressure."""
+    if not accuracy.get("stated"):
+        return ("not stated (terrain.vertical_rmse_ft): the flags' confidence is unrated and the field check's "
+                "sigmas leave the DEM out")
+    parts = []
+    for path, rmse_ft in accuracy["vertical_rmse_ft"].items():
+        length = float(units.length_from_ft(rmse_ft))
+        psi = float(units.pressure_from_psi(criteria.psi_per_ft * rmse_ft))
+        parts.append(f"{path.rsplit('/', 1)[-1]}: vertical RMSE {length:.2f} {units.length} "
+                     f"({psi:.2f} {units.pressure} at one standard deviation)")
+    return "; ".join(parts) + "; a flag is firm when its margin exceeds 1.96 of these (ASPRS 95 % convention)"
+
+
 def _plain(value: Any) -> Any:
     """Nested run.json data as text-friendly rows for the template's generic renderer."""
     if isinstance(value, Mapping):
@@ -858,7 +874,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
            pressures: Mapping[str, tuple[np.ndarray, np.ndarray]], criteria: Criteria, units: Units,
            overview: OverviewMap | None = None, interactive: InteractiveMap | None = None,
            areas: pd.DataFrame | None = None, areas_drawn: AreasMap | None = None,
-           title: str = "geopress static pressure screening") -> str:
+           field: Mapping[str, Any] | None = None, title: str = "geopress static pressure screening") -> str:
     """The report page as HTML text.
 
     ``pressures`` maps zone -> (psi_min, psi_max) arrays in psi; ``maps``
@@ -867,6 +883,8 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
     ``info`` is what run.json records (its ``changes`` section is shown when
     there was an earlier run to compare with); ``areas`` the target areas'
     table (geopress.targets) and ``areas_drawn`` their map (each left out when None).
+    ``field`` is the field-check section (:func:`geopress.report_field.section`),
+    left out when None.
     """
     env = jinja2.Environment(loader=jinja2.PackageLoader("geopress", "templates"),
                              autoescape=jinja2.select_autoescape(["html", "j2"]), undefined=jinja2.StrictUndefined)
@@ -892,6 +910,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         "story height": f"{float(units.length_from_ft(criteria.floor_height_ft)):.4g} {units.length}",
     }
     sources = ((info.get("config") or {}).get("zones") or {}).get("source") or []
+    crit["DEM accuracy assumed"] = dem_accuracy_text(info.get("terrain_accuracy") or {}, criteria, units)
     imap = None
     if interactive is not None:
         imap = {"spec": _json_for_script(interactive_figure(interactive, units)), "note": interactive_note(interactive),
@@ -905,5 +924,5 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
                                           "settings": (info.get("target_areas") or {}),
                                           "map": areas_map(areas_drawn, units) if areas_drawn is not None else None},
         overview=overview_map(overview, units) if overview is not None else None, imap=imap,
-        sources=source_rows(sources, summary, units),
+        sources=source_rows(sources, summary, units), field=field,
     )

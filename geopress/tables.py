@@ -10,7 +10,7 @@ formula a leading apostrophe (the usual CSV-injection defence).
 
 from __future__ import annotations
 
-from typing import Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -21,6 +21,8 @@ from .findings import AREA_COLUMNS, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, S
 from .pressure import Source
 
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
+#: the confidence classes a flagged customer can have, surest first (see geopress.confidence)
+ADDRESS_CLASSES = ("firm", "borderline", "unrated")
 
 
 def neutralise(value: object) -> object:
@@ -110,7 +112,7 @@ def in_finding(customers: pd.DataFrame, finding: str) -> np.ndarray:
 
 def mailing_list(
     customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str],
-    letter_fields: Sequence[str] = (),
+    letter_fields: Sequence[str] = (), rated: tuple[np.ndarray, Any] | None = None, firm_only: bool = False,
 ) -> pd.DataFrame:
     """One row per distinct mailing address among customers with the finding ``status`` (see :func:`in_finding`).
 
@@ -124,12 +126,23 @@ def mailing_list(
     then by first account (then by first appearance of the address). Without
     mail fields, one row per customer. Text is as in ``customers``: see
     :func:`neutralise_frame` for a CSV.
+
+    ``rated``: each customer's margin from this finding's threshold (in the
+    display unit of ``worst_psi``) and its confidence class for the finding
+    (:func:`geopress.confidence.rate`); with it each row has ``margin_psi``
+    (its accounts' largest: that of the most severe) and ``confidence`` (the
+    surest of its accounts': firm, borderline, unrated), and ``firm_only``
+    keeps only the accounts whose flag is firm.
     """
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
     area = AREA_COLUMNS[status] if AREA_COLUMNS[status] in customers.columns else None
-    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi", *(["target_area"] if area else [])]
-    rows = np.flatnonzero(in_finding(customers, status))
+    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi",
+            *(["margin_psi", "confidence"] if rated is not None else []), *(["target_area"] if area else [])]
+    selected = in_finding(customers, status)
+    if firm_only:
+        selected = selected & pd.Series(pd.array(rated[1], dtype="str")).eq("firm").to_numpy(dtype=bool, na_value=False)
+    rows = np.flatnonzero(selected)
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
@@ -177,6 +190,19 @@ def mailing_list(
     out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
     out["zones"] = pd.array(zones.take(out_order), dtype="str")
     out["worst_psi"] = worst[out_order]
+    if rated is not None:
+        margin = pd.Series(np.asarray(rated[0], dtype=np.float64)[rows]).groupby(group, sort=False).max()
+        best = np.full(n_groups, np.nan)
+        best[margin.index.to_numpy()] = margin.to_numpy().round(2)
+        # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
+        classes = np.asarray(pd.array(rated[1], dtype="str").to_numpy(dtype=object, na_value=None))[rows]
+        rank = pd.Series(pd.Categorical(classes, categories=ADDRESS_CLASSES).codes).replace(-1, 99)
+        surest = rank.groupby(group, sort=False).min()
+        code = np.full(n_groups, 99)
+        code[surest.index.to_numpy()] = surest.to_numpy()
+        names = np.array([*ADDRESS_CLASSES, None], dtype=object)
+        out["margin_psi"] = best[out_order]
+        out["confidence"] = pd.array(names[np.minimum(code, len(ADDRESS_CLASSES))][out_order], dtype="str")
     if area:
         out["target_area"] = pd.array(_distinct_per_group(sub[area], order, group_of_sorted, n_groups).take(out_order),
                                       dtype="str")
@@ -184,11 +210,14 @@ def mailing_list(
 
 
 def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
-                  letter_fields: Sequence[str] = ()) -> dict[str, pd.DataFrame]:
-    """Every finding's mailing list, keyed by output name (``high_pressure`` ...)."""
+                  letter_fields: Sequence[str] = (), rated: Mapping[str, tuple[np.ndarray, Any]] | None = None,
+                  firm_only: bool = False) -> dict[str, pd.DataFrame]:
+    """Every finding's mailing list, keyed by output name (``high_pressure`` ...); ``rated`` maps each finding to
+    the ``rated`` of :func:`mailing_list`, and ``firm_only`` is as there."""
     return {
         FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields,
-                                             letter_fields=letter_fields)
+                                             letter_fields=letter_fields, firm_only=firm_only,
+                                             rated=None if rated is None else rated[status])
         for status in FLAGGED_LAYERS
     }
 

@@ -54,7 +54,7 @@ def units_for(system: str) -> Units:
     return SI if system == "si" else US
 
 
-PRESSURE_COLUMNS = ("psi_max", "psi_min", "psi_top")
+PRESSURE_COLUMNS = ("psi_max", "psi_min", "psi_top", "margin_psi", "sigma_psi")
 
 
 def customers_in_units(customers: pd.DataFrame, units: Units) -> pd.DataFrame:
@@ -65,7 +65,9 @@ def customers_in_units(customers: pd.DataFrame, units: Units) -> pd.DataFrame:
 
 
 def mailing_columns_in_units(df: pd.DataFrame, units: Units) -> pd.DataFrame:
-    """A mailing list built from :func:`customers_in_units` with ``worst_psi`` renamed ``worst_kpa`` in SI."""
+    """A mailing list built from :func:`customers_in_units` with its psi columns (``worst_psi``, ``margin_psi``
+    ...) renamed ``..._kpa`` in SI."""
     if units.system == "us":
         return df
-    return df.rename(columns={"worst_psi": "worst_kpa"})
+    return df.rename(columns={c: c[:-4] + "_kpa" if c.endswith("_psi") else "kpa_" + c[4:]
+                              for c in df.columns if c.endswith("_psi") or c.startswith("psi_")})

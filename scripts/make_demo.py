@@ -15,6 +15,7 @@ Files written to the output folder (default: ``data_demo/`` beside
 * ``customers_parcels.gpkg`` layer ``lots``: polygon parcels, same fields
 * ``geopress.toml``         demo config (points)
 * ``geopress_lots.toml``    alternative config (polygon lots)
+* ``readings.gpkg``         layer ``gauges``: invented field pressure readings
 * ``README.md``             description of the data set
 
 The script is deterministic: a fixed seed, no timestamps in the GeoTIFF and
@@ -920,6 +921,86 @@ def status_table(statuses, zones) -> list[str]:
 
 
 # ---------------------------------------------------------------------------
+# Field readings
+# ---------------------------------------------------------------------------
+
+#: the demo DEM stands in for a lidar DEM: QL2 lidar's RMSEz of 10 cm (USGS Lidar Base Specification, from
+#: memory) is 0.33 ft
+DEM_RMSE_FT = 0.33
+#: Lowfield's readings are all this much higher than the screening predicts, in ft of head: as if the PRV's
+#: HGL were on another datum than the DEM (a datum-like offset)
+LOWFIELD_OFFSET_FT = 4.0
+#: the closed-valve cluster: two Ridgeway readings this many psi below the prediction
+CLOSED_VALVE_PSI = (-19.0, -21.5)
+#: hydrant outlets sit about 2 ft above grade (common practice, no source); loggers are read at grade
+HYDRANT_GAUGE_FT = 2.0
+#: hydrant gauges: ASME B40.100 Grade A, 0-160 psi (1.6 psi mid-scale); loggers: 0.5 psi (a Grade 3A 0-200 psi)
+GAUGE_SPAN_PSI = 160.0
+LOGGER_ACCURACY_PSI = 0.5
+#: readings per zone
+N_READINGS = {PRV["zone"]: 12, TANK["zone"]: 14, PUMP["zone"]: 8}
+
+
+def _points_in(poly, n, rng, placer):
+    """``n`` points inside ``poly`` (local metres), off the quarry pit and 20 m from any zone boundary."""
+    umin, vmin, umax, vmax = poly.bounds
+    got_u, got_v = [], []
+    while len(got_u) < n:
+        u, v = rng.uniform(umin, umax), rng.uniform(vmin, vmax)
+        p = shapely.Point(u, v)
+        if poly.contains(p) and not placer.pit_keepout.contains(p) and placer.boundaries.distance(p) > 20.0:
+            got_u.append(u)
+            got_v.append(v)
+    return np.array(got_u), np.array(got_v)
+
+
+def field_readings(zones_local, dem, rng) -> gpd.GeoDataFrame:
+    """Invented static pressure readings: hydrant flow tests (static reading, gauge 2 ft above grade),
+    pressure loggers (at grade) and complaint call-outs. Each is the pressure at the gauge from the DEM
+    as geopress samples it (bilinear), plus gauge noise well within the gauge's accuracy; Lowfield's are
+    all LOWFIELD_OFFSET_FT higher, and two Ridgeway readings a few tens of metres apart read about
+    20 psi low (a closed valve between them and the tank). Ridgeway's hydrant tests record the tank
+    level at the time (SCADA)."""
+    placer = Placer(zones_local, rng=None)
+    hgls = zone_hgls_ft()
+    rows = []
+    for zone, n in N_READINGS.items():
+        u, v = _points_in(zones_local[zone], n, rng, placer)
+        for i in range(n):
+            kind = ("hydrant flow test", "pressure logger", "complaint call-out")[i % 3]
+            level = (float(np.round(rng.uniform(hgls[zone][0] + 1, hgls[zone][1] - 1), 1))
+                     if zone == TANK["zone"] and kind == "hydrant flow test" else None)
+            rows.append(dict(zone=zone, u=u[i], v=v[i], kind=kind, level=level))
+    # the cluster: two call-outs on one street of Ridgeway, 40 m apart
+    cu, cv = _points_in(zones_local[TANK["zone"]], 1, rng, placer)
+    for du, dpsi in zip((0.0, 40.0), CLOSED_VALVE_PSI):
+        rows.append(dict(zone=TANK["zone"], u=cu[0] + du, v=cv[0], kind="complaint call-out", level=None,
+                         valve=dpsi))
+    records = {k: [] for k in ("tag", "kind", "taken", "static_psi", "gauge_ft", "tank_level_ft", "accuracy_psi")}
+    geoms = []
+    for i, r in enumerate(rows):
+        height = HYDRANT_GAUGE_FT if r["kind"] == "hydrant flow test" else 0.0
+        low, high = hgls[r["zone"]]
+        hgl = r["level"] if r["level"] is not None else (low + high) / 2
+        if r["zone"] == PRV["zone"]:
+            hgl += LOWFIELD_OFFSET_FT
+        ground = float(bilinear_ground_ft(dem, np.array([r["u"]]), np.array([r["v"]]))[0])
+        accuracy = LOGGER_ACCURACY_PSI if r["kind"] == "pressure logger" else None
+        noise = rng.normal(0.0, 0.3)  # a third or less of either gauge's accuracy
+        psi = PSI_PER_FT * (hgl - ground - height) + noise + r.get("valve", 0.0)
+        prefix = {"hydrant flow test": "HYD", "pressure logger": "LOG", "complaint call-out": "CALL"}[r["kind"]]
+        records["tag"].append(f"{prefix}-{101 + i}")
+        records["kind"].append(r["kind"])
+        records["taken"].append(f"2026-{5 + i % 5:02d}-{1 + (7 * i) % 27:02d}T{8 + i % 9:02d}:{(13 * i) % 60:02d}")
+        records["static_psi"].append(round(psi, 1))
+        records["gauge_ft"].append(height)
+        records["tank_level_ft"].append(r["level"])
+        records["accuracy_psi"].append(accuracy)
+        geoms.append(shapely.Point(r["u"] + WEST, r["v"] + SOUTH))
+    return gpd.GeoDataFrame(records, geometry=geoms, crs=CRS)
+
+
+# ---------------------------------------------------------------------------
 # Config and README
 # ---------------------------------------------------------------------------
 
@@ -946,6 +1027,8 @@ floors_field = "floors"
 paths = ["dem.tif"]
 vertical_units = "m"
 method = "bilinear"
+# the synthetic DEM stands in for QL2 lidar (RMSEz 10 cm)
+vertical_rmse_ft = {DEM_RMSE_FT}
 
 [zones]
 path = "zones.gpkg"
@@ -983,6 +1066,19 @@ mailing_dir = "{mailing_dir}"
 # Publish the same layers into a PostGIS schema too (it must exist; the role needs CREATE on it):
 # database = "service=gis"
 # schema = "pressure"
+
+# invented field readings: hydrant flow tests, pressure loggers, complaint call-outs
+[readings]
+path = "readings.gpkg"
+layer = "gauges"
+pressure_field = "static_psi"
+id_field = "tag"
+time_field = "taken"
+gauge_height_field = "gauge_ft"
+hgl_field = "tank_level_ft"
+accuracy_field = "accuracy_psi"
+gauge_grade = "A"
+gauge_span_psi = {GAUGE_SPAN_PSI:g}
 """
 
 
@@ -1015,6 +1111,7 @@ the script; edit the script, not this file.
 | `customers_parcels.gpkg` | layer `lots`: {N_LOTS} polygon parcels, same fields |
 | `geopress.toml` | demo config for the meter points |
 | `geopress_lots.toml` | the same config for the polygon lots |
+| `readings.gpkg` | layer `gauges`: {sum(N_READINGS.values()) + 2} invented field readings of static pressure |
 
 All layers use EPSG:32631 (WGS 84 / UTM zone 31N), metres. The DEM covers
 easting {WEST:.0f} to {EAST:.0f} and northing {SOUTH:.0f} to {NORTH:.0f}.
@@ -1067,6 +1164,24 @@ which for these rectangles is the centre):
 ```
 {chr(10).join(lot_table)}
 ```
+
+## Field readings
+
+`readings.gpkg`, layer `gauges`: fields `tag`, `kind` (hydrant flow test,
+pressure logger, complaint call-out), `taken` (date and time), `static_psi`,
+`gauge_ft` (height above ground: {HYDRANT_GAUGE_FT:g} ft at hydrants, 0 for the
+others), `tank_level_ft` (the Ridgeway tank's level at the time, from SCADA,
+for its hydrant tests) and `accuracy_psi` (loggers: {LOGGER_ACCURACY_PSI:g} psi;
+the hydrant gauges are Grade A of 0 to {GAUGE_SPAN_PSI:g} psi, as the config says).
+Each is the pressure the DEM predicts at the gauge plus a little gauge noise,
+except:
+
+* every `{PRV['zone']}` reading is {LOWFIELD_OFFSET_FT:g} ft of head
+  ({PSI_PER_FT * LOWFIELD_OFFSET_FT:.2f} psi) higher: a datum-like offset the
+  field check should find as the zone's bias;
+* two `{TANK['zone']}` call-outs 40 m apart read {-CLOSED_VALVE_PSI[0]:g} and
+  {-CLOSED_VALVE_PSI[1]:g} psi low: a closed valve, which the field check
+  should show as a cluster of outliers.
 
 Lots placed on purpose to test polygon edge cases (status at the
 interior point):
@@ -1143,6 +1258,8 @@ def main(argv=None) -> int:
     edge_rows = [(t, a, st) for t, a, st
                  in zip(lot_tags, lot_attrs["account"], l_status)
                  if t != "subdivision"]
+
+    write_layer(field_readings(zones_local, dem, rng_for(8)), out / "readings.gpkg", "gauges")
 
     (out / "geopress.toml").write_text(
         config_text("customers.gpkg", "parcels", "out/pressure.gpkg",

@@ -442,3 +442,52 @@ def test_an_input_field_named_like_a_result_column_is_refused(tmp_path, key):
     expected_key = "customers.floors_field" if key == "floors_field" else "customers.mail_fields[1]"
     assert err.key == expected_key
     assert "'status' has the name of a result column" in str(err)
+
+
+# ---------------------------------------------------------------- field readings and DEM accuracy
+
+READINGS_SECTION = """
+[readings]
+path = "readings.gpkg"
+pressure_field = "static_psi"
+gauge_grade = "a"
+gauge_span_psi = 160
+"""
+
+
+def test_readings_section_and_round_trip(tmp_path):
+    text = BASE_CONFIG.replace('method = "bilinear"', 'method = "bilinear"\nvertical_rmse_ft = 2.69') + READINGS_SECTION
+    cfg = load_config(write(tmp_path, text))
+    assert cfg.readings.path == tmp_path / "readings.gpkg" and cfg.readings.gauge_grade == "A"
+    assert cfg.readings.outlier_psi == 5.0 and cfg.readings.min_readings == 3
+    assert cfg.terrain.vertical_rmse_ft == (2.69,)
+    assert tmp_path / "readings.gpkg" in cfg.input_paths()
+    assert config_from_dict(cfg.to_dict(), base_dir=tmp_path / "elsewhere") == cfg
+
+
+def test_vertical_rmse_per_raster_follows_the_globs(tmp_path):
+    for name in ("a1.tif", "a2.tif", "b.tif"):
+        (tmp_path / name).write_bytes(b"")
+    text = BASE_CONFIG.replace('paths = ["dem.tif"]', 'paths = ["b.tif", "a*.tif"]\nvertical_rmse_ft = [0.33, 2.69]')
+    cfg = load_config(write(tmp_path, text))
+    assert [p.name for p in cfg.terrain.paths] == ["b.tif", "a1.tif", "a2.tif"]
+    assert cfg.terrain.vertical_rmse_ft == (0.33, 2.69, 2.69)
+    assert cfg.terrain.rmse_of(tmp_path / "a2.tif") == 2.69
+
+
+@pytest.mark.parametrize("old, new, key", [
+    ('method = "bilinear"', 'method = "bilinear"\nvertical_rmse_ft = [1.0, 2.0]', "terrain.vertical_rmse_ft"),
+    # 8,200 "ft": a value in cm, no DEM's RMSE
+    ('method = "bilinear"', 'method = "bilinear"\nvertical_rmse_ft = 8200', "terrain.vertical_rmse_ft"),
+    ('method = "bilinear"', 'method = "bilinear"\nvertical_rmse_ft = -1', "terrain.vertical_rmse_ft"),
+    ("setting_psi = 60.0", "setting_psi = 60.0\nhgl_uncertainty_ft = -2", "zones.source[0].hgl_uncertainty_ft"),
+    ('gauge_grade = "a"', 'gauge_grade = "B"', "readings.gauge_grade"),
+    ("gauge_span_psi = 160", "", "readings.gauge_grade"),
+    ('gauge_grade = "a"\ngauge_span_psi = 160', "", "readings"),
+    ('gauge_span_psi = 160', "gauge_span_psi = 160\nmin_readings = 2.5", "readings.min_readings"),
+])
+def test_readings_and_accuracy_errors_name_the_key(tmp_path, old, new, key):
+    text = (BASE_CONFIG + READINGS_SECTION).replace(old, new, 1)
+    with pytest.raises(ConfigError) as info:
+        load_config(write(tmp_path, text))
+    assert info.value.key == key, str(info.value)

@@ -30,10 +30,10 @@ from geopress.io import write as write_io
 from nightly_support import error_line, good_run, run, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
-#: renames in a second run's commit: the journal, then a backup and a new file for each of 29 outputs
-#: (GeoPackage, 4 mailing lists and 4 new_* lists as CSV and .xlsx, 9 layer styles with the target areas',
-#: report.html, the baseline's link, run.json).
-COMMIT_RENAMES = 1 + 2 * 29
+#: renames in a second run's commit: the journal, then a backup and a new file for each of 31 outputs
+#: (GeoPackage, 4 mailing lists, 4 new_* lists and the field-verification list as CSV and .xlsx, 9 layer
+#: styles with the target areas', report.html, the baseline's link, run.json).
+COMMIT_RENAMES = 1 + 2 * 31
 
 
 def disk_full(*args, **kwargs):

@@ -384,11 +384,14 @@ def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     mailing = crafted.parent / "out" / "mailing"
     lists = [f"{n}{suffix}" for n in ("above_hgl", "high_pressure", "low_pressure", "upper_floors")
              for suffix in (".csv", ".xlsx")]
-    assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists])
+    assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists]
+                                                               + ["field_verification.csv", "field_verification.xlsx"])
     high = read_csv(mailing / "high_pressure.csv")
-    # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
+    # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0, 5.95 psi over
+    # 80; the config states no DEM accuracy, so the flag is unrated
     assert high == [{"owner": "Owner H", "mail_address": "9 Low St", "accounts": "A-high; A-high-2",
-                     "customer_count": "2", "zones": "Main", "worst_psi": "86.0", "target_area": ""}]  # no area
+                     "customer_count": "2", "zones": "Main", "worst_psi": "86.0", "margin_psi": "5.95",
+                     "confidence": "unrated", "target_area": ""}]  # no area
     low = read_csv(mailing / "low_pressure.csv")
     assert [(r["owner"], r["mail_address"], r["accounts"]) for r in low] == [("'=cmd", "'-12 Rear", "A-low")]
     above = read_csv(mailing / "above_hgl.csv")
@@ -558,14 +561,16 @@ def test_run_json_records_the_run(crafted):
     assert [i["path"] for i in info["inputs"]] == [str(root / "customers.gpkg"), str(root / "dem.tif"),
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
+    lists = [f"{n}{suffix}" for n in ("above_hgl", "low_pressure", "high_pressure", "upper_floors")
+             for suffix in (".csv", ".xlsx")]
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
-        for n in ("above_hgl", "low_pressure", "high_pressure", "upper_floors") for suffix in (".csv", ".xlsx")
+        str(root / "out/mailing" / name)
+        for name in [*lists, "field_verification.csv", "field_verification.xlsx", *[f"new_{n}" for n in lists]]
     ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
     assert info["xlsx"] == {"written": True, "reason": None}
     assert info["styles"] == {"written": True, "layers": STYLED}
     assert info["config"]["zones"]["source"][0] == {"zone": "Main", "high_water_ft": 1200.0, "low_water_ft": 1180.0,
-                                                    "kind": "tank"}
+                                                    "hgl_uncertainty_ft": 0.0, "kind": "tank"}
     assert info["terrain"][0]["vertical_unit"] == "ft" and info["terrain"][0]["customers_sampled"] == 11
     assert info["started"] <= info["finished"]
     assert "sample terrain" in info["timings_s"] and info["timings_s"]["write outputs"] > 0
@@ -586,7 +591,8 @@ def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypa
     assert set(before) == {"out/pressure.gpkg", "out/.pressure.gpkg.baseline.gpkg", "out/run.json", "out/report.html"} | {
         f"out/mailing/{p}{n}{suffix}" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
                                                                        "upper_floors") for suffix in (".csv", ".xlsx")
-    } | {f"out/pressure.{layer}.sld" for layer in STYLED}
+    } | {f"out/pressure.{layer}.sld" for layer in STYLED} | {"out/mailing/field_verification.csv",
+                                                             "out/mailing/field_verification.xlsx"}
     # a second run that would change every output, and runs out of space part way
     crafted.write_text(crafted.read_text().replace("high_water_ft = 1200.0", "high_water_ft = 1190.0"))
 
@@ -740,6 +746,19 @@ def test_cli_demo(tmp_path, invoke):
     # and the report lists target areas with their settings
     html = (tmp_path / "demo" / "report.html").read_text(encoding="utf-8")
     assert 'id="target-areas-table"' in html and "zone PRV at an HGL of" in html
+    # the demo's invented readings (scripts/make_demo.py): Lowfield's are all 4 ft of head high, and two Ridgeway
+    # call-outs read about 20 psi low close together
+    by_zone = pyogrio.read_dataframe(tmp_path / "demo" / "pressure.gpkg", layer="field_check_by_zone").set_index("zone")
+    # 12 readings with 0.3 psi of noise (0.7 ft): their median is within 0.5 ft of the offset
+    assert by_zone.loc["Lowfield", "bias_ft"] == pytest.approx(4.0, abs=0.5)
+    assert by_zone.loc["Lowfield", "significant_bias"] and by_zone.loc["Lowfield", "pattern"] == "steady"
+    assert not by_zone.loc["Ridgeway", "significant_bias"] and by_zone.loc["Ridgeway", "pattern"] == "cluster"
+    assert not by_zone.loc["Summit", "significant_bias"] and by_zone.loc["Summit", "outliers"] == 0
+    readings = pyogrio.read_dataframe(tmp_path / "demo" / "pressure.gpkg", layer="field_check")
+    assert sorted(readings.loc[readings["check"] == "outlier", "reading"]) == ["CALL-135", "CALL-136"]
+    section = html[html.index('id="field-check"'):html.index('id="inputs"')]
+    assert "significant bias" in section and "closed valve" in section and "CALL-135" in section
+    assert section.count("data:image/png") == 2  # residual against ground, and the map of residuals
 
 
 # ---------------------------------------------------------------- input problems

@@ -107,6 +107,9 @@ def test_si_units_convert_the_mailing_lists(world, tmp_path):
     si = geopress.run(load_scenario(world.config_path, ["output.report=false", "output.units=si"], replace_outputs=True), write=False)
     for name, df in us.mailing.items():
         other = si.mailing[name]
+        if name == "field_verification":  # one row per borderline flag, its pressures psi_* in US and kpa_* in SI
+            assert "psi_min" in df.columns and "kpa_min" in other.columns and "margin_kpa" in other.columns
+            continue
         assert "worst_psi" in df.columns and "worst_kpa" in other.columns and "worst_psi" not in other.columns
         # kPa = psi * 6.894757 (NIST SP 811: 1 psi = 6,894.757 Pa); both columns are rounded to 0.1, so
         # compare against the unrounded psi (the customers layer) converted, within half a 0.1 kPa step

@@ -92,7 +92,10 @@ class TerrainResult:
     ``ranges`` maps each raster group's label to its unit and the lowest and
     highest elevation sampled from it, ft (for :mod:`geopress.guards`).
     ``outside_datum_grid`` counts customers on a raster but outside the
-    datum grid (they have no ground on the HGLs' datum).
+    datum grid (they have no ground on the HGLs' datum). ``rmse_ft``: per
+    point, the vertical RMSE (``terrain.vertical_rmse_ft``) of the raster
+    that gave its ground, ft; for tiles read as one mosaic, the largest of
+    theirs; NaN where no raster gave a ground or the config states none.
     """
 
     ground_ft: np.ndarray
@@ -100,6 +103,11 @@ class TerrainResult:
     inside_any: int = 0
     ranges: dict[str, tuple[str, float, float]] = field(default_factory=dict)
     outside_datum_grid: int = 0
+    rmse_ft: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.rmse_ft is None:
+            self.rmse_ft = np.full(self.ground_ft.shape, np.nan)
 
 
 def _open(path: Path):
@@ -344,7 +352,8 @@ def sample_terrain(cfg: TerrainConfig, x: np.ndarray, y: np.ndarray, crs: CRS, s
         result.outside_datum_grid += int(np.isnan(offsets).sum())
         ft[got] += offsets
         ground[todo] = ft
-        log.info("sampled %d customers from %s", got.size, group.label())
+        result.rmse_ft[todo[got]] = max(cfg.rmse_of(t.path) for t in group.tiles)
+        log.info("sampled %d points from %s", got.size, group.label())
     result.inside_any = int(inside_any.sum())
     if count is not None:
         count(total, total)

@@ -1,4 +1,4 @@
-"""Reading the customers and zones layers with pyogrio.
+"""Reading the customers, zones and field-readings layers with pyogrio.
 
 Errors name the file, the layer and the field, and say what to do.
 """
@@ -21,7 +21,7 @@ import pyogrio
 import shapely
 from pyproj import CRS
 
-from ..config import CustomersConfig, ZonesConfig
+from ..config import CustomersConfig, ReadingsConfig, ZonesConfig
 from ..errors import ConfigError, GeometryWarning, InputError
 from ..zones import repair
 
@@ -176,7 +176,8 @@ def _located(path: Path, layer: str, info: dict, key: str) -> None:
     if info.get("geometry_type") is None:
         hint = ("give it point columns (for a CSV, GDAL's open options X_POSSIBLE_NAMES and Y_POSSIBLE_NAMES, e.g. "
                 "ogr2ogr -oo X_POSSIBLE_NAMES=lon -oo Y_POSSIBLE_NAMES=lat -a_srs EPSG:4326 customers.gpkg "
-                "accounts.csv) or join the accounts to the parcels" if key == "customers" else "it must hold polygons")
+                "accounts.csv) or join the accounts to the parcels" if key == "customers"
+                else "it must hold points" if key == "readings" else "it must hold polygons")
         raise InputError(f"layer '{layer}' (from {key}.path) has no geometry, only attributes; {hint}", path=path,
                          key=f"{key}.path")
 
@@ -371,3 +372,90 @@ def read_zones(cfg: ZonesConfig) -> Zones:
     rank = {s.zone: i for i, s in enumerate(cfg.sources)}
     priority = np.array([rank[z] for z in ids], dtype=np.int64)
     return Zones(polygons=geom, zone_ids=ids, priority=priority, crs=crs, layer=layer, repaired=repaired)
+
+
+@dataclass
+class Readings:
+    """The field-readings layer reduced to what a check needs, one entry per feature, in the layer's order.
+
+    ``x``/``y`` in ``crs`` (NaN without a point); ``measured_psi``, NaN where
+    the pressure is empty; ``gauge_height_ft``, ``hgl_ft`` and ``accuracy_psi``
+    NaN where the reading has no value of its own (the config's defaults
+    apply); ``ids`` the id field's text, or the feature's number from 1;
+    ``taken`` the time field as text (missing where empty or not configured).
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    has_geometry: np.ndarray
+    crs: CRS
+    layer: str
+    ids: np.ndarray
+    taken: pd.api.extensions.ExtensionArray
+    measured_psi: np.ndarray
+    gauge_height_ft: np.ndarray
+    hgl_ft: np.ndarray
+    accuracy_psi: np.ndarray
+
+
+def _numbers(df: pd.DataFrame, name: str | None, key: str, ids: np.ndarray, path: Path, what: str) -> np.ndarray:
+    """The field ``name`` as float64, NaN where empty; an InputError naming ``key`` when a value is not a number."""
+    if name is None:
+        return np.full(len(df), np.nan)
+    col = df[name]
+    text = col.astype("string").str.strip()
+    empty = col.isna() | (text == "").fillna(True)
+    values = pd.to_numeric(text.where(~empty), errors="coerce")
+    bad = (values.isna() & ~empty).to_numpy(dtype=bool)
+    if bad.any():
+        raise InputError(f"field '{name}' ({key}) must hold {what}; readings {_fmt_list(ids[bad].tolist(), 5)} have "
+                         f"{_fmt_list(col[bad].head(5).tolist(), 5)}", path=path, key=key)
+    return values.to_numpy(dtype=np.float64, na_value=np.nan)
+
+
+def read_readings(cfg: ReadingsConfig) -> Readings:
+    """Read and check the field-readings layer (any GDAL vector source with point geometries).
+
+    One line, as an InputError naming the field, for a field the config names
+    that the layer lacks, a value that is not a number, a negative gauge height
+    or a gauge accuracy that is not positive. A reading without a pressure or a
+    location is kept: the check gives it a status of its own.
+    """
+    path = cfg.path
+    layer = resolve_layer(path, cfg.layer, "readings")
+    info = layer_info(path, layer)
+    check_fields(path, layer, info, cfg.fields())
+    _located(path, layer, info, "readings")
+    crs = _crs(path, layer, info["crs"])
+    df, _ = read_layer(path, layer, list(dict.fromkeys(cfg.fields().values())))
+    if len(df) == 0:
+        raise InputError(f"layer '{layer}' (from readings.path) has no readings; check the export that wrote it",
+                         path=path, key="readings.path")
+    ids = (df[cfg.id_field].astype("string").fillna("").to_numpy(dtype=object) if cfg.id_field
+           else np.array([str(i + 1) for i in range(len(df))], dtype=object))
+    geom = df.geometry.to_numpy()
+    missing = shapely.is_missing(geom) | shapely.is_empty(geom)
+    not_point = ~missing & (shapely.get_type_id(geom) != 0)
+    if not_point.any():
+        raise InputError(f"layer '{layer}' has non-point geometries (readings {_fmt_list(ids[not_point].tolist(), 5)}); "
+                         "a reading is a point where the gauge was", path=path, key="geometry")
+    x = np.full(len(df), np.nan)
+    y = np.full(len(df), np.nan)
+    x[~missing] = shapely.get_x(geom[~missing])
+    y[~missing] = shapely.get_y(geom[~missing])
+    measured = _numbers(df, cfg.pressure_field, "readings.pressure_field", ids, path, "pressures in psi")
+    height = _numbers(df, cfg.gauge_height_field, "readings.gauge_height_field", ids, path, "heights in ft")
+    if (height < 0).any():
+        raise InputError(f"field '{cfg.gauge_height_field}' (readings.gauge_height_field) has negative gauge heights "
+                         f"(readings {_fmt_list(ids[height < 0].tolist(), 5)}); give the height above ground in ft",
+                         path=path, key="readings.gauge_height_field")
+    hgl = _numbers(df, cfg.hgl_field, "readings.hgl_field", ids, path, "HGLs in ft")
+    accuracy = _numbers(df, cfg.accuracy_field, "readings.accuracy_field", ids, path, "accuracies in psi")
+    if (accuracy <= 0).any():
+        raise InputError(f"field '{cfg.accuracy_field}' (readings.accuracy_field) must be positive, psi; readings "
+                         f"{_fmt_list(ids[accuracy <= 0].tolist(), 5)} are not", path=path, key="readings.accuracy_field")
+    taken = (df[cfg.time_field].astype("string").array if cfg.time_field
+             else pd.array([None] * len(df), dtype="string"))
+    log.info("read %d field readings from %s layer %s", len(df), path, layer)
+    return Readings(x=x, y=y, has_geometry=~missing, crs=crs, layer=layer, ids=ids, taken=taken, measured_psi=measured,
+                    gauge_height_ft=height, hgl_ft=hgl, accuracy_psi=accuracy)
