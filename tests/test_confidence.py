@@ -104,7 +104,7 @@ def test_customers_carry_margin_sigma_and_confidence(world):
     assert (c.loc[flagged, "margin_psi"] >= 0).all() and (c.loc[c["status"] == "ok", "margin_psi"] <= 0).all()
     by_zone = res.zone_summary.set_index("zone")
     assert (by_zone["n_firm"] + by_zone["n_borderline"]).sum() == int(flagged.sum())
-    assert res.mailing["high_pressure"].columns[-2:].tolist() == ["margin_psi", "confidence"]
+    assert res.mailing["high_pressure"].columns[-3:].tolist() == ["margin_psi", "confidence", "target_area"]
     # the field-verification list holds every borderline flag (each customer here has one finding, its status)
     assert len(res.mailing["field_verification"]) == int((c["confidence"] == "borderline").sum())
 
