@@ -726,6 +726,52 @@ def _fmt(value: Any, digits: int = 1) -> str:
     return str(value)
 
 
+#: per control key: how the report names it, and whether it is a length (else a pressure)
+_CONTROLS = {"high_water_ft": ("high water", True), "setting_psi": ("setting", False),
+             "discharge_hgl_ft": ("discharge HGL", True)}
+_BEST_KEYS = {"high_water_ft": "best_high_water_ft", "setting_psi": "best_setting_psi",
+              "discharge_hgl_ft": "best_discharge_hgl_ft"}
+
+
+def _count(value: Any) -> str:
+    return "–" if value is None or pd.isna(value) else f"{int(value):,}"
+
+
+def control_texts(r: Mapping[str, Any], units: Units) -> dict[str, str]:
+    """A zone_summary row's control ranges as display text in ``units``: ``best`` (the whole steps an operator
+    can set, or the single best step), ``flagged_at_best`` (what they flag), ``exact`` (the exact optimum,
+    against what the source can do) and ``robust``."""
+    key = r.get("control")
+    if key not in _CONTROLS:
+        return {"best": "–", "flagged_at_best": "–", "exact": "–", "robust": "–"}
+    label, length = _CONTROLS[key]
+    unit = units.length if length else units.pressure
+    V = lambda v: _fmt(float(units.length_from_ft(v) if length else units.pressure_from_psi(v)))  # noqa: E731
+    step = f"{float(units.length_from_ft(r['control_step']) if length else units.pressure_from_psi(r['control_step'])):.3g}"
+
+    def span(a: Any, b: Any) -> str:
+        return f"{V(a)} {unit}" if a == b else f"{V(a)} to {V(b)} {unit}"
+
+    lo, hi = r.get(f"{_BEST_KEYS[key]}_from"), r.get(f"{_BEST_KEYS[key]}_to")
+    exact = "–" if lo is None or pd.isna(lo) else f"{label} {span(lo, hi)}, flags {_count(r.get('flagged_at_best'))}"
+    where = r.get("optimum_vs_bounds")
+    limits = [f"from {V(r['control_min'])}" if not pd.isna(r.get("control_min")) else "",
+              f"up to {V(r['control_max'])}" if not pd.isna(r.get("control_max")) else ""]
+    if where in ("outside", "partly outside"):
+        exact += f"; {where} what the source can do ({label} {' '.join(x for x in limits if x)} {unit})"
+    if pd.isna(r.get("step_from")):
+        best = "no step serves any customer"
+    elif r.get("steps_inside_optimum"):
+        best = f"{label} {span(r['step_from'], r['step_to'])} (whole {step} {unit} steps inside the exact optimum)"
+    else:
+        best = (f"{label} {span(r['step_from'], r['step_to'])} (the exact optimum is narrower than one {step} {unit} "
+                "step: the best single step)")
+    robust = "–" if pd.isna(r.get("robust_from")) else (
+        f"{label} {span(r['robust_from'], r['robust_to'])}, flags at most {_count(r.get('flagged_robust'))} "
+        f"(the minimum plus up to {_count(r.get('robust_tolerance'))})")
+    return {"best": best, "flagged_at_best": _count(r.get("flagged_at_step")), "exact": exact, "robust": robust}
+
+
 def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units, criteria: Criteria) -> list[dict[str, str]]:
     """The zone_summary table as display text, one row per zone, in ``units``."""
     band_by_zone = {} if bands is None else {r["zone"]: r for r in bands.to_dict("records")}
@@ -733,13 +779,7 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
     for r in summary.to_dict("records"):
         L = lambda ft: _fmt(float(units.length_from_ft(ft)))  # noqa: E731
         P = lambda psi: _fmt(float(units.pressure_from_psi(psi)))  # noqa: E731
-        if r.get("source_kind") == "tank":
-            best = f"high water {L(r.get('best_high_water_ft_from'))} to {L(r.get('best_high_water_ft_to'))} {units.length}"
-        elif r.get("source_kind") == "prv":
-            best = f"setting {P(r.get('best_setting_psi_from'))} to {P(r.get('best_setting_psi_to'))} {units.pressure}"
-        else:
-            best = (f"discharge HGL {L(r.get('best_discharge_hgl_ft_from'))} to {L(r.get('best_discharge_hgl_ft_to'))} "
-                    f"{units.length}")
+        texts = control_texts(r, units)
         b = band_by_zone.get(r["zone"])
         if b is not None:
             band = (f"{L(b['lower_limit_ft'])} to {L(b['upper_limit_ft'])} {units.length}, "
@@ -753,8 +793,7 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "customers": str(int(r["customers"])), "ok": str(int(r.get("n_ok", 0))),
             "high": str(int(r.get("n_high", 0))), "low": str(int(r.get("n_low", 0))),
             "above_hgl": str(int(r.get("n_above_hgl", 0))), "upper": str(int(r.get("n_low_upper_floors", 0))),
-            "flagged": str(flagged), "best": best,
-            "flagged_at_best": _fmt(r.get("flagged_at_best"), 0) if "flagged_at_best" in r else "–",
+            "flagged": str(flagged), **texts,
             "band": band,
         })
     return rows
