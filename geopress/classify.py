@@ -62,12 +62,22 @@ class Criteria:
     Defaults: 80 psi maximum static (plumbing codes require an individual PRV
     above it), 35 psi minimum normal working pressure, 0.433 psi per ft of
     water, 10 ft per story.
+
+    Storage levels (:mod:`geopress.storage`), each off (None) by default: the
+    least static pressure at ground with the zone at its low HGL (peak hour,
+    equalizing storage used), and with a tank drawn to the bottom of its fire
+    suppression or its standby storage. ``rule_set`` names the published set
+    of values the config started from (:mod:`geopress.rulesets`), if any.
     """
 
     max_static_psi: float = 80.0
     min_static_psi: float = 35.0
     psi_per_ft: float = DEFAULT_PSI_PER_FT
     floor_height_ft: float = 10.0
+    peak_hour_min_psi: float | None = None
+    fire_min_psi: float | None = None
+    standby_min_psi: float | None = None
+    rule_set: str | None = None
 
 
 def classify(

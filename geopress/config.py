@@ -186,6 +186,22 @@ class Config:
         }
 
 
+#: the shipped rule sets: TOML files of criteria values, each citing its source
+RULE_SETS = Path(__file__).parent / "rule_sets"
+#: the criteria keys of the storage levels (geopress.storage), each off unless set
+STORAGE_MINIMUMS = ("peak_hour_min_psi", "fire_min_psi", "standby_min_psi")
+
+
+def rule_set_key(text: str) -> str:
+    """A rule set's name as its file is named: lower case, every run of other characters one hyphen."""
+    return re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-")
+
+
+def rule_set_names() -> list[str]:
+    """The shipped rule sets' names."""
+    return sorted(p.stem for p in RULE_SETS.glob("*.toml"))
+
+
 #: the keys an --out-dir sets
 OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
@@ -672,21 +688,56 @@ class _Reader:
 
     def criteria(self, t: dict[str, Any]) -> Criteria:
         s = "criteria"
-        defaults = asdict(Criteria())
-        self.no_unknown(t, s, set(defaults))
+        defaults = {k: v for k, v in asdict(Criteria()).items() if k != "rule_set"}
+        self.no_unknown(t, s, {*defaults, "rule_set"})
+        rule_set = self.get(t, s, "rule_set", "str", None)
+        if rule_set is not None:
+            rule_set, values = self.rule_set(rule_set, set(defaults))
+            defaults.update(values)
         v = {k: self.get(t, s, k, "number", d) for k, d in defaults.items()}
+        where = f" (from rule set {rule_set})" if rule_set else ""
         if v["psi_per_ft"] <= 0:
             raise self.error("criteria.psi_per_ft", f"must be positive, not {v['psi_per_ft']:g}")
         if v["floor_height_ft"] <= 0:
             raise self.error("criteria.floor_height_ft", f"must be positive, not {v['floor_height_ft']:g}")
-        if v["min_static_psi"] < 0:
-            raise self.error("criteria.min_static_psi", "must not be negative")
+        for name in ("min_static_psi", *STORAGE_MINIMUMS):
+            if v[name] is not None and v[name] < 0:
+                raise self.error(f"criteria.{name}", f"must not be negative{where}")
         if v["min_static_psi"] > v["max_static_psi"]:
             raise self.error(
                 "criteria.min_static_psi",
-                f"{v['min_static_psi']:g} psi is above max_static_psi {v['max_static_psi']:g} psi; fix one of them",
+                f"{v['min_static_psi']:g} psi is above max_static_psi {v['max_static_psi']:g} psi{where}; fix one of them",
             )
-        return Criteria(**v)
+        return Criteria(**v, rule_set=rule_set)
+
+    def rule_set(self, text: str, allowed: set[str]) -> tuple[str, dict[str, float]]:
+        """The criteria values of a rule set: a shipped one by name (its file's stem, any case and punctuation:
+        "WAC 246-290-230"), or a user's TOML file (a path ending in .toml, relative to the config). Returns the
+        name to record (the shipped stem, or the file's absolute path) and the values."""
+        key = "criteria.rule_set"
+        if text.lower().endswith(".toml"):
+            path = self.path(text, key)
+            name = str(path)
+        else:
+            name = rule_set_key(text)
+            path = RULE_SETS / f"{name}.toml"
+            if not path.is_file():
+                raise self.error(key, f"unknown rule set {text!r}; use one of {', '.join(rule_set_names())}, "
+                                      "or the path of your own .toml file")
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8-sig"))
+        except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+            raise self.error(key, f"cannot read rule set {path} ({exc}); fix the file or the path") from exc
+        values = data.get("criteria")
+        if not isinstance(values, dict):
+            raise self.error(key, f"rule set {path} has no [criteria] table; add one with the values it sets")
+        for k, value in values.items():
+            if k not in allowed:
+                raise self.error(key, f"rule set {path} sets unknown key {k!r}; allowed keys are "
+                                      f"{', '.join(sorted(allowed))}")
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(_float_or_inf(value)):
+                raise self.error(key, f"rule set {path}: {k} must be a finite number, not {_short(value)}")
+        return name, {k: float(x) for k, x in values.items()}
 
     def operator(self, t: dict[str, Any]) -> OperatorConfig:
         s = "operator"

@@ -238,7 +238,7 @@ def config_text(customers: VectorSummary | None, rasters: Sequence[RasterSummary
         "",
         "[criteria]",
         "# the defaults; set the ones your plumbing code and state rules use",
-        *[f"{k} = {v!r}" for k, v in crit.items()],
+        *[f"{k} = {v!r}" for k, v in crit.items() if v is not None],
         "",
         "[output]",
         f"path = {toml_string(f'{output}/pressure.gpkg')}",
