@@ -178,7 +178,7 @@ class Config:
                 "path": str(self.zones.path),
                 "layer": self.zones.layer,
                 "id_field": self.zones.id_field,
-                "source": [_plain(s) for s in self.zones.sources],
+                "source": [{k: v for k, v in _plain(s).items() if v is not None} for s in self.zones.sources],
             },
             "criteria": _plain(self.criteria),
             "output": _plain(self.output),
