@@ -50,7 +50,8 @@ FLAGGED_LAYERS: dict[str, str] = {
 }
 #: per-customer result columns written after the id field; input fields may not reuse these names.
 RESULT_COLUMNS: tuple[str, ...] = (
-    "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "status", "reason", "geometry",
+    "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "psi_fire", "psi_standby",
+    "status", "reason", "geometry",
 )
 CODE = {name: np.int8(i) for i, name in enumerate(STATUSES)}
 

@@ -31,6 +31,7 @@ from . import classify as cls
 from . import guards
 from . import planning
 from . import runner
+from . import storage
 from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
@@ -345,6 +346,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   if cfg.customers.floors_field else np.full(len(ground), np.nan))
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)
+        levels = storage.level_columns(ground, zi, zones.zone_ids, crit, cfg.zones.sources)
         codes = cls.classify(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
                              psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
@@ -361,6 +363,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "psi_max": p.psi_max,
             "psi_min": p.psi_min,
             "psi_top": p.psi_top,
+            **levels,
             "status": cls.status_names(codes),
             "reason": reason,
         }

@@ -107,3 +107,12 @@ def level_psi(ground_ft: ArrayLike, zone_index: ArrayLike, zone_names: Sequence[
 def short(psi: ArrayLike, minimum_psi: float) -> NDArray[np.bool_]:
     """Whether the pressure at a level is below its minimum (NaN: not checked, so False)."""
     return np.asarray(psi, dtype=np.float64) < minimum_psi
+
+
+def level_columns(ground_ft: ArrayLike, zone_index: ArrayLike, zone_names: Sequence[str], criteria: object,
+                  sources: Sequence[Source]) -> dict[str, NDArray[np.float64]]:
+    """The per-customer pressure column of each level checked that has one of its own (``psi_fire``,
+    ``psi_standby``; peak hour reads ``psi_min``), by column name. Arguments as in :func:`level_psi`."""
+    k = getattr(criteria, "psi_per_ft")
+    return {lv.column: level_psi(ground_ft, zone_index, zone_names, zone_levels(lv.name, sources, k), k)
+            for lv in active(criteria, sources) if lv.column != "psi_min"}

@@ -78,11 +78,11 @@ RIDGEWAY_TOP_M = 366.0
 
 # Hydraulic grade lines, feet.  Chosen so the demo shows every status.
 TANK = {"zone": "Ridgeway", "high_water_ft": 1212.0, "low_water_ft": 1194.0}
-# What the tank can hold, and its storage levels below low water (the bottom
+# What the tank (a standpipe) can hold, and its storage levels below low water (the bottom
 # of equalizing storage): the level with fire suppression storage used too,
 # and with standby storage used too.  Invented, like the rest.
-TANK_LEVELS = {"overflow_ft": 1214.0, "bottom_ft": 1160.0,
-               "fire_bottom_ft": 1188.0, "standby_bottom_ft": 1182.0}
+TANK_LEVELS = {"overflow_ft": 1214.0, "bottom_ft": 1135.0,
+               "fire_bottom_ft": 1150.0, "standby_bottom_ft": 1145.0}
 PRV = {"zone": "Lowfield", "valve_elevation_ft": 1010.0, "setting_psi": 51.0}
 PUMP = {"zone": "Summit", "discharge_hgl_ft": 1405.0}
 PUMP_SHUTOFF_HGL_FT = 1425.0
