@@ -802,8 +802,12 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
 #: a zone source's configured keys, in the order a reader expects them, with their unit
 SOURCE_KEYS = (
     ("high_water_ft", "high water", "ft"), ("low_water_ft", "low water", "ft"),
+    ("fire_bottom_ft", "bottom of fire storage", "ft"), ("standby_bottom_ft", "bottom of standby storage", "ft"),
+    ("overflow_ft", "overflow", "ft"), ("bottom_ft", "bottom", "ft"),
     ("valve_elevation_ft", "valve elevation", "ft"), ("setting_psi", "setting", "psi"),
-    ("discharge_hgl_ft", "discharge HGL", "ft"),
+    ("inlet_zone", "inlet zone", ""), ("inlet_hgl_ft", "inlet HGL", "ft"),
+    ("discharge_hgl_ft", "discharge HGL", "ft"), ("no_demand_hgl_ft", "HGL at no demand", "ft"),
+    ("shutoff_hgl_ft", "shutoff HGL", "ft"),
 )
 
 
@@ -816,6 +820,9 @@ def source_rows(sources: Sequence[Mapping[str, Any]], summary: pd.DataFrame, uni
         controls = []
         for key, label, unit in SOURCE_KEYS:
             if s.get(key) is None:
+                continue
+            if not unit:  # text: a zone's name
+                controls.append(f"{label} {s[key]}")
                 continue
             value = float(s[key])
             text = f"{label} {value:,.1f} {unit}"

@@ -149,3 +149,78 @@ def test_a_negative_storage_minimum_is_refused():
     with pytest.raises(ConfigError) as info:
         _criteria({"fire_min_psi": -1.0})
     assert info.value.key == "criteria.fire_min_psi"
+
+
+# ---------------------------------------------------------------- through the pipeline, on the analytic plane
+
+STORAGE_CONFIG = """\
+[[zones.source]]
+zone = "West"
+kind = "prv"
+valve_elevation_ft = 1000.0
+setting_psi = 60.0
+inlet_zone = "East"
+
+[[zones.source]]
+zone = "East"
+kind = "tank"
+high_water_ft = 1400.0
+low_water_ft = 1380.0
+fire_bottom_ft = 1325.0
+standby_bottom_ft = 1315.0
+
+[criteria]
+max_static_psi = 80.0
+min_static_psi = 35.0
+psi_per_ft = 0.5
+peak_hour_min_psi = 30.0
+fire_min_psi = 20.0
+standby_min_psi = 25.0
+"""
+
+
+def storage_world(world):
+    """The conftest world (ground 300 m + 0.1 m per m east: customers at 302.5, 307.5, ..., 397.5 m, the first
+    ten in West, the last ten in East) with the sources and criteria above."""
+    text = world.config_path.read_text()
+    head = text[: text.index("[[zones.source]]")]
+    tail = text[text.index("[output]"):]
+    world.write_config(head + STORAGE_CONFIG + "\n" + tail)
+    return world
+
+
+def test_pressure_at_each_storage_level_on_the_plane(world):
+    import geopress
+    from geopress.pressure import M_PER_FT
+
+    res = geopress.run(storage_world(world).config_path, write=False)
+    c = res.customers
+    ground_m = 302.5 + 5.0 * np.arange(20)
+    g = ground_m / M_PER_FT
+    # bilinear sampling of a plane is exact; 1e-6 ft allows float64 rounding of ~1e3 ft values only
+    np.testing.assert_allclose(c["ground_ft"], g, rtol=0, atol=1e-6)
+    east = np.arange(20) >= 10
+    # East at the fire level 1325 ft; West (a PRV at 1000 + 60 / 0.5 = 1120 ft fed from East) keeps its 1120 ft,
+    # which is below East's 1325 ft
+    fire_hgl = np.where(east, 1325.0, 1120.0)
+    np.testing.assert_allclose(c["psi_fire"], 0.5 * (fire_hgl - g), rtol=0, atol=1e-6)
+    standby_hgl = np.where(east, 1315.0, 1120.0)
+    np.testing.assert_allclose(c["psi_standby"], 0.5 * (standby_hgl - g), rtol=0, atol=1e-6)
+
+
+def test_a_booster_with_a_no_demand_hgl_through_the_pipeline(world):
+    import geopress
+
+    text = world.config_path.read_text()
+    text = text.replace('kind = "tank"\nhigh_water_ft = 1400.0\nlow_water_ft = 1380.0',
+                        'kind = "pump"\ndischarge_hgl_ft = 1380.0\nno_demand_hgl_ft = 1400.0')
+    assert "no_demand_hgl_ft" in text
+    world.write_config(text)
+    res = geopress.run(world.config_path, write=False)
+    c = res.customers
+    east = (c["zone"] == "East").to_numpy(dtype=bool)
+    # the closed zone rises to 1400 ft at no demand and holds 1380 ft at the discharge: the tank's range
+    assert (c.loc[east, "hgl_high_ft"] == 1400.0).all() and (c.loc[east, "hgl_low_ft"] == 1380.0).all()
+    np.testing.assert_allclose(c.loc[east, "psi_max"] - c.loc[east, "psi_min"], 0.433 * 20.0, rtol=0, atol=1e-9)
+    row = res.zone_summary.set_index("zone").loc["East"]
+    assert (row["source_kind"], row["hgl_high_ft"], row["hgl_low_ft"]) == ("pump", 1400.0, 1380.0)
