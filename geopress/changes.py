@@ -18,12 +18,13 @@ The current customers carry their change in the ``customers`` layer
 (:func:`change_columns`); the removed ones, which it lacks, form a layer of
 their own (:func:`removed_layer`).
 
-"Flagged" means a status with a mailing list
-(:data:`geopress.classify.FLAGGED_LAYERS`). The ``new_<list>`` mailing lists
-hold the customers whose status is that list's status now and was not in the
-previous run -- newly flagged, changed from another status, or new
-customers -- so a job that mails only them never mails an owner twice for the
-same finding.
+"Flagged" means a status with a mailing list, a finding
+(:data:`geopress.findings.FLAGGED_LAYERS`). The ``new_<list>`` mailing lists
+follow the findings, not the status: they hold the customers who have that
+list's finding now and did not have it in the previous run (a previous run
+written before findings had their columns had only its status's) -- newly
+flagged, with a finding added to another, or new customers -- so a job that
+mails only them never mails an owner twice for the same finding.
 """
 
 from __future__ import annotations
@@ -36,8 +37,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .classify import FLAGGED_LAYERS
-from .tables import mailing_list
+from .findings import FINDINGS, FLAGGED_LAYERS
+from .tables import in_finding, mailing_list
 
 CHANGES: tuple[str, ...] = ("new_customer", "removed", "unchanged", "newly_flagged", "cleared", "status_changed")
 #: the dtype a frame gives text inserted as Python objects: ``str`` (Arrow, NaN where missing) in pandas 3
@@ -154,25 +155,51 @@ def newly_in_status(table: pd.DataFrame) -> dict[str, np.ndarray]:
     return {s: rows[fresh & (status == s).to_numpy()].astype(np.int64) for s in FLAGGED_LAYERS}
 
 
+def findings_of(customers: pd.DataFrame) -> dict[str, np.ndarray]:
+    """Each finding's boolean array over ``customers`` (a run's, or an earlier one's: see
+    :func:`geopress.tables.in_finding`)."""
+    return {name: in_finding(customers, name) for name in FINDINGS}
+
+
+def newly_in_finding(table: pd.DataFrame, current: Mapping[str, np.ndarray],
+                     previous: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """For each finding, the current rows that have it now and did not in the previous run (in order).
+
+    ``current`` and ``previous`` hold each finding's boolean array over the current and the previous
+    customers (:func:`findings_of`); a new customer had none.
+    """
+    rows = table["current_row"].to_numpy()
+    previous_row = table["previous_row"].to_numpy()
+    here = rows >= 0
+    rows, previous_row = rows[here], previous_row[here]
+    known = previous_row >= 0
+    out = {}
+    for name in FINDINGS:
+        was = np.zeros(rows.size, dtype=bool)
+        was[known] = np.asarray(previous[name], dtype=bool)[previous_row[known]]
+        out[name] = rows[np.asarray(current[name], dtype=bool)[rows] & ~was].astype(np.int64)
+    return out
+
+
 def new_mailing_lists(
-    customers: pd.DataFrame, table: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
+    customers: pd.DataFrame, newly: Mapping[str, np.ndarray], *, id_field: str, mail_fields: Sequence[str],
     full: Mapping[str, pd.DataFrame] | None = None, letter_fields: Sequence[str] = (),
 ) -> dict[str, pd.DataFrame]:
-    """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the newly-in-status customers.
+    """``new_<list>`` mailing lists: :func:`geopress.tables.mailing_list` over the customers newly in each finding
+    (``newly``, as :func:`newly_in_finding` gives them).
 
     ``full`` may hold the run's own lists by name (``high_pressure`` ...),
     as :func:`geopress.tables.mailing_lists` makes them from ``customers``
-    with the same fields (``letter_fields`` as there): a status whose every customer is newly in it (a
+    with the same fields (``letter_fields`` as there): a finding whose every customer is newly in it (a
     first run) then takes a copy of its list instead of building it again.
     """
     out = {}
-    status_col = customers["status"]
-    for status, rows in newly_in_status(table).items():
-        name = FLAGGED_LAYERS[status]
-        if full is not None and name in full and rows.size and rows.size == int((status_col == status).sum()):
+    for finding, rows in newly.items():
+        name = FLAGGED_LAYERS[finding]
+        if full is not None and name in full and rows.size and rows.size == int(in_finding(customers, finding).sum()):
             out[f"new_{name}"] = full[name].copy()
             continue
-        out[f"new_{name}"] = mailing_list(customers.iloc[rows], status, id_field=id_field, mail_fields=mail_fields,
+        out[f"new_{name}"] = mailing_list(customers.iloc[rows], finding, id_field=id_field, mail_fields=mail_fields,
                                           letter_fields=letter_fields)
     return out
 
@@ -184,9 +211,12 @@ class Summary:
     baseline: str | None
     counts: dict[str, int]
     newly_in_status: dict[str, int]
+    #: customers newly in each finding: the rows of its ``new_<list>``
+    newly_in_finding: dict[str, int]
 
     def to_dict(self) -> dict[str, object]:
-        return {"baseline": self.baseline, "counts": self.counts, "newly_in_status": self.newly_in_status}
+        return {"baseline": self.baseline, "counts": self.counts, "newly_in_status": self.newly_in_status,
+                "newly_in_finding": self.newly_in_finding}
 
     def line(self) -> str:
         """``newly_flagged 2, cleared 1, ...`` (changes with a count), or ``none``."""
@@ -194,12 +224,13 @@ class Summary:
         return ", ".join(parts) or "none"
 
 
-def summarise(table: pd.DataFrame, baseline: str | None) -> Summary:
-    """The :class:`Summary` of a comparison table."""
+def summarise(table: pd.DataFrame, baseline: str | None, newly: Mapping[str, np.ndarray]) -> Summary:
+    """The :class:`Summary` of a comparison table and of the rows newly in each finding (:func:`newly_in_finding`)."""
     return Summary(
         baseline=baseline,
         counts=counts(table),
         newly_in_status={s: int(r.size) for s, r in newly_in_status(table).items()},
+        newly_in_finding={s: int(r.size) for s, r in newly.items()},
     )
 
 

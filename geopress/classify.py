@@ -1,7 +1,10 @@
-"""Statuses and reasons from pressures and criteria: pure, vectorised.
+"""Statuses, findings and reasons from pressures and criteria: pure, vectorised.
 
-Each customer gets exactly one status, the first of :data:`STATUSES` whose
-condition holds (``ok`` when none does). Conditions, with psi values from
+The statuses and findings, their conditions and sentences are the registry
+:mod:`geopress.findings`; this module evaluates them. Each customer gets
+exactly one status, the first of :data:`STATUSES` whose condition holds
+(``ok`` when none does), and every finding whose condition holds (a customer
+can have several). Conditions, with psi values from
 :func:`geopress.pressure.customer_pressures`:
 
 =================  ===========================================================
@@ -9,9 +12,9 @@ no_geometry        the customer has no usable geometry
 no_terrain         no ground elevation could be sampled
 unzoned            the customer lies in no pressure zone
 above_hgl          ``psi_min <= 0``: ground at or above the low HGL
-low                ``psi_min < min_static_psi``
+low                ``0 < psi_min < min_static_psi``
 high               ``psi_max > max_static_psi``
-low_upper_floors   ``psi_top < min_static_psi``
+low_upper_floors   ``psi_top < min_static_psi <= psi_min``
 ok                 none of the above
 =================  ===========================================================
 
@@ -22,36 +25,23 @@ Classification is monotone: lowering a customer's ground never moves it from
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 from numpy.typing import ArrayLike, NDArray
 
+from .findings import BY_NAME, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, REGISTRY, STATUSES, Values, evaluate
 from .pressure import DEFAULT_PSI_PER_FT
 
-STATUSES: tuple[str, ...] = (
-    "no_geometry",
-    "no_terrain",
-    "unzoned",
-    "above_hgl",
-    "low",
-    "high",
-    "low_upper_floors",
-    "ok",
-)
-#: statuses that flag a customer for follow-up, with the output layer that lists them.
-FLAGGED_LAYERS: dict[str, str] = {
-    "high": "high_pressure",
-    "low": "low_pressure",
-    "above_hgl": "above_hgl",
-    "low_upper_floors": "upper_floors",
-}
+__all__ = ["CODE", "FINDINGS", "FINDING_COLUMNS", "FLAGGED_LAYERS", "RESULT_COLUMNS", "STATUSES", "Criteria",
+           "classify", "names_at", "reasons", "screen", "status_names"]
+
 #: per-customer result columns written after the id field; input fields may not reuse these names.
 RESULT_COLUMNS: tuple[str, ...] = (
     "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "psi_fire", "psi_standby",
-    "status", "reason", "geometry",
+    "status", "reason", *FINDING_COLUMNS.values(), "geometry",
 )
 CODE = {name: np.int8(i) for i, name in enumerate(STATUSES)}
 
@@ -81,7 +71,7 @@ class Criteria:
     rule_set: str | None = None
 
 
-def classify(
+def screen(
     *,
     has_geometry: ArrayLike,
     ground_ft: ArrayLike,
@@ -90,24 +80,18 @@ def classify(
     psi_max: ArrayLike,
     psi_top: ArrayLike,
     criteria: Criteria,
-) -> NDArray[np.int8]:
-    """Status codes (indices into :data:`STATUSES`), one per customer."""
-    geom = np.asarray(has_geometry, dtype=bool)
-    ground = np.asarray(ground_ft, dtype=np.float64)
-    zoned_arr = np.asarray(zoned, dtype=bool)
-    pmin = np.asarray(psi_min, dtype=np.float64)
-    pmax = np.asarray(psi_max, dtype=np.float64)
-    ptop = np.asarray(psi_top, dtype=np.float64)
-    conditions = [
-        ~geom,
-        np.isnan(ground),
-        ~zoned_arr,
-        pmin <= 0.0,
-        pmin < criteria.min_static_psi,
-        pmax > criteria.max_static_psi,
-        ptop < criteria.min_static_psi,  # NaN (single story) compares False
-    ]
-    return np.select(conditions, [CODE[s] for s in STATUSES[:-1]], default=CODE["ok"]).astype(np.int8)
+) -> tuple[NDArray[np.int8], dict[str, NDArray[np.bool_]]]:
+    """Status codes (indices into :data:`STATUSES`), one per customer, and each finding's boolean array."""
+    return evaluate(Values(
+        has_geometry=np.asarray(has_geometry, dtype=bool), ground_ft=np.asarray(ground_ft, dtype=np.float64),
+        zoned=np.asarray(zoned, dtype=bool), psi_min=np.asarray(psi_min, dtype=np.float64),
+        psi_max=np.asarray(psi_max, dtype=np.float64), psi_top=np.asarray(psi_top, dtype=np.float64),
+        criteria=criteria))
+
+
+def classify(**values) -> NDArray[np.int8]:
+    """Status codes (indices into :data:`STATUSES`), one per customer; the keywords of :func:`screen`."""
+    return screen(**values)[0]
 
 
 def names_at(names: Sequence[str], index: ArrayLike, valid: ArrayLike | None = None) -> pd.api.extensions.ExtensionArray:
@@ -153,22 +137,6 @@ def _g(value: float) -> str:
     return f"{value:g}"
 
 
-#: each status's sentence: a template for str.format with the criteria as ``lo`` and ``hi``, and the
-#: numbers (keys of the ``numbers`` in :func:`reasons`) that fill its ``{}`` in order
-_SENTENCES: dict[str, tuple[str, tuple[str, ...]]] = {
-    "no_geometry": ("no usable geometry: location unknown", ()),
-    "no_terrain": ("no ground elevation here (outside every DEM or on nodata)", ()),
-    "unzoned": ("outside every pressure zone", ()),
-    "above_hgl": ("ground at {} ft is at or above the low HGL of {} ft: no service by gravity, booster service needed",
-                  ("ground", "hgl_low")),
-    "low": ("static pressure down to {} psi is below {lo} psi: low service pressure", ("pmin",)),
-    "high": ("static pressure up to {} psi exceeds {hi} psi: individual PRV expected", ("pmax",)),
-    "low_upper_floors": ("top floor of {} stories down to {} psi is below {lo} psi: upper floors need a booster",
-                         ("stories", "ptop")),
-    "ok": ("static pressure {} to {} psi, within {lo} to {hi} psi", ("pmin", "pmax")),
-}
-
-
 def reasons(
     codes: ArrayLike,
     *,
@@ -179,12 +147,16 @@ def reasons(
     psi_top: ArrayLike,
     floors: ArrayLike,
     criteria: Criteria,
+    findings: Mapping[str, ArrayLike] | None = None,
 ) -> pd.api.extensions.ExtensionArray:
-    """One sentence per customer saying why it has its status, with the numbers, as pandas text (``"str"``).
+    """One text per customer saying why it has its status and findings, with the numbers, as pandas text (``"str"``).
 
-    Numbers are rounded to 0.1 (stories to whole ones) and printed as numpy prints them. Each distinct
-    sentence is made once: the numbers repeat (a million customers have a few thousand distinct ones),
-    so the text of the rows is one Arrow take from that small table, with no Python string per row.
+    A customer with findings gets each finding's sentence, in the registry's order, joined by ``"; "``; any other
+    its status's sentence. ``findings`` (finding -> boolean array, as :func:`screen` gives them) defaults to each
+    flagged status's own finding alone. Numbers are rounded to 0.1 (stories to whole ones) and printed as numpy
+    prints them. Each distinct sentence is made once: the numbers repeat (a million customers have a few thousand
+    distinct ones), so each finding's texts are one Arrow take from that small table and the joining is Arrow's,
+    with no Python string per row.
     """
     codes = np.asarray(codes)
     cols = {
@@ -201,13 +173,36 @@ def reasons(
     }
     numbers["stories"] = lambda m: np.round(floors_arr[m]).astype(np.int64)
     lo, hi = _g(criteria.min_static_psi), _g(criteria.max_static_psi)
-    sentence = np.full(codes.shape, -1, dtype=np.intp)  # index into table; a code of no status fails the take
-    table: list[str] = []
-    for status, (template, names) in _SENTENCES.items():
-        m = codes == CODE[status]
+
+    def sentences(status: str, m: NDArray[np.bool_], sentence: NDArray[np.intp], table: list[str]) -> None:
+        """Fill ``sentence[m]`` with indices into ``table`` of ``status``'s sentences for the rows ``m``."""
         if m.any():
-            index, count, values = _distinct([numbers[name](m) for name in names], int(np.count_nonzero(m)))
+            entry = BY_NAME[status]
+            index, count, values = _distinct([numbers[name](m) for name in entry.numbers], int(np.count_nonzero(m)))
             texts = [v.astype(str) for v in values]
             sentence[m] = len(table) + index
-            table.extend(template.format(*(t[i] for t in texts), lo=lo, hi=hi) for i in range(count))
+            table.extend(entry.sentence.format(*(t[i] for t in texts), lo=lo, hi=hi) for i in range(count))
+
+    found = ({name: codes == CODE[name] for name in FINDINGS} if findings is None
+             else {name: np.asarray(findings[name], dtype=bool) for name in FINDINGS})
+    any_finding = np.zeros(codes.shape, dtype=bool)
+    for m in found.values():
+        any_finding |= m
+    sentence = np.full(codes.shape, -1, dtype=np.intp)  # index into table; a code of no status fails the take
+    table: list[str] = []
+    for entry in REGISTRY:
+        sentences(entry.name, (codes == CODE[entry.name]) & ~any_finding, sentence, table)
+    if any_finding.any():
+        # each finding's sentences apart, then each distinct combination of them joined once
+        own: list[list[str]] = []
+        columns = []
+        for name, m in found.items():
+            each = np.full(codes.shape, -1, dtype=np.intp)
+            part: list[str] = []
+            sentences(name, m, each, part)
+            own.append(part)
+            columns.append(each[any_finding])
+        index, count, values = _distinct(columns, int(np.count_nonzero(any_finding)))
+        sentence[any_finding] = len(table) + index
+        table.extend("; ".join(part[v[i]] for part, v in zip(own, values) if v[i] >= 0) for i in range(count))
     return names_at(table, sentence)

@@ -18,6 +18,7 @@ import pandas as pd
 from . import changes
 from .config import Config
 from .errors import InputError
+from .findings import FINDING_COLUMNS
 from .io import baseline as baseline_io
 from .io import write as write_io
 from .io.lock import OutputLock
@@ -104,7 +105,8 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     current = result.customers
     path, key = _baseline_path(cfg, baseline)
     prev = None if path is None else baseline_io.read_baseline(
-        path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=current.crs, key=key)
+        path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=current.crs, key=key,
+        optional=tuple(FINDING_COLUMNS.values()))
     frame = prev.frame if prev is not None else pd.DataFrame({cust_cfg.id_field: [], "status": []}, dtype=object)
     try:
         table = changes.compare(frame[cust_cfg.id_field], frame["status"], current[cust_cfg.id_field],
@@ -113,7 +115,8 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
         raise InputError(f"the baseline's field '{cust_cfg.id_field}' has duplicate ids, so it cannot be compared "
                          "with this run; pass --baseline with another geopress GeoPackage", path=prev.path,
                          key=key) from exc
-    summary = changes.summarise(table, None if prev is None else str(prev.path))
+    newly = changes.newly_in_finding(table, changes.findings_of(current), changes.findings_of(frame))
+    summary = changes.summarise(table, None if prev is None else str(prev.path), newly)
     removed = summary.counts["removed"]
     limit = cfg.output.max_drop_percent
     if prev is not None and not accept_drop and removed > limit / 100 * len(prev.frame):
@@ -133,7 +136,7 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     # in the display units, as the run's own lists (which a first run copies)
     units = units_for(cfg.output.units)
     result.new_mailing = {name: mailing_columns_in_units(df, units) for name, df in changes.new_mailing_lists(
-        customers_in_units(current, units), table, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields,
+        customers_in_units(current, units), newly, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields,
         letter_fields=cust_cfg.letter_fields, full=result.mailing).items()}
     result.info["changes"] = summary.to_dict()
     log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())

@@ -347,10 +347,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)
         levels = storage.level_columns(ground, zi, zones.zone_ids, crit, cfg.zones.sources)
-        codes = cls.classify(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
-                             psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+        codes, found = cls.screen(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
+                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
-                             psi_top=p.psi_top, floors=floors, criteria=crit)
+                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found)
         frame = cust.frame
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
@@ -366,11 +366,13 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             **levels,
             "status": cls.status_names(codes),
             "reason": reason,
+            **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
         }
         for c in extra:
             data[c] = _values(frame[c])
         customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+        finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     with clock.step("summarise"):
@@ -395,6 +397,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "no_geometry": cust.no_geometry,
         },
         "counts": counts,
+        "counts_by_finding": finding_counts,
         "terrain": [vars(r) for r in terrain.rasters],
         "datum": {**shift.info(), "direction": shift.direction()},
         "ground_vs_hgl": [_ground_row(zg, crit.psi_per_ft) for zg in ground_table],
@@ -430,8 +433,8 @@ def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> 
     and ``changes``, views of it (see write_io.View)."""
     customers = result.customers
     layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
-    for code, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = write_io.view_of("customers", customers, "status", (code,))
+    for finding, name in cls.FLAGGED_LAYERS.items():
+        layers[name] = write_io.view_of("customers", customers, cls.FINDING_COLUMNS[finding], (True,))
     if "change" in customers.columns:
         layers["changes"] = write_io.view_of("customers", customers, "change", CHANGED)
     return layers

@@ -23,7 +23,7 @@ import io
 import json
 import math
 from dataclasses import dataclass
-from typing import Any, Mapping, NamedTuple, Sequence
+from typing import Any, Mapping, Sequence
 
 import jinja2
 import markupsafe
@@ -36,43 +36,14 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
-from .classify import FLAGGED_LAYERS, Criteria
+from .classify import Criteria
+from .findings import FINDING_COLUMNS, FLAGGED_LAYERS, OKABE_ITO, STATUS_STYLE as _STATUS_STYLE, Style
 from .pressure import M_PER_FT
 from .units import Units
 
-#: Okabe-Ito colours (Okabe and Ito, "Color Universal Design", 2008), by name.
-OKABE_ITO = {
-    "black": "#000000", "orange": "#E69F00", "sky_blue": "#56B4E9", "bluish_green": "#009E73",
-    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish_purple": "#CC79A7",
-}
-
-
-class StatusStyle(NamedTuple):
-    """How a status is drawn: on the static maps (matplotlib ``marker``) and the interactive one (plotly ``symbol``)."""
-
-    colour: str
-    marker: str
-    label: str
-    symbol: str
-    #: marker area on the static maps, points squared; the interactive map's diameter in px follows its square root
-    size: float
-    #: the marker's shape as a character, for the tables
-    glyph: str
-
-
-#: status -> style, in drawing order: the first is drawn lowest, so every flagged status lies above ``ok``.
-#: ``no_geometry`` has no location and appears on no map, only in the tables.
-STATUS_STYLE: dict[str, StatusStyle] = {
-    "ok": StatusStyle(OKABE_ITO["bluish_green"], "o", "ok: within the pressure window", "circle", 14.0, "●"),
-    "no_terrain": StatusStyle(OKABE_ITO["black"], "x", "no terrain: ground elevation unknown", "x", 36.0, "✕"),
-    "unzoned": StatusStyle(OKABE_ITO["orange"], "P", "unzoned: in no pressure zone", "cross", 36.0, "✚"),
-    "low_upper_floors": StatusStyle(OKABE_ITO["sky_blue"], "s", "low upper floors: top floor below the minimum",
-                                    "square", 36.0, "■"),
-    "low": StatusStyle(OKABE_ITO["blue"], "v", "low: below the minimum static pressure", "triangle-down", 40.0, "▼"),
-    "high": StatusStyle(OKABE_ITO["vermillion"], "^", "high: above the maximum static pressure", "triangle-up", 40.0, "▲"),
-    "above_hgl": StatusStyle(OKABE_ITO["reddish_purple"], "D", "above HGL: no gravity service", "diamond", 36.0, "◆"),
-    "no_geometry": StatusStyle(OKABE_ITO["yellow"], "*", "no geometry: location unknown, on no map", "star", 36.0, "★"),
-}
+#: how a status is drawn, and each status's style in drawing order: the registry's (geopress.findings)
+StatusStyle = Style
+STATUS_STYLE = _STATUS_STYLE
 BAND_COLOUR = OKABE_ITO["yellow"]
 LIMIT_STYLE = {
     "max_static": (OKABE_ITO["vermillion"], "--", "max-pressure limit: lower ground exceeds the maximum"),
@@ -791,8 +762,9 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "zone": str(r["zone"]), "source": str(r.get("source_kind", "")),
             "hgl": f"{L(r['hgl_low_ft'])} to {L(r['hgl_high_ft'])}",
             "customers": str(int(r["customers"])), "ok": str(int(r.get("n_ok", 0))),
-            "high": str(int(r.get("n_high", 0))), "low": str(int(r.get("n_low", 0))),
-            "above_hgl": str(int(r.get("n_above_hgl", 0))), "upper": str(int(r.get("n_low_upper_floors", 0))),
+            # per finding (registry order): customers with it as their status, and on its list
+            "by_status": [str(int(r.get(f"n_{s}", 0))) for s in FLAGGED_LAYERS],
+            "by_finding": [str(int(r.get(f"n_{c}", 0))) for c in FINDING_COLUMNS.values()],
             "flagged": str(flagged), **texts,
             "band": band,
         })
@@ -892,6 +864,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         title=title, info=_plain(info), counts=counts, rows=rows, zones=zones,
         criteria=crit, units=units, cautions=CAUTIONS, changes=_plain(changes) if (changes := info.get("changes")) and changes.get("baseline") else None,
         status_style=STATUS_STYLE, overrides=info.get("overrides") or {},
+        finding_counts=info.get("counts_by_finding", {}), lists=FLAGGED_LAYERS,
         overview=overview_map(overview, units) if overview is not None else None, imap=imap,
         sources=source_rows(sources, summary, units),
     )

@@ -1,11 +1,14 @@
 """Styles for the GeoPackage's layers in OGC Styled Layer Descriptor 1.0.0 (with its Filter Encoding 1.0): pure.
 
 Each style colours and shapes a layer's features as report.html does: the
-colours and markers are :data:`geopress.report.STATUS_STYLE`,
-:data:`~geopress.report.BAND_COLOUR` and :data:`~geopress.report.LIMIT_STYLE`,
-read from there, so one place knows each colour. A point layer gets one rule
-per status it can hold (``ogc:PropertyIsEqualTo`` on ``status``); the service
-band one polygon rule; the band limits one line rule per ``limit``.
+colours and markers of the statuses are the registry's
+(:data:`geopress.findings.STATUS_STYLE`), the band's and limits'
+:data:`geopress.report.BAND_COLOUR` and :data:`~geopress.report.LIMIT_STYLE`,
+read from there, so one place knows each colour. The ``customers`` and
+``changes`` layers get one rule per status (``ogc:PropertyIsEqualTo`` on
+``status``); a finding's layer one rule, without a filter, in its finding's
+style (every customer in it has that finding, whatever its status); the
+service band one polygon rule; the band limits one line rule per ``limit``.
 
 Needs the ``report`` extra, as the report does (its palette lives there).
 :func:`sld` returns the document as text and writes nothing.
@@ -17,8 +20,8 @@ import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from typing import Mapping, Sequence
 
-from .classify import FLAGGED_LAYERS, STATUSES
-from .report import BAND_COLOUR, LIMIT_STYLE, STATUS_STYLE
+from .findings import FLAGGED_LAYERS, STATUS_STYLE, STATUSES, finding_of_layer
+from .report import BAND_COLOUR, LIMIT_STYLE
 
 SLD_NS = "http://www.opengis.net/sld"
 OGC_NS = "http://www.opengis.net/ogc"
@@ -82,14 +85,16 @@ def _filter_equal(rule: ET.Element, field: str, value: str) -> None:
     _el(eq, "Literal", value, ns=OGC_NS)
 
 
-def _point_rule(fts: ET.Element, status: str) -> None:
+def _point_rule(fts: ET.Element, status: str, filtered: bool = True) -> None:
+    """A rule drawing ``status``'s marker: for the features of that status, or (not ``filtered``) for every one."""
     style = STATUS_STYLE[status]
     colour, label = style.colour, style.label
     well_known, rotation, filled = MARKS[style.marker]
     rule = _el(fts, "Rule")
     _el(rule, "Name", status)
     _el(rule, "Title", label)
-    _filter_equal(rule, "status", status)
+    if filtered:
+        _filter_equal(rule, "status", status)
     graphic = _el(_el(rule, "PointSymbolizer"), "Graphic")
     mark = _el(graphic, "Mark")
     _el(mark, "WellKnownName", well_known)
@@ -130,6 +135,16 @@ def status_style(layer: str, statuses: Sequence[str] = STATUSES) -> LayerStyle:
     return LayerStyle(layer, name, description, _text(root))
 
 
+def finding_style(layer: str) -> LayerStyle:
+    """A finding's layer: every point in that finding's colour and marker (whatever its status)."""
+    finding = finding_of_layer(layer)
+    name = f"{layer} ({finding})"
+    description = f"geopress: {layer}, every customer with the finding {finding}, as in report.html. {CAUTION}"
+    root, fts = _document(layer, name, description)
+    _point_rule(fts, finding, filtered=False)
+    return LayerStyle(layer, name, description, _text(root))
+
+
 def band_style(layer: str = "service_band") -> LayerStyle:
     """The service band: polygons filled in the report's band colour."""
     name = layer
@@ -164,16 +179,15 @@ def limit_style(layer: str = "band_limits") -> LayerStyle:
 def layer_styles(layers: Sequence[str]) -> Mapping[str, LayerStyle]:
     """The style of each of ``layers`` (output layer names) that has one, by layer.
 
-    ``customers`` and ``changes`` get a rule for every status; a flagged layer
-    (``high_pressure`` ...) only for the status it holds.
+    ``customers`` and ``changes`` get a rule for every status; a finding's layer
+    (``high_pressure`` ...) its finding's style (:func:`finding_style`).
     """
-    flagged = {layer: status for status, layer in FLAGGED_LAYERS.items()}
     out: dict[str, LayerStyle] = {}
     for layer in layers:
         if layer in ("customers", "changes"):
             out[layer] = status_style(layer)
-        elif layer in flagged:
-            out[layer] = status_style(layer, [flagged[layer]])
+        elif layer in FLAGGED_LAYERS.values():
+            out[layer] = finding_style(layer)
         elif layer == "service_band":
             out[layer] = band_style(layer)
         elif layer == "band_limits":

@@ -17,16 +17,9 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .classify import FLAGGED_LAYERS, STATUSES
+from .findings import FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, WORST
 from .pressure import Source
 
-#: for each flagged status, the pressure column that is worst and whether low or high is worse.
-WORST: dict[str, tuple[str, str]] = {
-    "high": ("psi_max", "max"),
-    "low": ("psi_min", "min"),
-    "above_hgl": ("psi_min", "min"),
-    "low_upper_floors": ("psi_top", "min"),
-}
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
 
 
@@ -106,11 +99,20 @@ def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return distinct, rank[code]
 
 
+def in_finding(customers: pd.DataFrame, finding: str) -> np.ndarray:
+    """Whether each customer has ``finding``: its ``finding_<name>`` column, or (a frame without it, as an earlier
+    run's) its status."""
+    column = FINDING_COLUMNS[finding]
+    if column in customers.columns:
+        return customers[column].to_numpy(dtype=bool, na_value=False)
+    return (customers["status"] == finding).to_numpy(dtype=bool)
+
+
 def mailing_list(
     customers: pd.DataFrame, status: str, *, id_field: str, mail_fields: Sequence[str],
     letter_fields: Sequence[str] = (),
 ) -> pd.DataFrame:
-    """One row per distinct mailing address among customers with ``status``.
+    """One row per distinct mailing address among customers with the finding ``status`` (see :func:`in_finding`).
 
     Columns: the mail fields, ``accounts`` (ids joined by "; ", sorted), the
     ``letter_fields`` (each the distinct values at the address, missing ones
@@ -124,7 +126,7 @@ def mailing_list(
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
     cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi"]
-    rows = np.flatnonzero((customers["status"] == status).to_numpy(dtype=bool))
+    rows = np.flatnonzero(in_finding(customers, status))
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
@@ -176,7 +178,7 @@ def mailing_list(
 
 def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequence[str],
                   letter_fields: Sequence[str] = ()) -> dict[str, pd.DataFrame]:
-    """Every flagged status's mailing list, keyed by output name (``high_pressure`` ...)."""
+    """Every finding's mailing list, keyed by output name (``high_pressure`` ...)."""
     return {
         FLAGGED_LAYERS[status]: mailing_list(customers, status, id_field=id_field, mail_fields=mail_fields,
                                              letter_fields=letter_fields)
@@ -185,10 +187,12 @@ def mailing_lists(customers: pd.DataFrame, *, id_field: str, mail_fields: Sequen
 
 
 def zone_summary(customers: pd.DataFrame, sources: Sequence[Source], psi_per_ft: float) -> pd.DataFrame:
-    """Per zone: source kind, HGL range, customer count, count by status, ground and psi_max spread."""
+    """Per zone: source kind, HGL range, customer count, count by status (``n_<status>``) and by finding
+    (``n_finding_<finding>``), ground and psi_max spread."""
     rows = []
     zone, status = customers["zone"], customers["status"]
     values = {col: customers[col].to_numpy(dtype=np.float64) for col in ("ground_ft", "psi_max")}
+    found = {name: in_finding(customers, name) for name in FINDINGS}
     for src in sources:
         high, low = src.hgl_range(psi_per_ft)
         sel = (zone == src.zone).to_numpy(dtype=bool)  # only the columns summarised, not a copy of every one
@@ -202,6 +206,8 @@ def zone_summary(customers: pd.DataFrame, sources: Sequence[Source], psi_per_ft:
         counts = status[sel].value_counts()
         for name in STATUSES:
             row[f"n_{name}"] = int(counts.get(name, 0))
+        for name in FINDINGS:
+            row[f"n_{FINDING_COLUMNS[name]}"] = int(np.count_nonzero(found[name][sel]))
         for col, all_vals in values.items():
             vals = all_vals[sel]
             vals = vals[~np.isnan(vals)]

@@ -29,6 +29,15 @@ def kinds(t: pd.DataFrame) -> dict[str, str]:
     return dict(zip(t["key"], t["change"]))
 
 
+def findings(statuses) -> dict:
+    """Each finding over customers that have only their status's (as a run written before the finding columns)."""
+    return changes.findings_of(pd.DataFrame({"status": list(statuses)}, dtype=object))
+
+
+def newly(prev: dict, cur: dict) -> dict:
+    return changes.newly_in_finding(table(prev, cur), findings(cur.values()), findings(prev.values()))
+
+
 def test_each_change():
     t = table({"a": "ok", "b": "high", "c": "low", "d": "high", "e": "ok", "g": "high"},
               {"a": "high", "b": "ok", "c": "above_hgl", "e": "ok", "f": "low", "g": "no_terrain"})
@@ -39,7 +48,8 @@ def test_each_change():
 def test_first_run_finds_every_customer_new():
     t = table({}, {"a": "high", "b": "ok"})
     assert kinds(t) == {"a": "new_customer", "b": "new_customer"}
-    assert changes.summarise(t, None).newly_in_status["high"] == 1
+    summary = changes.summarise(t, None, newly({}, {"a": "high", "b": "ok"}))
+    assert summary.newly_in_status["high"] == 1 and summary.newly_in_finding["high"] == 1
 
 
 def test_ids_are_compared_as_text():
@@ -65,15 +75,48 @@ def test_new_lists_reuse_the_full_lists_only_where_every_customer_is_new():
     fields = dict(id_field="acct", mail_fields=["owner", "addr"])
     full = mailing_lists(customers, **fields)
     cur = customers["acct"], customers["status"]
-    first = changes.compare(pd.Series([], dtype=object), pd.Series([], dtype=object), *cur)
-    later = changes.compare(pd.Series(["a"]), pd.Series(["high"]), *cur)  # a was already high: only b is new
-    for t in (first, later):
-        got = changes.new_mailing_lists(customers, t, **fields, full=full)
-        built = changes.new_mailing_lists(customers, t, **fields)
+    now = changes.findings_of(customers)
+    first = changes.newly_in_finding(changes.compare(pd.Series([], dtype=object), pd.Series([], dtype=object), *cur),
+                                     now, findings([]))
+    # a was already high: only b is new
+    later = changes.newly_in_finding(changes.compare(pd.Series(["a"]), pd.Series(["high"]), *cur), now,
+                                     findings(["high"]))
+    for rows in (first, later):
+        got = changes.new_mailing_lists(customers, rows, **fields, full=full)
+        built = changes.new_mailing_lists(customers, rows, **fields)
         assert list(got) == list(built)
         for name in built:
             pd.testing.assert_frame_equal(got[name], built[name], check_exact=True)  # a copy: no tolerance
     assert changes.new_mailing_lists(customers, later, **fields, full=full)["new_high_pressure"]["accounts"].tolist() == ["b"]
+
+
+def test_new_lists_follow_findings_not_the_status():
+    # a was high; now high with low upper floors too: newly on the upper-floors list only, status unchanged.
+    # b had both findings already: on no new list.
+    prev = pd.DataFrame({"acct": ["a", "b"], "status": ["high", "high"], "finding_high": [True, True],
+                         "finding_low_upper_floors": [False, True]})
+    cur = pd.DataFrame({
+        "acct": ["a", "b"], "owner": ["O1", "O2"], "zone": ["Z", "Z"], "status": ["high"] * 2,
+        "psi_max": [85.0, 90.0], "psi_min": [80.0, 85.0], "psi_top": [30.0, 25.0],
+        "finding_above_hgl": [False] * 2, "finding_low": [False] * 2, "finding_high": [True] * 2,
+        "finding_low_upper_floors": [True, True],
+    })
+    t = changes.compare(prev["acct"], prev["status"], cur["acct"], cur["status"])
+    assert set(t["change"]) == {"unchanged"}
+
+    def new_accounts(previous):
+        rows = changes.newly_in_finding(t, changes.findings_of(cur), changes.findings_of(previous))
+        return rows, {f: cur["acct"].to_numpy()[r].tolist() for f, r in rows.items()}
+
+    rows, got = new_accounts(prev)
+    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a"]}
+    lists = changes.new_mailing_lists(cur, rows, id_field="acct", mail_fields=["owner"])
+    assert lists["new_upper_floors"]["accounts"].tolist() == ["a"] and lists["new_high_pressure"].empty
+    # a run written before the finding columns had only its status's finding: both are new to upper floors
+    rows, got = new_accounts(prev[["acct", "status"]])
+    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a", "b"]}
+    lists = changes.new_mailing_lists(cur, rows, id_field="acct", mail_fields=["owner"])
+    assert lists["new_upper_floors"]["accounts"].tolist() == ["b", "a"]  # most severe (lowest psi_top) first
 
 
 status = st.sampled_from(STATUSES)
@@ -180,6 +223,8 @@ def test_second_run_reports_exactly_the_changes_made(world, changed):
     assert info["changes"]["counts"] == {"new_customer": 1, "removed": 1, "unchanged": 16, "newly_flagged": 1,
                                          "cleared": 1, "status_changed": 1}
     assert info["changes"]["newly_in_status"] == {"high": 1, "low": 1, "above_hgl": 1, "low_upper_floors": 0}
+    # each of these customers has one finding, its status's: the new lists hold the same customers
+    assert info["changes"]["newly_in_finding"] == {"above_hgl": 1, "low": 1, "high": 1, "low_upper_floors": 0}
 
     new = {now: k for k, (_, now, _) in expected.items() if now in FLAGGED_LAYERS}
     assert csv_accounts(world, "new_high_pressure") == [new["high"]]

@@ -453,9 +453,42 @@ def test_customers_layer_has_a_spatial_index(crafted):
         assert con.execute("select count(*) from rtree_customers_geom").fetchone()[0] == len(CRAFTED) - 1
 
 
+def test_a_customer_with_two_findings_is_on_both_lists(crafted):
+    # an 11-story tower on Main's lowest ground (col 0: 1001.5 ft): at the street 0.433 * (1200 - 1001.5) =
+    # 85.95 psi at high water, above 80; its top floor 10 * 10 ft up, at low water 0.433 * (1180 - 1101.5) =
+    # 33.99 psi, below 35, while the street keeps 0.433 * (1180 - 1001.5) = 77.29 psi: high and upper floors
+    root = crafted.parent
+    cust = pyogrio.read_dataframe(root / "customers.gpkg", layer="customers")
+    tower = gpd.GeoDataFrame({"account": ["A-tower"], "floors": [11], "owner": ["Owner T"],
+                              "mail_address": ["3 Tower Sq"]}, geometry=[crafted_point((0, 12))], crs=cust.crs)
+    pd.concat([cust, tower], ignore_index=True).to_file(root / "customers.gpkg", layer="customers", driver="GPKG")
+    res = run_crafted(crafted)
+    row = by_account(res.customers).loc["A-tower"]
+    assert row["status"] == "high"  # the first that applies
+    assert [row[f"finding_{f}"] for f in ("above_hgl", "low", "high", "low_upper_floors")] == [False, False, True, True]
+    assert row["reason"] == ("static pressure up to 86.0 psi exceeds 80 psi: individual PRV expected; "
+                             "top floor of 11 stories down to 34.0 psi is below 35 psi: upper floors need a booster")
+    assert res.counts["high"] == 3 and res.counts["low_upper_floors"] == 1
+    info = json.loads((root / "out/run.json").read_text())
+    assert info["counts"] == res.counts
+    assert info["counts_by_finding"] == {"above_hgl": 3, "low": 1, "high": 3, "low_upper_floors": 2}
+    out = root / "out/pressure.gpkg"
+    for layer, accounts in {"high_pressure": ["A-high", "A-high-2", "A-tower"],
+                            "upper_floors": ["A-tower", "A-upper"]}.items():
+        assert sorted(pyogrio.read_dataframe(out, layer=layer)["account"]) == accounts, layer
+    mailing = root / "out" / "mailing"
+    assert [r["accounts"] for r in read_csv(mailing / "upper_floors.csv")] == ["A-upper", "A-tower"]  # 31.8, 34.0
+    assert "A-tower" in [r["accounts"] for r in read_csv(mailing / "high_pressure.csv")]
+    summary = pyogrio.read_dataframe(out, layer="zone_summary", read_geometry=False).set_index("zone")
+    assert summary.loc["Main", ["n_high", "n_low_upper_floors", "n_finding_high", "n_finding_low_upper_floors"]
+                       ].tolist() == [3, 1, 3, 2]
+    html = (root / "out/report.html").read_text(encoding="utf-8")
+    assert 'id="finding-counts"' in html and "<code>upper_floors</code>" in html
+
+
 #: the layers that get a style, in the order the GeoPackage gets them
 #: the styled layers in the order the GeoPackage gets them: customers and its views, then the others
-STYLED = ["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors", "changes", "service_band",
+STYLED = ["customers", "above_hgl", "low_pressure", "high_pressure", "upper_floors", "changes", "service_band",
           "band_limits"]
 
 
@@ -472,7 +505,7 @@ def test_run_json_records_the_run(crafted):
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
         str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
-        for n in ("high_pressure", "low_pressure", "above_hgl", "upper_floors") for suffix in (".csv", ".xlsx")
+        for n in ("above_hgl", "low_pressure", "high_pressure", "upper_floors") for suffix in (".csv", ".xlsx")
     ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
     assert info["xlsx"] == {"written": True, "reason": None}
     assert info["styles"] == {"written": True, "layers": STYLED}

@@ -148,12 +148,13 @@ def test_changes_section_and_si_units():
     info = {"geopress_version": "x", "counts": {"ok": 2}, "config": {"zones": {"source": []}},
             "changes": {"baseline": "/runs/2026-01-01/pressure.gpkg",
                         "counts": {"unchanged": 1, "newly_flagged": 1, "cleared": 0},
-                        "newly_in_status": {"high": 1, "low": 0}}}
+                        "newly_in_status": {"high": 1, "low": 0}, "newly_in_finding": {"high": 1, "low": 0}}}
     pressures = {"Z": (np.array([40.0, 50.0]), np.array([60.0, 70.0]))}
     html = render(info=info, summary=_summary(), bands=None, maps=[], pressures=pressures, criteria=Criteria(),
                   units=SI)
     assert "Changes since the last run" in html and "/runs/2026-01-01/pressure.gpkg" in html
     assert "<td>newly_flagged</td><td class=\"num\">1</td>" in html
+    assert "<code>new_high_pressure</code></td><td class=\"num\">1</td>" in html  # the new list per finding
     # 1150 ft * 0.3048 = 350.52 m; 80 psi * 6.894757 = 551.6 kPa (NIST SP 811 factor, secondary)
     assert "high water 350.5 to 353.6 m" in html
     assert "551.6 kPa" in html

@@ -93,9 +93,15 @@ def test_every_status_has_a_rule_in_the_reports_colour_and_marker():
     assert len(drawn) == len(STATUSES) - 1
 
 
-def test_a_flagged_layer_has_only_its_status():
-    for status, layer in FLAGGED_LAYERS.items():
-        assert list(rules_by_status(parse(styles.status_style(layer, [status]).sld))) == [status]
+def test_a_findings_layer_draws_every_customer_in_its_findings_style():
+    # a finding's layer holds customers whose status may be another finding (a tall building on the
+    # upper-floors list is high first): one rule, no filter, in the finding's colour and marker
+    for finding, layer in FLAGGED_LAYERS.items():
+        doc = parse(styles.layer_styles([layer])[layer].sld)
+        rules = doc.findall(".//sld:Rule", NS)
+        assert len(rules) == 1 and rules[0].find("ogc:Filter", NS) is None
+        assert rules[0].findtext("sld:Name", namespaces=NS) == finding
+        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STATUS_STYLE[finding].colour
 
 
 def test_band_and_limit_styles_use_the_reports_colours():

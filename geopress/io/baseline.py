@@ -1,4 +1,4 @@
-"""Reading the previous run's customers (id and status) to compare a run against.
+"""Reading the previous run's customers (id, status and findings) to compare a run against.
 
 The baseline is the ``customers`` layer of an earlier geopress GeoPackage:
 by default the one at ``output.path`` before this run replaces it, or one
@@ -51,9 +51,10 @@ class Baseline:
 
 
 def read_baseline(
-    path: Path, *, id_field: str, mail_fields: Sequence[str], crs: CRS, key: str
+    path: Path, *, id_field: str, mail_fields: Sequence[str], crs: CRS, key: str, optional: Sequence[str] = ()
 ) -> Baseline:
-    """Read the baseline GeoPackage at ``path``; ``key`` names where it came from in errors.
+    """Read the baseline GeoPackage at ``path``; ``key`` names where it came from in errors. The ``optional``
+    fields (the finding columns, say) are read for every customer too, where the layer has them.
 
     Raises InputError when it is missing, not a GeoPackage geopress wrote, or
     lacks the id field or ``status``.
@@ -62,6 +63,7 @@ def read_baseline(
     fields = run_layer_fields(path, key=key, hint=hint)
     columns = [c for c in dict.fromkeys([id_field, "status", "zone", *mail_fields]) if c in fields]
     # only what the comparison needs: removed customers' other fields and geometry come from :meth:`Baseline.rows`
-    frame = read_run_layer(path, fields, required=(id_field, "status"), key=key, hint=hint, read_geometry=False)
+    frame = read_run_layer(path, fields, required=(id_field, "status"), optional=optional, key=key, hint=hint,
+                           read_geometry=False)
     log.info("baseline: %d customers from %s", len(frame), path)
     return Baseline(path=path, frame=frame, columns=columns, crs=crs)

@@ -259,12 +259,12 @@ class View:
 
     of: str
     column: str
-    values: tuple[str, ...]
+    values: tuple[str | bool, ...]
     rows: int
     extent: tuple[float | None, float | None, float | None, float | None]
 
 
-def view_of(of: str, frame: gpd.GeoDataFrame, column: str, values: tuple[str, ...]) -> View:
+def view_of(of: str, frame: gpd.GeoDataFrame, column: str, values: tuple[str | bool, ...]) -> View:
     """The :class:`View` of the rows of ``frame`` (written as layer ``of``) whose ``column`` is in ``values``."""
     match = frame[column].isin(values).to_numpy(dtype=bool)
     geoms = frame.geometry.to_numpy()[match]
@@ -421,8 +421,10 @@ def _quoted(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
 
-def _text(value: str) -> str:
-    """An SQL string literal."""
+def _text(value: str | bool) -> str:
+    """An SQL literal: a string quoted, a boolean as the integer a GeoPackage stores it as."""
+    if isinstance(value, (bool, np.bool_)):
+        return str(int(value))
     return "'" + value.replace("'", "''") + "'"
 
 

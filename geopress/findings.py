@@ -1,0 +1,180 @@
+"""The one registry of statuses and findings: pure, no I/O.
+
+Every status a customer can have is one :class:`Status` entry of
+:data:`REGISTRY`, in precedence order: its name, its condition, its reason
+sentence, its map style and, for a status that flags a customer for
+follow-up, its :class:`Finding` (output layer, mailing list, "worst"
+column). Classification (:mod:`geopress.classify`), the mailing lists and
+zone summary (:mod:`geopress.tables`), change tracking, planning, the
+report, the layer styles and the tests read it from here. Adding a finding
+is one entry here (and its test): its layer, list, ``new_`` list, column,
+counts, style and legend follow.
+
+A customer's **findings** are every flagged entry whose condition holds (a
+``finding_<name>`` boolean column each), so a customer can be on several
+lists; its **status** is the first entry whose condition holds, ``ok`` when
+none does. Findings are evaluated only for customers located, on the terrain
+and in a zone (the first three statuses say why the others cannot be).
+
+Each finding names one remedy, so its conditions are written not to overlap
+where the remedy would repeat: ``low`` is a street pressure above zero and
+below the minimum (at or below zero is ``above_hgl``, whose letter covers
+it); ``low_upper_floors`` is a top floor below the minimum where the street
+meets it (a low street's letter covers its upper floors). ``high`` overlaps
+with each of them: a tall building with 85 psi at the street and 30 psi on
+its top floor is both ``high`` and ``low_upper_floors``; a wide tank range
+can give ``high`` at high water and ``low`` at low water.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Mapping, NamedTuple
+
+import numpy as np
+from numpy.typing import NDArray
+
+#: Okabe-Ito colours (Okabe and Ito, "Color Universal Design", 2008), by name.
+OKABE_ITO = {
+    "black": "#000000", "orange": "#E69F00", "sky_blue": "#56B4E9", "bluish_green": "#009E73",
+    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish_purple": "#CC79A7",
+}
+
+
+class Style(NamedTuple):
+    """How a status is drawn: on the static maps (matplotlib ``marker``) and the interactive one (plotly ``symbol``)."""
+
+    colour: str
+    marker: str
+    label: str
+    symbol: str
+    #: marker area on the static maps, points squared; the interactive map's diameter in px follows its square root
+    size: float
+    #: the marker's shape as a character, for the tables
+    glyph: str
+
+
+@dataclass(frozen=True)
+class Values:
+    """What a condition reads, one array entry per customer: psi from :func:`geopress.pressure.customer_pressures`,
+    ground ft, and the criteria (a :class:`geopress.classify.Criteria`). ``extra`` holds any further per-customer
+    arrays a condition needs, by name."""
+
+    has_geometry: NDArray[np.bool_]
+    ground_ft: NDArray[np.float64]
+    zoned: NDArray[np.bool_]
+    psi_min: NDArray[np.float64]
+    psi_max: NDArray[np.float64]
+    psi_top: NDArray[np.float64]
+    criteria: Any
+    extra: Mapping[str, NDArray] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Finding:
+    """What a flagged status adds: its output layer (GeoPackage view and mailing list of that name, and
+    ``new_<layer>``), and the pressure column that is worst for it with whether its ``max`` or ``min`` is worse."""
+
+    layer: str
+    worst: str
+    worse: str
+
+
+@dataclass(frozen=True)
+class Status:
+    """One status: ``condition`` (None for ``ok``, the default), the reason ``sentence`` (a template for
+    str.format with the criteria as ``lo`` and ``hi`` and the ``numbers`` of :func:`geopress.classify.reasons`
+    filling its ``{}`` in order), its ``style``, its drawing ``layer_order`` on the maps (lowest first) and,
+    when it flags a customer, its :class:`Finding`."""
+
+    name: str
+    condition: Callable[[Values], NDArray[np.bool_]] | None
+    sentence: str
+    numbers: tuple[str, ...]
+    style: Style
+    layer_order: int
+    finding: Finding | None = None
+
+    @property
+    def column(self) -> str:
+        """The customer's boolean column for this finding."""
+        return f"finding_{self.name}"
+
+
+_C = OKABE_ITO
+REGISTRY: tuple[Status, ...] = (
+    Status("no_geometry", lambda v: ~v.has_geometry, "no usable geometry: location unknown", (),
+           Style(_C["yellow"], "*", "no geometry: location unknown, on no map", "star", 36.0, "★"), 7),
+    Status("no_terrain", lambda v: np.isnan(v.ground_ft),
+           "no ground elevation here (outside every DEM or on nodata)", (),
+           Style(_C["black"], "x", "no terrain: ground elevation unknown", "x", 36.0, "✕"), 1),
+    Status("unzoned", lambda v: ~v.zoned, "outside every pressure zone", (),
+           Style(_C["orange"], "P", "unzoned: in no pressure zone", "cross", 36.0, "✚"), 2),
+    Status("above_hgl", lambda v: v.psi_min <= 0.0,
+           "ground at {} ft is at or above the low HGL of {} ft: no service by gravity, booster service needed",
+           ("ground", "hgl_low"),
+           Style(_C["reddish_purple"], "D", "above HGL: no gravity service", "diamond", 36.0, "◆"), 6,
+           Finding("above_hgl", "psi_min", "min")),
+    Status("low", lambda v: (v.psi_min > 0.0) & (v.psi_min < v.criteria.min_static_psi),
+           "static pressure down to {} psi is below {lo} psi: low service pressure", ("pmin",),
+           Style(_C["blue"], "v", "low: below the minimum static pressure", "triangle-down", 40.0, "▼"), 4,
+           Finding("low_pressure", "psi_min", "min")),
+    Status("high", lambda v: v.psi_max > v.criteria.max_static_psi,
+           "static pressure up to {} psi exceeds {hi} psi: individual PRV expected", ("pmax",),
+           Style(_C["vermillion"], "^", "high: above the maximum static pressure", "triangle-up", 40.0, "▲"), 5,
+           Finding("high_pressure", "psi_max", "max")),
+    # psi_top is NaN for a single story, which compares False; the street is not low (that letter covers the floors)
+    Status("low_upper_floors",
+           lambda v: (v.psi_top < v.criteria.min_static_psi) & ~(v.psi_min < v.criteria.min_static_psi),
+           "top floor of {} stories down to {} psi is below {lo} psi: upper floors need a booster", ("stories", "ptop"),
+           Style(_C["sky_blue"], "s", "low upper floors: top floor below the minimum", "square", 36.0, "■"), 3,
+           Finding("upper_floors", "psi_top", "min")),
+    Status("ok", None, "static pressure {} to {} psi, within {lo} to {hi} psi", ("pmin", "pmax"),
+           Style(_C["bluish_green"], "o", "ok: within the pressure window", "circle", 14.0, "●"), 0),
+)
+del _C
+
+#: every status, in precedence order (``ok`` last)
+STATUSES: tuple[str, ...] = tuple(s.name for s in REGISTRY)
+BY_NAME: dict[str, Status] = {s.name: s for s in REGISTRY}
+#: the statuses that flag a customer, in precedence order: the findings
+FINDINGS: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.finding is not None)
+#: finding -> its output layer and mailing list
+FLAGGED_LAYERS: dict[str, str] = {s.name: s.finding.layer for s in REGISTRY if s.finding is not None}
+#: finding -> its boolean column of the customers
+FINDING_COLUMNS: dict[str, str] = {name: BY_NAME[name].column for name in FINDINGS}
+#: finding -> (the pressure column that is worst, whether its "max" or "min" is worse)
+WORST: dict[str, tuple[str, str]] = {s.name: (s.finding.worst, s.finding.worse) for s in REGISTRY
+                                     if s.finding is not None}
+#: status -> style, in drawing order: the first is drawn lowest, so every flagged status lies above ``ok``.
+#: ``no_geometry`` has no location and appears on no map, only in the tables.
+STATUS_STYLE: dict[str, Style] = {s.name: s.style for s in sorted(REGISTRY, key=lambda s: s.layer_order)}
+#: the statuses that say why no finding could be evaluated (no location, ground or zone)
+UNSCREENED: tuple[str, ...] = STATUSES[: STATUSES.index(FINDINGS[0])]
+
+
+def finding_of_layer(layer: str) -> str:
+    """The finding whose output layer (and mailing list) is ``layer``."""
+    return {v: k for k, v in FLAGGED_LAYERS.items()}[layer]
+
+
+def evaluate(values: Values) -> tuple[NDArray[np.int8], dict[str, NDArray[np.bool_]]]:
+    """Each customer's status code (index into :data:`STATUSES`) and each finding's boolean array.
+
+    Vectorised: each condition is one numpy expression over every customer.
+    """
+    n = np.asarray(values.has_geometry).shape[0]
+    held = {s.name: np.asarray(s.condition(values), dtype=bool) for s in REGISTRY if s.condition is not None}
+    screened = np.ones(n, dtype=bool)
+    for name in UNSCREENED:
+        screened &= ~held[name]
+    found = {name: held[name] & screened for name in FINDINGS}
+    codes = np.full(n, STATUSES.index("ok"), dtype=np.int8)
+    decided = np.zeros(n, dtype=bool)
+    for i, s in enumerate(REGISTRY):
+        if s.condition is None:
+            continue
+        now = held[s.name] & ~decided
+        codes[now] = i
+        decided |= now
+    return codes, found
