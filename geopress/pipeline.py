@@ -348,9 +348,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                                floor_height_ft=crit.floor_height_ft)
         levels = storage.level_columns(ground, zi, zones.zone_ids, crit, cfg.zones.sources)
         codes, found = cls.screen(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
-                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit, levels=levels)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
-                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found)
+                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found, levels=levels)
         frame = cust.frame
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]

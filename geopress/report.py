@@ -763,7 +763,7 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "hgl": f"{L(r['hgl_low_ft'])} to {L(r['hgl_high_ft'])}",
             "customers": str(int(r["customers"])), "ok": str(int(r.get("n_ok", 0))),
             # per finding (registry order): customers with it as their status, and on its list
-            "by_status": [str(int(r.get(f"n_{s}", 0))) for s in FLAGGED_LAYERS],
+            "by_status": [str(int(r[f"n_{s}"])) if f"n_{s}" in r else "–" for s in FLAGGED_LAYERS],  # –: no status
             "by_finding": [str(int(r.get(f"n_{c}", 0))) for c in FINDING_COLUMNS.values()],
             "flagged": str(flagged), **texts,
             "band": band,

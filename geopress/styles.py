@@ -20,7 +20,7 @@ import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from typing import Mapping, Sequence
 
-from .findings import FLAGGED_LAYERS, STATUS_STYLE, STATUSES, finding_of_layer
+from .findings import FLAGGED_LAYERS, STATUSES, STYLES, finding_of_layer
 from .report import BAND_COLOUR, LIMIT_STYLE
 
 SLD_NS = "http://www.opengis.net/sld"
@@ -87,7 +87,7 @@ def _filter_equal(rule: ET.Element, field: str, value: str) -> None:
 
 def _point_rule(fts: ET.Element, status: str, filtered: bool = True) -> None:
     """A rule drawing ``status``'s marker: for the features of that status, or (not ``filtered``) for every one."""
-    style = STATUS_STYLE[status]
+    style = STYLES[status]
     colour, label = style.colour, style.label
     well_known, rotation, filled = MARKS[style.marker]
     rule = _el(fts, "Rule")

@@ -13,6 +13,7 @@ import geopress
 from geopress import styles
 from geopress.classify import FLAGGED_LAYERS, STATUSES
 from geopress.report import BAND_COLOUR, LIMIT_STYLE, STATUS_STYLE
+from geopress.findings import STYLES
 
 NS = {"sld": styles.SLD_NS, "ogc": styles.OGC_NS}
 # The order of children in SLD 1.0.0's content models (OGC 02-070, the schema's xsd:sequence of each element;
@@ -101,7 +102,7 @@ def test_a_findings_layer_draws_every_customer_in_its_findings_style():
         rules = doc.findall(".//sld:Rule", NS)
         assert len(rules) == 1 and rules[0].find("ogc:Filter", NS) is None
         assert rules[0].findtext("sld:Name", namespaces=NS) == finding
-        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STATUS_STYLE[finding].colour
+        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STYLES[finding].colour  # a finding that is no status has a style too
 
 
 def test_band_and_limit_styles_use_the_reports_colours():
