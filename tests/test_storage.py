@@ -208,6 +208,44 @@ def test_pressure_at_each_storage_level_on_the_plane(world):
     np.testing.assert_allclose(c["psi_standby"], 0.5 * (standby_hgl - g), rtol=0, atol=1e-6)
 
 
+def test_each_storage_level_finds_the_customers_short_there(world):
+    import geopress
+
+    res = geopress.run(storage_world(world).config_path, write=False)
+    c = res.customers.set_index("account")
+    # ground of customer i is 302.5 + 5 i m = (302.5 + 5 i) / 0.3048 ft; i = 0..9 in West, 10..19 in East.
+    # fire, 20 psi at 0.5 psi/ft needs 40 ft of head:
+    #   East at 1325 ft: short where ground > 1285 ft = 391.668 m: 392.5 and 397.5 m (i = 18, 19)
+    #   West at 1120 ft: short where ground > 1080 ft = 329.184 m: 332.5 ... 347.5 m (i = 6 ... 9)
+    assert sorted(c.index[c["finding_fire_short"]]) == [f"C{i:04d}" for i in (6, 7, 8, 9, 18, 19)]
+    # standby, 25 psi needs 50 ft:
+    #   East at 1315 ft: short where ground > 1265 ft = 385.572 m: 387.5, 392.5, 397.5 m (i = 17, 18, 19)
+    #   West at 1120 ft: short where ground > 1070 ft = 326.136 m: 327.5 ... 347.5 m (i = 5 ... 9)
+    assert sorted(c.index[c["finding_standby_short"]]) == [f"C{i:04d}" for i in (5, 6, 7, 8, 9, 17, 18, 19)]
+    # peak hour, 30 psi needs 60 ft at the low HGL:
+    #   East at 1380 ft: short where ground > 1320 ft = 402.336 m: nobody (the highest is 397.5 m)
+    #   West at 1120 ft: short where ground > 1060 ft = 323.088 m: 327.5 ... 347.5 m (i = 5 ... 9)
+    assert sorted(c.index[c["finding_peak_hour_short"]]) == [f"C{i:04d}" for i in (5, 6, 7, 8, 9)]
+    # findings only: the status is what normal operation gives. East's customer 17 (387.5 m = 1271.33 ft) keeps
+    # 0.5 * (1380 - 1271.33) = 54.3 psi at low water and 0.5 * (1400 - 1271.33) = 64.3 psi at high: ok
+    assert c.loc["C0017", "status"] == "ok"
+    assert c.loc["C0017", "reason"] == ("with standby and equalizing storage used, static pressure down to 21.8 psi "
+                                        "is below 25 psi")  # 0.5 * (1315 - 1271.33) = 21.83
+    assert res.info["counts_by_finding"]["fire_short"] == 6
+    for name in ("peak_hour_short", "fire_short", "standby_short"):
+        assert name not in res.counts  # no customer has it as a status
+
+
+def test_levels_not_checked_find_nobody(world):
+    import geopress
+
+    res = geopress.run(world.config_path, write=False)  # no storage minimum set, no storage level given
+    c = res.customers
+    assert "psi_fire" not in c.columns and "psi_standby" not in c.columns
+    for name in ("peak_hour_short", "fire_short", "standby_short"):
+        assert not c[f"finding_{name}"].any()
+
+
 def test_a_booster_with_a_no_demand_hgl_through_the_pipeline(world):
     import geopress
 
