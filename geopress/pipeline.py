@@ -405,6 +405,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   "overlaps": overlap_info},
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
+        "storage_levels": storage.record(crit, cfg.zones.sources),
     }
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
                   plan=plan, wkb=cust.wkb)

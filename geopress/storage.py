@@ -116,3 +116,18 @@ def level_columns(ground_ft: ArrayLike, zone_index: ArrayLike, zone_names: Seque
     k = getattr(criteria, "psi_per_ft")
     return {lv.column: level_psi(ground_ft, zone_index, zone_names, zone_levels(lv.name, sources, k), k)
             for lv in active(criteria, sources) if lv.column != "psi_min"}
+
+
+def record(criteria: object, sources: Sequence[Source]) -> list[dict[str, object]]:
+    """Each level whose minimum is set, for run.json: its minimum (psi), whether it is checked, and each zone
+    that has it with its HGL there (ft). A level no zone has checks nobody: the record says so."""
+    k = getattr(criteria, "psi_per_ft")
+    out = []
+    for lv in LEVELS:
+        minimum = getattr(criteria, lv.minimum)
+        if minimum is None:
+            continue
+        zones = zone_levels(lv.name, sources, k)
+        out.append({"level": lv.name, "minimum_psi": minimum, "checked": bool(zones),
+                    "zones": {z: round(h, 2) for z, h in zones.items()}})
+    return out

@@ -234,6 +234,16 @@ def test_each_storage_level_finds_the_customers_short_there(world):
     assert res.info["counts_by_finding"]["fire_short"] == 6
     for name in ("peak_hour_short", "fire_short", "standby_short"):
         assert name not in res.counts  # no customer has it as a status
+    assert res.info["storage_levels"][1] == {"level": "fire", "minimum_psi": 20.0, "checked": True,
+                                             "zones": {"West": 1120.0, "East": 1325.0}}
+
+
+def test_a_minimum_no_zone_can_check_is_recorded_as_such():
+    from geopress.storage import record
+
+    crit = Criteria(fire_min_psi=20.0)
+    assert record(crit, SOURCES[3:]) == [{"level": "fire", "minimum_psi": 20.0, "checked": False, "zones": {}}]
+    assert record(Criteria(), SOURCES) == []
 
 
 def test_levels_not_checked_find_nobody(world):
