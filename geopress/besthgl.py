@@ -25,6 +25,15 @@ level (``from == to``).
 
 Customers without ground elevation (``no_terrain``) are left out: no level
 changes their status.
+
+What an operator can set (:func:`settable`): the levels of a :class:`Dial`
+(whole steps of tank level, PRV setting or discharge HGL), within the
+source's bounds. The flagged count at each step is exact
+(:meth:`FlaggedCount.at`); the steps kept are the longest run at the exact
+minimum (whole steps inside the optimum) or, when the optimum is narrower
+than a step, the single step that flags fewest; the robust range is the
+longest run of steps within a tolerance of the minimum
+(:func:`robust_tolerance`).
 """
 
 from __future__ import annotations

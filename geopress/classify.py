@@ -59,7 +59,8 @@ class Criteria:
     least static pressure at ground with the zone at its low HGL (peak hour,
     equalizing storage used), and with a tank drawn to the bottom of its fire
     suppression or its standby storage. ``rule_set`` names the published set
-    of values the config started from (:mod:`geopress.rulesets`), if any.
+    of values the config started from (a shipped file of ``geopress/rule_sets``,
+    or the path of the user's own; see :func:`geopress.config.rule_set_names`), if any.
     """
 
     max_static_psi: float = 80.0

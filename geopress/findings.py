@@ -173,6 +173,8 @@ STATUSES: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.is_status)
 BY_NAME: dict[str, Status] = {s.name: s for s in REGISTRY}
 #: the statuses that flag a customer, in precedence order: the findings
 FINDINGS: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.finding is not None)
+#: the findings that are also statuses (the statuses that flag a customer), in precedence order
+FLAGGED_STATUSES: tuple[str, ...] = tuple(name for name in FINDINGS if name in STATUSES)
 #: finding -> its output layer and mailing list
 FLAGGED_LAYERS: dict[str, str] = {s.name: s.finding.layer for s in REGISTRY if s.finding is not None}
 #: finding -> its boolean column of the customers

@@ -11,7 +11,8 @@ import pytest
 
 import geopress
 from geopress import pipeline
-from geopress.classify import FLAGGED_LAYERS, STATUSES, Criteria
+from geopress.classify import STATUSES, Criteria
+from geopress.findings import FLAGGED_STATUSES
 from geopress.report import OKABE_ITO, STATUS_STYLE, render
 from geopress.scenario import load_scenario
 from geopress.units import SI, US
@@ -134,8 +135,8 @@ def test_status_colours_are_okabe_ito_and_every_status_has_its_own_colour_and_ma
         assert len({getattr(st, field) for st in STATUS_STYLE.values()}) == len(STATUSES), field
     # drawn in the dict's order: every flagged status above ok, and larger
     order = list(STATUS_STYLE)
-    assert all(order.index(s) > order.index("ok") for s in FLAGGED_LAYERS)
-    assert all(STATUS_STYLE[s].size > STATUS_STYLE["ok"].size for s in FLAGGED_LAYERS)
+    assert all(order.index(s) > order.index("ok") for s in FLAGGED_STATUSES)
+    assert all(STATUS_STYLE[s].size > STATUS_STYLE["ok"].size for s in FLAGGED_STATUSES)
 
 
 def _summary():
