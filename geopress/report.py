@@ -710,11 +710,11 @@ def _count(value: Any) -> str:
 
 def control_texts(r: Mapping[str, Any], units: Units) -> dict[str, str]:
     """A zone_summary row's control ranges as display text in ``units``: ``best`` (the whole steps an operator
-    can set, or the single best step), ``flagged_at_best`` (what they flag), ``exact`` (the exact optimum,
+    can set, or the single best step; ``best_note`` says which, at length), ``flagged_at_best`` (what they flag), ``exact`` (the exact optimum,
     against what the source can do) and ``robust``."""
     key = r.get("control")
     if key not in _CONTROLS:
-        return {"best": "–", "flagged_at_best": "–", "exact": "–", "robust": "–"}
+        return {"best": "–", "best_note": "–", "flagged_at_best": "–", "exact": "–", "robust": "–"}
     label, length = _CONTROLS[key]
     unit = units.length if length else units.pressure
     V = lambda v: _fmt(float(units.length_from_ft(v) if length else units.pressure_from_psi(v)))  # noqa: E731
@@ -731,16 +731,19 @@ def control_texts(r: Mapping[str, Any], units: Units) -> dict[str, str]:
     if where in ("outside", "partly outside"):
         exact += f"; {where} what the source can do ({label} {' '.join(x for x in limits if x)} {unit})"
     if pd.isna(r.get("step_from")):
-        best = "no step serves any customer"
+        best = note = "no step serves any customer"
     elif r.get("steps_inside_optimum"):
-        best = f"{label} {span(r['step_from'], r['step_to'])} (whole {step} {unit} steps inside the exact optimum)"
+        best = f"{label} {span(r['step_from'], r['step_to'])}"
+        note = f"{best}: whole {step} {unit} steps inside the exact optimum"
     else:
-        best = (f"{label} {span(r['step_from'], r['step_to'])} (the exact optimum is narrower than one {step} {unit} "
-                "step: the best single step)")
+        best = f"{label} {span(r['step_from'], r['step_to'])} (one step)"
+        note = (f"{label} {span(r['step_from'], r['step_to'])}: the exact optimum is narrower than one {step} {unit} "
+                "step, and this is the step that flags fewest")
     robust = "–" if pd.isna(r.get("robust_from")) else (
         f"{label} {span(r['robust_from'], r['robust_to'])}, flags at most {_count(r.get('flagged_robust'))} "
         f"(the minimum plus up to {_count(r.get('robust_tolerance'))})")
-    return {"best": best, "flagged_at_best": _count(r.get("flagged_at_step")), "exact": exact, "robust": robust}
+    return {"best": best, "best_note": note, "flagged_at_best": _count(r.get("flagged_at_step")), "exact": exact,
+            "robust": robust}
 
 
 def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units, criteria: Criteria) -> list[dict[str, str]]:

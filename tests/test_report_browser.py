@@ -142,7 +142,11 @@ def test_status_colours_are_okabe_ito_and_every_status_has_its_own_colour_and_ma
 def _summary():
     return pd.DataFrame({"zone": ["Z"], "source_kind": ["tank"], "hgl_high_ft": [1200.0], "hgl_low_ft": [1180.0],
                          "customers": [2], "n_ok": [2], "best_high_water_ft_from": [1150.0],
-                         "best_high_water_ft_to": [1160.0], "flagged_at_best": [0]})
+                         "best_high_water_ft_to": [1160.0], "flagged_at_best": [0], "control": ["high_water_ft"],
+                         "control_step": [1.0], "control_min": [np.nan], "control_max": [np.nan],
+                         "optimum_vs_bounds": ["inside"], "step_from": [1150.0], "step_to": [1160.0],
+                         "flagged_at_step": [0], "steps_inside_optimum": [True], "robust_from": [1148.0],
+                         "robust_to": [1162.0], "flagged_robust": [1], "robust_tolerance": [5]})
 
 
 def test_changes_section_and_si_units():
