@@ -44,7 +44,7 @@ from .io import write as write_io
 from .pressure import M_PER_FT, customer_pressures
 from . import targets as targets_mod
 from .changes import CHANGES
-from .findings import AREA_COLUMNS
+from .findings import AREA_COLUMNS, FLAGGED_STATUSES
 from .tables import mailing_lists, zone_summary
 from .units import customers_in_units, mailing_columns_in_units, units_for
 from .zones import assign_xy, overlaps
@@ -462,7 +462,7 @@ def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray,
     info = {"enabled": cfg.targets.enabled, "distance_ft": cfg.targets.distance_ft,
             "min_customers": cfg.targets.min_customers,
             "clustered_in": crs.to_string(), "areas": int(len(layer)),
-            "by_finding": {f: int((layer["finding"] == f).sum()) for f in cls.FINDINGS},
+            "by_finding": {f: int((layer["finding"] == f).sum()) for f in FLAGGED_STATUSES},  # the findings that get areas
             "customers_in_areas": int(layer["customers"].sum())}
     return areas, layer, info
 
