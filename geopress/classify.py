@@ -32,7 +32,7 @@ import pandas as pd
 import pyarrow as pa
 from numpy.typing import ArrayLike, NDArray
 
-from .findings import BY_NAME, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, Values, evaluate
+from .findings import AREA_COLUMNS, BY_NAME, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, Values, evaluate
 from .pressure import DEFAULT_PSI_PER_FT
 from .storage import LEVELS
 
@@ -42,7 +42,7 @@ __all__ = ["CODE", "FINDINGS", "FINDING_COLUMNS", "FLAGGED_LAYERS", "RESULT_COLU
 #: per-customer result columns written after the id field; input fields may not reuse these names.
 RESULT_COLUMNS: tuple[str, ...] = (
     "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "psi_fire", "psi_standby",
-    "status", "reason", *FINDING_COLUMNS.values(), "geometry",
+    "status", "reason", *FINDING_COLUMNS.values(), *AREA_COLUMNS.values(), "geometry",
 )
 CODE = {name: np.int8(i) for i, name in enumerate(STATUSES)}
 

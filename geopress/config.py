@@ -25,6 +25,7 @@ from pyproj import CRS
 from pyproj.exceptions import CRSError
 
 from .classify import RESULT_COLUMNS, Criteria
+from .targets import TargetCriteria
 from .errors import ConfigError
 from .pressure import VERTICAL_UNITS, PrvSource, PumpSource, Source, TankSource
 from .terrain import METHODS
@@ -153,6 +154,8 @@ class Config:
     criteria: Criteria
     output: OutputConfig
     operator: OperatorConfig = field(default_factory=OperatorConfig)
+    #: how target areas are formed (the optional ``[targets]`` section)
+    targets: TargetCriteria = TargetCriteria()
     source_path: Path | None = field(default=None, compare=False)
     #: the dotted-key overrides applied on top of the file (what-if runs), in the order given.
     overrides: tuple[tuple[str, Any], ...] = field(default=(), compare=False)
@@ -183,6 +186,7 @@ class Config:
             "criteria": _plain(self.criteria),
             "output": _plain(self.output),
             "operator": _plain(self.operator),
+            "targets": _plain(self.targets),
         }
 
 
@@ -466,7 +470,7 @@ class _Reader:
 
     # -- sections ----------------------------------------------------------
     def build(self, data: dict[str, Any]) -> Config:
-        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "operator"})
+        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "operator", "targets"})
         cfg = Config(
             customers=self.customers(self.table(data, "customers")),
             terrain=self.terrain(self.table(data, "terrain")),
@@ -474,6 +478,7 @@ class _Reader:
             criteria=self.criteria(self.table(data, "criteria", required=False)),
             output=self.output(self.table(data, "output")),
             operator=self.operator(self.table(data, "operator", required=False)),
+            targets=self.targets(self.table(data, "targets", required=False)),
             source_path=self.source_path,
         )
         inputs = {p: name for name, p in [("customers.path", cfg.customers.path), ("zones.path", cfg.zones.path)]}
@@ -753,6 +758,21 @@ class _Reader:
             raise self.error("operator.robust_customers", f"must be a whole number >= 0, not {v['robust_customers']:g}")
         v["robust_customers"] = int(v["robust_customers"])
         return OperatorConfig(**v)
+
+    def targets(self, t: dict[str, Any]) -> TargetCriteria:
+        s = "targets"
+        defaults = TargetCriteria()
+        self.no_unknown(t, s, {"distance_ft", "min_customers", "enabled"})
+        distance = self.get(t, s, "distance_ft", "number", defaults.distance_ft)
+        if distance <= 0:
+            raise self.error("targets.distance_ft", f"must be positive, not {distance:g}")
+        count = self.get(t, s, "min_customers", "number", float(defaults.min_customers))
+        if count < 1 or count != int(count):
+            raise self.error("targets.min_customers", f"must be a whole number of at least 1, not {count:g}")
+        enabled = t.get("enabled", True)
+        if not isinstance(enabled, bool):
+            raise self.error("targets.enabled", f"must be true or false, not {enabled!r}")
+        return TargetCriteria(distance_ft=distance, min_customers=int(count), enabled=enabled)
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"

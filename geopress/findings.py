@@ -105,6 +105,11 @@ class Status:
         """The customer's boolean column for this finding."""
         return f"finding_{self.name}"
 
+    @property
+    def area_column(self) -> str:
+        """The customer's column naming its target area of this finding (geopress.targets), missing where none."""
+        return f"target_area_{self.name}"
+
 
 def _short_at(v: Values, level: str) -> NDArray[np.bool_]:
     """Whether the pressure at a storage level (:mod:`geopress.storage`) is below its minimum: nowhere when the
@@ -179,6 +184,8 @@ FLAGGED_STATUSES: tuple[str, ...] = tuple(name for name in FINDINGS if name in S
 FLAGGED_LAYERS: dict[str, str] = {s.name: s.finding.layer for s in REGISTRY if s.finding is not None}
 #: finding -> its boolean column of the customers
 FINDING_COLUMNS: dict[str, str] = {name: BY_NAME[name].column for name in FINDINGS}
+#: finding -> the customers' column naming their target area of it
+AREA_COLUMNS: dict[str, str] = {name: BY_NAME[name].area_column for name in FINDINGS}
 #: finding -> (the pressure column that is worst, whether its "max" or "min" is worse)
 WORST: dict[str, tuple[str, str]] = {s.name: (s.finding.worst, s.finding.worse) for s in REGISTRY
                                      if s.finding is not None}

@@ -41,8 +41,10 @@ from .io import datum as datum_io
 from .io import raster as raster_io
 from .io import vector as vector_io
 from .io import write as write_io
-from .pressure import customer_pressures
+from .pressure import M_PER_FT, customer_pressures
+from . import targets as targets_mod
 from .changes import CHANGES
+from .findings import AREA_COLUMNS, FLAGGED_STATUSES
 from .tables import mailing_lists, zone_summary
 from .units import customers_in_units, mailing_columns_in_units, units_for
 from .zones import assign_xy, overlaps
@@ -88,6 +90,8 @@ class Result:
     # set by geopress.nightly.track: the baseline's customers this run lacks, and the new_* mailing lists
     removed: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
+    #: the target areas (geopress.targets), polygons in the customers' CRS
+    areas: gpd.GeoDataFrame | None = None
 
 
 class _Clock:
@@ -351,6 +355,10 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                                   psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit, levels=levels)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
                              psi_top=p.psi_top, floors=floors, criteria=crit, findings=found, levels=levels)
+    with clock.step("target areas"):
+        areas, area_layer, area_info = _target_areas(
+            cfg, cust, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]), ground, floors, p, codes, found)
+    with clock.step("customer table"):
         frame = cust.frame
         id_field = cfg.customers.id_field
         extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
@@ -367,6 +375,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "status": cls.status_names(codes),
             "reason": reason,
             **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
+            **{AREA_COLUMNS[name]: areas.member[name] for name in cls.FINDINGS},
         }
         for c in extra:
             data[c] = _values(frame[c])
@@ -406,9 +415,56 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
         "storage_levels": storage.record(crit, cfg.zones.sources),
+        "target_areas": area_info,
     }
     return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan, wkb=cust.wkb)
+                  plan=plan, wkb=cust.wkb, areas=area_layer)
+
+
+def _projected(x: np.ndarray, y: np.ndarray, crs: pyproj.CRS) -> tuple[np.ndarray, np.ndarray, float, pyproj.CRS]:
+    """The points in a projected CRS, its ft per unit, and that CRS: the customers' own when projected, else the
+    UTM zone (WGS 84) at the centre of their extent."""
+    if crs.is_projected:
+        return x, y, crs.axis_info[0].unit_conversion_factor / M_PER_FT, crs
+    from pyproj.aoi import AreaOfInterest
+    from pyproj.database import query_utm_crs_info
+
+    finite = np.isfinite(x) & np.isfinite(y)
+    lon = float((np.min(x[finite]) + np.max(x[finite])) / 2) if finite.any() else 0.0
+    lat = float((np.min(y[finite]) + np.max(y[finite])) / 2) if finite.any() else 0.0
+    utm = pyproj.CRS.from_epsg(int(query_utm_crs_info(
+        datum_name="WGS 84", area_of_interest=AreaOfInterest(lon, lat, lon, lat))[0].code))
+    ux, uy = pyproj.Transformer.from_crs(crs, utm, always_xy=True).transform(x, y)
+    return np.asarray(ux), np.asarray(uy), utm.axis_info[0].unit_conversion_factor / M_PER_FT, utm
+
+
+def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray, ground: np.ndarray,
+                  floors: np.ndarray, p: Any, codes: np.ndarray, found: dict[str, np.ndarray],
+                  ) -> tuple[targets_mod.Areas, gpd.GeoDataFrame, dict[str, Any]]:
+    """The target areas (geopress.targets) of a run: the areas, their layer in the customers' CRS, and what
+    run.json records of them."""
+    crit = cfg.criteria
+    names = [s.zone for s in cfg.zones.sources]
+    low = {s.zone: s.hgl_range(crit.psi_per_ft)[1] for s in cfg.zones.sources}
+    x, y, ft_per_unit, crs = _projected(cust.x, cust.y, cust.crs)
+    mail = list(cfg.customers.mail_fields)
+    address = (cust.frame.groupby(mail, dropna=False, sort=False).ngroup().to_numpy() if mail
+               else np.arange(len(ground)))
+    top = np.where(floors > 1, ground + (floors - 1) * crit.floor_height_ft, ground)  # NaN floors: one story
+    areas = targets_mod.target_areas(
+        x=x, y=y, ft_per_unit=ft_per_unit, zone=zone_code, zone_names=names,
+        zone_low_hgl_ft=np.array([low[n] for n in names]), ground_ft=ground, top_ft=top,
+        pressures={"psi_min": p.psi_min, "psi_max": p.psi_max, "psi_top": p.psi_top}, found=found,
+        ok=codes == cls.CODE["ok"], address=address, criteria=crit, targets=cfg.targets)
+    layer = gpd.GeoDataFrame(areas.table, geometry="geometry", crs=crs)
+    if not crs.equals(cust.crs):
+        layer = layer.to_crs(cust.crs)
+    info = {"enabled": cfg.targets.enabled, "distance_ft": cfg.targets.distance_ft,
+            "min_customers": cfg.targets.min_customers,
+            "clustered_in": crs.to_string(), "areas": int(len(layer)),
+            "by_finding": {f: int((layer["finding"] == f).sum()) for f in FLAGGED_STATUSES},  # the findings that get areas
+            "customers_in_areas": int(layer["customers"].sum())}
+    return areas, layer, info
 
 
 def _ground_row(zg: guards.ZoneGround, psi_per_ft: float) -> dict[str, Any]:
@@ -444,6 +500,8 @@ def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> 
 def later_layers(result: Result) -> dict[str, write_io.Layer]:
     """The GeoPackage's other layers, in writing order, added once :func:`customer_layers` are written."""
     layers: dict[str, write_io.Layer] = {"zone_summary": result.zone_summary}
+    if result.areas is not None:
+        layers["target_areas"] = write_io.Polygons(result.areas)
     if result.plan is not None:
         layers["service_band"] = result.plan.bands
         layers["band_limits"] = result.plan.limits
@@ -561,7 +619,7 @@ def output_targets(config: Config) -> list[Path]:
     out = config.output
     names = [*cls.FLAGGED_LAYERS.values(), *[f"new_{n}" for n in cls.FLAGGED_LAYERS.values()]]
     lists = [out.mailing_dir / f"{n}{suffix}" for n in names for suffix in (".csv", ".xlsx")]
-    styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
+    styled = ["customers", *cls.FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes", "target_areas"]
     return [out.path, nightly.baseline_link(out.path), *lists, *[style_path(config, layer) for layer in styled],
             report_path(config), run_json_path(config)]
 
@@ -585,7 +643,7 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     path = report_path(cfg)
     info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
     info["outputs"].append(str(path))
-    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info)
+    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info, result.areas)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 

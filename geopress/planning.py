@@ -312,7 +312,7 @@ def _xy(geom: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
 
 
 def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
-                info: dict[str, Any]) -> str:
+                info: dict[str, Any], areas: gpd.GeoDataFrame | None = None) -> str:
     """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`).
 
     Each zone map is drawn in the CRS of its zone's first raster; the maps of
@@ -384,5 +384,11 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         psi_max=psi_max[pick], status=status_names[status_code[pick]], reason=picked("reason"), counts=counts,
     )
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
+    areas_drawn = None
+    if areas is not None:
+        shapes = areas.geometry.to_numpy() if areas.crs is None or areas.crs.equals(crs) else areas.to_crs(crs).geometry.to_numpy()
+        areas_drawn = report.AreasMap(background=overview, areas=list(zip(areas["area"], areas["finding"], shapes)))
     return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
-                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive)
+                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive,
+                         areas=None if areas is None else pd.DataFrame(areas.drop(columns=areas.geometry.name)),
+                         areas_drawn=areas_drawn)

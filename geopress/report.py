@@ -506,6 +506,86 @@ def overview_figure(m: OverviewMap, units: Units) -> Figure:
     return fig
 
 
+# ---- target areas ---------------------------------------------------------------------------------
+
+#: the areas map names this many areas (the largest); the table lists at most AREA_ROWS
+AREA_LABELS = 25
+AREA_ROWS = 200
+#: a target area's fill opacity, here and in its layer's style, so the hillshade shows through
+AREA_OPACITY = 0.6
+
+
+@dataclass
+class AreasMap:
+    """The target areas over the overview's background: ``areas`` rows of (area id, finding, polygon in the map's
+    CRS), most customers first."""
+
+    background: OverviewMap
+    areas: Sequence[tuple[str, str, Any]]
+
+
+def areas_map(m: AreasMap, units: Units) -> str:
+    """PNG data URI of :func:`areas_figure`."""
+    return _png(areas_figure(m, units))
+
+
+def areas_figure(m: AreasMap, units: Units) -> Figure:
+    """Every zone outlined, and every target area filled in its finding's colour, the largest named."""
+    import matplotlib.patheffects as pe
+    import shapely
+
+    bg = m.background
+    bounds = _bounds(bg.outlines, np.array([]), np.array([]))
+    polygons = [g for _, _, g in m.areas if not g.is_empty]
+    if not bg.outlines and polygons:
+        bounds = shapely.union_all(polygons).bounds
+    fig, ax = _map_figure(bounds, bg.frame)
+    _shade_under(ax, bg.terrain, bg.frame)
+    for geom in bg.outlines.values():
+        if not geom.is_empty:
+            _draw(ax, geom, color="black", linewidth=1.2, zorder=3)
+    handles: list[Any] = [Line2D([], [], color="black", linewidth=1.2, label="pressure zone outline")]
+    shown = set()
+    for n, (area, finding, geom) in enumerate(m.areas):
+        style = STATUS_STYLE[finding]
+        _draw(ax, geom, facecolor=style.colour, edgecolor="black", linewidth=0.8, alpha=AREA_OPACITY, zorder=10)
+        shown.add(finding)
+        if n < AREA_LABELS:
+            p = shapely.point_on_surface(geom)
+            ax.text(p.x, p.y, area, ha="center", va="center", fontsize=FONT_PT, fontweight="bold", zorder=30,
+                    path_effects=[pe.withStroke(linewidth=3, foreground="white")])
+    handles += [Patch(facecolor=STATUS_STYLE[f].colour, edgecolor="black", alpha=AREA_OPACITY, label=f"target area: {f}")
+                for f in FLAGGED_LAYERS if f in shown]
+    width = _limits(ax, bounds, bg.frame)
+    _furniture(ax, bg.frame, units, width)
+    ax.set_title("Target areas: customers with one finding in one zone, close together", fontsize=FONT_PT + 3)
+    named = min(len(m.areas), AREA_LABELS)
+    _legend(ax, handles, f"{len(m.areas):,} areas, the {named:,} largest named; up is {bg.frame.north}")
+    return fig
+
+
+def area_rows(areas: pd.DataFrame, units: Units) -> list[dict[str, str]]:
+    """The target areas as display text, in ``units``, at most :data:`AREA_ROWS`."""
+    L = lambda ft: _fmt(float(units.length_from_ft(ft)))  # noqa: E731
+    P = lambda psi: _fmt(float(units.pressure_from_psi(psi)))  # noqa: E731
+    rows = []
+    for r in areas.head(AREA_ROWS).to_dict("records"):
+        if r["note"]:
+            fix = f"{r['fix']}: {r['note']}"
+        else:
+            fix = (f"{r['fix']} at an HGL of {L(r['hgl_ft_from'])} to {L(r['hgl_ft_to'])} {units.length} "
+                   f"({P(r['psi_at_lowest_from'])} to {P(r['psi_at_lowest_to'])} {units.pressure} at its lowest "
+                   f"customer, {L(r['ground_ft_min'])} {units.length})")
+        rows.append({
+            "area": str(r["area"]), "finding": str(r["finding"]), "list": FLAGGED_LAYERS[r["finding"]],
+            "zone": str(r["zone"]), "customers": f"{int(r['customers']):,}", "addresses": f"{int(r['addresses']):,}",
+            "ground": f"{L(r['ground_ft_min'])} to {L(r['ground_ft_max'])}", "worst": P(r["worst_psi"]),
+            "ok_inside": f"{int(r['ok_inside']):,}", "fix": fix, "replaces": f"{int(r['replaces']):,}",
+            "glyph": STATUS_STYLE[r["finding"]].glyph, "colour": STATUS_STYLE[r["finding"]].colour,
+        })
+    return rows
+
+
 # ---- interactive map ------------------------------------------------------------------------------
 
 #: the interactive map draws every flagged (and unzoned, no-terrain) customer up to INTERACTIVE_FLAGGED,
@@ -826,6 +906,7 @@ def _plain(value: Any) -> Any:
 def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFrame | None, maps: Sequence[ZoneMap],
            pressures: Mapping[str, tuple[np.ndarray, np.ndarray]], criteria: Criteria, units: Units,
            overview: OverviewMap | None = None, interactive: InteractiveMap | None = None,
+           areas: pd.DataFrame | None = None, areas_drawn: AreasMap | None = None,
            title: str = "geopress static pressure screening") -> str:
     """The report page as HTML text.
 
@@ -833,7 +914,8 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
     holds one :class:`ZoneMap` per zone that has terrain; ``overview`` and
     ``interactive`` are the maps of all zones (each left out when None);
     ``info`` is what run.json records (its ``changes`` section is shown when
-    there was an earlier run to compare with).
+    there was an earlier run to compare with); ``areas`` the target areas'
+    table (geopress.targets) and ``areas_drawn`` their map (each left out when None).
     """
     env = jinja2.Environment(loader=jinja2.PackageLoader("geopress", "templates"),
                              autoescape=jinja2.select_autoescape(["html", "j2"]), undefined=jinja2.StrictUndefined)
@@ -868,6 +950,9 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         criteria=crit, units=units, cautions=CAUTIONS, changes=_plain(changes) if (changes := info.get("changes")) and changes.get("baseline") else None,
         status_style=STATUS_STYLE, overrides=info.get("overrides") or {},
         finding_counts=info.get("counts_by_finding", {}), lists=FLAGGED_LAYERS,
+        areas=None if areas is None else {"rows": area_rows(areas, units), "total": len(areas),
+                                          "settings": (info.get("target_areas") or {}),
+                                          "map": areas_map(areas_drawn, units) if areas_drawn is not None else None},
         overview=overview_map(overview, units) if overview is not None else None, imap=imap,
         sources=source_rows(sources, summary, units),
     )

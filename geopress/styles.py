@@ -8,7 +8,8 @@ read from there, so one place knows each colour. The ``customers`` and
 ``changes`` layers get one rule per status (``ogc:PropertyIsEqualTo`` on
 ``status``); a finding's layer one rule, without a filter, in its finding's
 style (every customer in it has that finding, whatever its status); the
-service band one polygon rule; the band limits one line rule per ``limit``.
+service band one polygon rule; the band limits one line rule per ``limit``;
+the target areas one polygon rule per ``finding``.
 
 Needs the ``report`` extra, as the report does (its palette lives there).
 :func:`sld` returns the document as text and writes nothing.
@@ -20,8 +21,8 @@ import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from typing import Mapping, Sequence
 
-from .findings import FLAGGED_LAYERS, STATUSES, STYLES, finding_of_layer
-from .report import BAND_COLOUR, LIMIT_STYLE
+from .findings import FLAGGED_LAYERS, FLAGGED_STATUSES, STATUSES, STYLES, finding_of_layer
+from .report import AREA_OPACITY, BAND_COLOUR, LIMIT_STYLE
 
 SLD_NS = "http://www.opengis.net/sld"
 OGC_NS = "http://www.opengis.net/ogc"
@@ -159,6 +160,22 @@ def band_style(layer: str = "service_band") -> LayerStyle:
     return LayerStyle(layer, name, description, _text(root))
 
 
+def area_style(layer: str = "target_areas") -> LayerStyle:
+    """The target areas: polygons filled in their finding's colour, one rule per finding (``finding``)."""
+    name = f"{layer} by finding"
+    description = f"geopress: target areas filled in their finding's colour, as in report.html. {CAUTION}"
+    root, fts = _document(layer, name, description)
+    for finding in FLAGGED_STATUSES:  # the findings that get target areas
+        rule = _el(fts, "Rule")
+        _el(rule, "Name", finding)
+        _el(rule, "Title", f"target area: {finding}")
+        _filter_equal(rule, "finding", finding)
+        symbolizer = _el(rule, "PolygonSymbolizer")
+        _css(_el(symbolizer, "Fill"), fill=STYLES[finding].colour, fill_opacity=AREA_OPACITY)
+        _css(_el(symbolizer, "Stroke"), stroke="#000000", stroke_width=OUTLINE_PX)
+    return LayerStyle(layer, name, description, _text(root))
+
+
 def limit_style(layer: str = "band_limits") -> LayerStyle:
     """The band's limit lines, one rule per ``limit`` in the report's colour and dashes."""
     name = f"{layer} by limit"
@@ -192,4 +209,6 @@ def layer_styles(layers: Sequence[str]) -> Mapping[str, LayerStyle]:
             out[layer] = band_style(layer)
         elif layer == "band_limits":
             out[layer] = limit_style(layer)
+        elif layer == "target_areas":
+            out[layer] = area_style(layer)
     return out

@@ -17,7 +17,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .findings import FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, WORST
+from .findings import AREA_COLUMNS, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, WORST
 from .pressure import Source
 
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
@@ -118,19 +118,23 @@ def mailing_list(
     ``letter_fields`` (each the distinct values at the address, missing ones
     left out, in the order of the accounts, joined by "; "), ``customer_count``,
     ``zones`` and ``worst_psi`` (the highest psi_max for high pressure, the
-    lowest psi_min or psi_top otherwise). Rows are sorted most severe first,
+    lowest psi_min or psi_top otherwise) and, when ``customers`` has the finding's
+    ``target_area_<finding>`` column, ``target_area`` (the target areas of the accounts
+    at the address, as the letter fields). Rows are sorted most severe first,
     then by first account (then by first appearance of the address). Without
     mail fields, one row per customer. Text is as in ``customers``: see
     :func:`neutralise_frame` for a CSV.
     """
     col, how = WORST[status]
     keys = list(mail_fields) or [id_field]
-    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi"]
+    area = AREA_COLUMNS[status] if AREA_COLUMNS[status] in customers.columns else None
+    cols = [*keys, "accounts", *letter_fields, "customer_count", "zones", "worst_psi", *(["target_area"] if area else [])]
     rows = np.flatnonzero(in_finding(customers, status))
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
-    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col]))].iloc[rows]
+    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col, *([area] if area else [])]))
+                    ].iloc[rows]
     n = len(sub)
     # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
     ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
@@ -173,6 +177,9 @@ def mailing_list(
     out["customer_count"] = np.diff(np.r_[starts, n])[out_order]
     out["zones"] = pd.array(zones.take(out_order), dtype="str")
     out["worst_psi"] = worst[out_order]
+    if area:
+        out["target_area"] = pd.array(_distinct_per_group(sub[area], order, group_of_sorted, n_groups).take(out_order),
+                                      dtype="str")
     return out[cols]
 
 

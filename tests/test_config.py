@@ -14,6 +14,7 @@ from geopress.classify import Criteria
 from geopress.config import Config, apply_overrides, config_from_dict, load_config
 from geopress.errors import ConfigError
 from geopress.pressure import PrvSource, PumpSource, TankSource
+from geopress.targets import TargetCriteria
 
 from conftest import BASE_CONFIG
 
@@ -113,6 +114,33 @@ def test_criteria_table_is_optional_and_defaults_apply(tmp_path):
     text = BASE_CONFIG.replace("[criteria]\nmax_static_psi = 80.0\nmin_static_psi = 35.0\n", "")
     assert "[criteria]" not in text
     assert load_config(write(tmp_path, text)).criteria == Criteria()
+
+
+def test_targets_table_is_optional_with_its_defaults(tmp_path):
+    assert load_config(write(tmp_path, BASE_CONFIG)).targets == TargetCriteria(distance_ft=300.0, min_customers=10)
+    cfg = load_config(write(tmp_path, BASE_CONFIG + "\n[targets]\ndistance_ft = 150\nmin_customers = 4\n"))
+    assert cfg.targets == TargetCriteria(distance_ft=150.0, min_customers=4)
+    assert isinstance(cfg.targets.min_customers, int) and cfg.to_dict()["targets"] == {"distance_ft": 150.0,
+                                                                                        "min_customers": 4,
+                                                                                        "enabled": True}
+    off = load_config(write(tmp_path, BASE_CONFIG + "\n[targets]\nenabled = false\n")).targets
+    assert off == TargetCriteria(enabled=False)
+
+
+@pytest.mark.parametrize("line, key, says", [
+    ("distance_ft = 0", "targets.distance_ft", "must be positive"),
+    ("distance_ft = -5", "targets.distance_ft", "must be positive"),
+    ('distance_ft = "300 ft"', "targets.distance_ft", "must be a finite number"),
+    ("min_customers = 0", "targets.min_customers", "at least 1"),
+    ("min_customers = 2.5", "targets.min_customers", "whole number"),
+    ("distance_m = 90", "targets.distance_m", "allowed keys are distance_ft, enabled, min_customers"),
+    ('enabled = "no"', "targets.enabled", "true or false"),
+])
+def test_bad_targets_name_their_key_and_line(tmp_path, line, key, says):
+    text = BASE_CONFIG + f"\n[targets]\n{line}\n"
+    err = error_of(tmp_path, text)
+    assert err.key == key and says in str(err)
+    assert f"(line {line_number(text, line.split(' ')[0])})" in str(err)
 
 
 def test_relative_paths_resolve_against_the_config_folder(tmp_path, monkeypatch):

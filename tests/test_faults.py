@@ -30,10 +30,11 @@ from geopress.io import write as write_io
 from nightly_support import error_line, good_run, run, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
-#: renames in a second run's commit: the journal, then a backup and a new file for each of 43 outputs
-#: (GeoPackage, 7 mailing lists and 7 new_* lists as CSV and .xlsx, 11 layer styles, report.html, the
-#: baseline's link, run.json): 4 + 3 * 7 + 7 + 11 = 43, with 7 findings (4 statuses, 3 storage levels).
-COMMIT_RENAMES = 1 + 2 * 43
+#: renames in a second run's commit: the journal, then a backup and a new file for each of 44 outputs
+#: (GeoPackage, 7 mailing lists and 7 new_* lists as CSV and .xlsx, 12 layer styles with the target areas',
+#: report.html, the baseline's link, run.json): 4 + 3 * 7 + 7 + 12 = 44, with 7 findings (4 statuses, 3 storage
+#: levels).
+COMMIT_RENAMES = 1 + 2 * 44
 
 
 def disk_full(*args, **kwargs):

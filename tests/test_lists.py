@@ -134,5 +134,5 @@ def test_a_list_with_no_rows_is_an_empty_sheet_with_its_header(world):
     geopress.run(load_scenario(world.config_path, ["output.report=false"], replace_outputs=True))
     ws = openpyxl.load_workbook(world.out.parent / "mailing" / "upper_floors.xlsx").worksheets[0]
     assert [[c.value for c in r] for r in ws.iter_rows()] == [
-        ["owner", "mail_address", "accounts", "customer_count", "zones", "worst_psi"]]
+        ["owner", "mail_address", "accounts", "customer_count", "zones", "worst_psi", "target_area"]]
     assert np.all([c.data_type == "s" for c in next(ws.iter_rows())])

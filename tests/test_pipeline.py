@@ -19,6 +19,7 @@ import pytest
 import shapely
 from click.testing import CliRunner
 from affine import Affine
+import pyproj
 from pyproj import Transformer
 
 import geopress
@@ -387,7 +388,7 @@ def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     high = read_csv(mailing / "high_pressure.csv")
     # two accounts at one address: one letter listing both; worst is 0.433 * 198.5 = 85.95 -> 86.0
     assert high == [{"owner": "Owner H", "mail_address": "9 Low St", "accounts": "A-high; A-high-2",
-                     "customer_count": "2", "zones": "Main", "worst_psi": "86.0"}]
+                     "customer_count": "2", "zones": "Main", "worst_psi": "86.0", "target_area": ""}]  # no area
     low = read_csv(mailing / "low_pressure.csv")
     assert [(r["owner"], r["mail_address"], r["accounts"]) for r in low] == [("'=cmd", "'-12 Rear", "A-low")]
     above = read_csv(mailing / "above_hgl.csv")
@@ -404,7 +405,7 @@ def test_flagged_layers_and_zone_summary(crafted):
     out = crafted.parent / "out/pressure.gpkg"
     names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert sorted(names) == sorted(["customers", *LISTS, "zone_summary", "service_band", "band_limits", "changes",
-                                    "layer_styles"])
+                                    "layer_styles", "target_areas"])
     for name in ("customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors"):
         assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
     flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
@@ -486,11 +487,64 @@ def test_a_customer_with_two_findings_is_on_both_lists(crafted):
                        ].tolist() == [3, 1, 3, 2]
     html = (root / "out/report.html").read_text(encoding="utf-8")
     assert 'id="finding-counts"' in html and "<code>upper_floors</code>" in html
+    assert "No target areas" in html  # 10 customers close together by default: none here
+
+
+def test_target_area_of_the_two_high_customers(crafted):
+    # A-high (col 0, row 10) and A-high-2 (col 1, row 30) lie sqrt(10^2 + 200^2) = 200.2 m = 656.9 ft apart, in a
+    # CRS in metres; within 700 ft of each other they form one area of 2. So do the three above the HGL (cols 59.5,
+    # 60 and 69.5 of row 10: 5 m and 95 m apart); the other findings have fewer than 2 close together.
+    crafted.write_text(crafted.read_text() + "\n[targets]\ndistance_ft = 700\nmin_customers = 2\n")
+    res = run_crafted(crafted)
+    root = crafted.parent
+    out = root / "out/pressure.gpkg"
+    areas = pyogrio.read_dataframe(out, layer="target_areas")
+    assert pyogrio.read_info(out, layer="target_areas")["geometry_type"] == "Polygon"
+    assert areas["area"].tolist() == ["T1", "T2"] and areas["customers"].tolist() == [3, 2]  # most served first
+    b = areas.iloc[0]
+    assert (b["finding"], b["zone"], b["fix"], b["ok_inside"]) == ("above_hgl", "Main", "booster", 0)
+    # a booster lifting 1210 ft to 35 psi: 1210 + 35 / 0.433 = 1290.83 ft; 1180 ft at most 80 psi: 1364.76 ft
+    assert (b["ground_ft_min"], b["ground_ft_max"], b["hgl_ft_from"], b["hgl_ft_to"]) == (1180.0, 1210.0, 1290.9,
+                                                                                          1364.7)
+    a = areas.iloc[1]
+    assert (a["area"], a["finding"], a["zone"], a["customers"], a["addresses"]) == ("T2", "high", "Main", 2, 1)
+    assert (a["ground_ft_min"], a["ground_ft_max"]) == (1001.5, 1004.5)
+    # the closed forms of geopress.targets with 0.433 psi/ft, rounded inward to 0.1 ft: no ok customer lies within
+    # 350 ft of the two (A-ok is 200 m = 656 ft east of A-high), so HGL_min = 1004.5 + 35 / 0.433 = 1085.33 ft
+    # and HGL_max = 1001.5 + 80 / 0.433 = 1186.26 ft
+    assert a["ok_inside"] == 0 and a["fix"] == "zone PRV" and a["note"] == ""
+    assert (a["hgl_ft_from"], a["hgl_ft_to"]) == (1085.4, 1186.2)
+    assert a["worst_psi"] == 86.0  # 0.433 * (1200 - 1001.5) = 85.95
+    # the polygon: the hull (a segment) buffered by 350 ft = 106.68 m holds both customers
+    assert areas.geometry.iloc[1].contains(shapely.MultiPoint([crafted_point((0, 10)), crafted_point((1, 30))]))
+    cust = by_account(res.customers)
+    assert cust.loc[["A-high", "A-high-2"], "target_area_high"].tolist() == ["T2", "T2"]
+    assert cust["target_area_high"].notna().sum() == 2 and cust["target_area_low"].isna().all()
+    high = read_csv(root / "out/mailing/high_pressure.csv")
+    assert [(r["accounts"], r["target_area"]) for r in high] == [("A-high; A-high-2", "T2")]
+    info = json.loads((root / "out/run.json").read_text())
+    assert info["target_areas"] == {"enabled": True, "distance_ft": 700.0, "min_customers": 2, "clustered_in": res.customers.crs.to_string(),
+                                    "areas": 2, "by_finding": {"above_hgl": 1, "low": 0, "high": 1,
+                                                               "low_upper_floors": 0}, "customers_in_areas": 5}
+    html = (root / "out/report.html").read_text(encoding="utf-8")
+    assert 'id="areas-map"' in html and "zone PRV at an HGL of 1,085.4 to 1,186.2 ft" in html
+
+
+def test_target_areas_of_customers_in_a_geographic_crs_are_clustered_in_utm():
+    # two points 0.001 degree of latitude apart near 45 N: about 111.1 m = 364.6 ft (from memory: a degree of
+    # latitude is about 111.1 km there); in the UTM zone the distance is true to the zone's 0.9996 scale
+    crs = pyproj.CRS("EPSG:4326")
+    x, y, ft_per_unit, used = pipeline._projected(np.array([3.0, 3.0, np.nan]), np.array([45.0, 45.001, np.nan]), crs)
+    assert used.is_projected and "UTM zone 31N" in used.name
+    assert ft_per_unit == pytest.approx(1 / 0.3048, rel=1e-12)  # metres: the international foot exactly
+    d_ft = np.hypot(x[1] - x[0], y[1] - y[0]) * ft_per_unit
+    assert d_ft == pytest.approx(364.6, abs=1.0)  # 1 ft: the recalled metres per degree, and the zone's scale
+    assert np.isnan(x[2])  # no location stays none
 
 
 #: the layers that get a style, in the order the GeoPackage gets them
 #: the styled layers in the order the GeoPackage gets them: customers and its views, then the others
-STYLED = ["customers", *FLAGGED_LAYERS.values(), "changes", "service_band", "band_limits"]
+STYLED = ["customers", *FLAGGED_LAYERS.values(), "changes", "target_areas", "service_band", "band_limits"]
 #: every finding's layer and mailing list, in the registry's order (the storage levels' too, empty when not checked)
 LISTS = tuple(FLAGGED_LAYERS.values())
 
@@ -680,6 +734,13 @@ def test_cli_demo(tmp_path, invoke):
     assert res.exit_code == 0, res.stderr
     assert (tmp_path / "demo" / "pressure.gpkg").exists()
     assert "customers:" in res.stdout
+    # the demo's 12-story tower at the foot of Ridgeway (scripts/make_demo.py, raise_tower) is on two lists
+    lists = {name: [r["accounts"] for r in read_csv(tmp_path / "demo" / "mailing" / f"{name}.csv")]
+             for name in ("high_pressure", "upper_floors")}
+    assert all(any("A-052634" in a for a in accounts) for accounts in lists.values())
+    # and the report lists target areas with their settings
+    html = (tmp_path / "demo" / "report.html").read_text(encoding="utf-8")
+    assert 'id="target-areas-table"' in html and "zone PRV at an HGL of" in html
 
 
 # ---------------------------------------------------------------- input problems

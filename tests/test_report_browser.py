@@ -63,8 +63,8 @@ def test_interactive_map_works_offline_and_a_click_shows_the_customer(world, bro
     browser.open(report.resolve().as_uri())  # the network emulated offline, and no host name resolves
     browser.wait_for('document.getElementById("imap").getAttribute("data-ready") === "1"')
     state = browser.evaluate(STATE)
-    # the overview, and per zone (two) a map and a histogram
-    assert len(state["images"]) == 5 and all(i["ok"] for i in state["images"]), state["images"]
+    # the overview, the target areas' map, and per zone (two) a map and a histogram
+    assert len(state["images"]) == 6 and all(i["ok"] for i in state["images"]), state["images"]
     assert state["zoneRows"] == 2
     assert state["webgl"] and state["points"] == len(result.customers)  # 20 customers: every one drawn
     # nothing was fetched but the file itself and its data: URIs
@@ -118,7 +118,7 @@ def test_report_is_self_contained_and_says_what_it_is(world):
     spec = json.loads(re.search(r'<script type="application/json" id="imap-spec">(.*?)</script>', html, re.S).group(1))
     images = [i["source"] for i in spec["layout"]["images"]]
     assert images and all(i.startswith("data:image/png;base64,") for i in images)  # the map's hillshade too
-    assert outside_scripts.count('src="data:image/png;base64,') == 5
+    assert outside_scripts.count('src="data:image/png;base64,') == 6  # as above, with the target areas' map
     assert "static screening estimate" in html and "licensed engineering practice" in html
     assert "Changes since the last run" not in html  # a first run has no earlier run to compare with
     for status in ("ok", "high", "low"):

@@ -13,7 +13,7 @@ import geopress
 from geopress import styles
 from geopress.classify import FLAGGED_LAYERS, STATUSES
 from geopress.report import BAND_COLOUR, LIMIT_STYLE, STATUS_STYLE
-from geopress.findings import STYLES
+from geopress.findings import FLAGGED_STATUSES, STYLES
 
 NS = {"sld": styles.SLD_NS, "ogc": styles.OGC_NS}
 # The order of children in SLD 1.0.0's content models (OGC 02-070, the schema's xsd:sequence of each element;
@@ -105,16 +105,28 @@ def test_a_findings_layer_draws_every_customer_in_its_findings_style():
         assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STYLES[finding].colour  # a finding that is no status has a style too
 
 
+def css_by_value(doc, field: str, symbol: str) -> dict[str, dict[str, str]]:
+    """Each rule's ``symbol`` CSS parameters by the value its filter asks ``field`` to equal."""
+    got = {}
+    for rule in doc.iterfind(".//sld:Rule", NS):
+        eq = rule.find("ogc:Filter/ogc:PropertyIsEqualTo", NS)
+        assert eq.findtext("ogc:PropertyName", namespaces=NS) == field
+        got[eq.findtext("ogc:Literal", namespaces=NS)] = css(rule.find(symbol, NS))
+    return got
+
+
+def test_target_areas_are_filled_in_their_findings_colour():
+    got = css_by_value(parse(styles.area_style().sld), "finding", "sld:PolygonSymbolizer/sld:Fill")
+    assert list(got) == list(FLAGGED_STATUSES)  # the storage findings get no target areas
+    for finding, fill in got.items():
+        assert fill["fill"] == STATUS_STYLE[finding].colour and 0 < float(fill["fill-opacity"]) < 1
+
+
 def test_band_and_limit_styles_use_the_reports_colours():
     band = parse(styles.band_style().sld)
     fill = css(band.find(".//sld:PolygonSymbolizer/sld:Fill", NS))
     assert fill["fill"] == BAND_COLOUR and 0 < float(fill["fill-opacity"]) < 1
-    limits = parse(styles.limit_style().sld)
-    got = {}
-    for rule in limits.iterfind(".//sld:Rule", NS):
-        eq = rule.find("ogc:Filter/ogc:PropertyIsEqualTo", NS)
-        assert eq.findtext("ogc:PropertyName", namespaces=NS) == "limit"
-        got[eq.findtext("ogc:Literal", namespaces=NS)] = css(rule.find("sld:LineSymbolizer/sld:Stroke", NS))
+    got = css_by_value(parse(styles.limit_style().sld), "limit", "sld:LineSymbolizer/sld:Stroke")
     assert set(got) == set(LIMIT_STYLE)
     for limit, (colour, dashes, _) in LIMIT_STYLE.items():
         assert got[limit]["stroke"] == colour
@@ -131,7 +143,7 @@ def test_sld_files_beside_the_geopackage_and_in_its_layer_styles(styled_run):
     out = styled_run.out
     layers = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
     assert "layer_styles" in layers
-    styled = ["customers", *FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes"]
+    styled = ["customers", *FLAGGED_LAYERS.values(), "service_band", "band_limits", "changes", "target_areas"]
     for layer in styled:
         text = (out.parent / f"pressure.{layer}.sld").read_text(encoding="utf-8")
         parse(text)

@@ -80,3 +80,22 @@ def test_the_id_field_may_also_be_a_mail_field():
         {"acct": "A", "addr": "1 Elm", "accounts": "A", "customer_count": 1, "zones": "Z", "worst_psi": 90.0},
         {"acct": "B", "addr": "1 Elm", "accounts": "B", "customer_count": 1, "zones": "Z", "worst_psi": 81.0},
     ]
+
+
+def test_lists_select_by_finding_and_carry_the_target_areas():
+    # c is high with low upper floors too (its status is high): on both lists. The areas of the accounts at an
+    # address are listed once each, in account order; an account in no area adds nothing.
+    df = pd.DataFrame({
+        "acct": ["a", "b", "c", "d"], "addr": ["1 Elm", "1 Elm", "2 Oak", "3 Ash"], "zone": ["Z"] * 4,
+        "status": ["high", "high", "high", "low_upper_floors"], "psi_max": [81.0, 90.0, 85.0, 70.0],
+        "psi_min": [70.0, 79.0, 75.0, 60.0], "psi_top": [np.nan, np.nan, 28.0, 30.0],
+        "finding_above_hgl": [False] * 4, "finding_low": [False] * 4, "finding_high": [True, True, True, False],
+        "finding_low_upper_floors": [False, False, True, True],
+        "target_area_high": ["T2", None, "T1", None], "target_area_low_upper_floors": [None, None, None, "T3"],
+    })
+    got = mailing_lists(df, id_field="acct", mail_fields=["addr"])
+    assert [(r["accounts"], r["target_area"]) for r in got["high_pressure"].to_dict("records")] == [
+        ("a; b", "T2"), ("c", "T1")]
+    upper = got["upper_floors"].to_dict("records")
+    assert [(r["accounts"], r["worst_psi"]) for r in upper] == [("c", 28.0), ("d", 30.0)]
+    assert pd.isna(upper[0]["target_area"]) and upper[1]["target_area"] == "T3"  # missing: c is in no such area

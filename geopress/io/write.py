@@ -303,9 +303,16 @@ class Styles:
     sld: Mapping[str, tuple[str, str, str]]
 
 
+@dataclass(frozen=True)
+class Polygons:
+    """A polygon layer, typed "Polygon" even when it has no rows (GDAL would type an empty one by its first row)."""
+
+    frame: gpd.GeoDataFrame
+
+
 #: a layer to write: a frame, a point layer with its WKB or in an Arrow file, a view of an earlier point layer,
-#: or styles
-Layer = pd.DataFrame | Encoded | ArrowFile | View | Styles
+#: a polygon layer, or styles
+Layer = pd.DataFrame | Encoded | ArrowFile | View | Polygons | Styles
 
 
 def arrow_file(path: Path, layer: Encoded | gpd.GeoDataFrame) -> ArrowFile:
@@ -368,6 +375,9 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
                 else:
                     # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
                     _write_point_layer(path, name, _no_rows(points[layer.of]))
+            elif isinstance(layer, Polygons):
+                pyogrio.write_dataframe(layer.frame, path, layer=name, driver="GPKG", use_arrow=True,
+                                        geometry_type="Polygon", layer_options={"SPATIAL_INDEX": "YES"})
             elif isinstance(layer, ArrowFile):
                 source = pa.memory_map(str(layer.path))
                 maps.append(source)

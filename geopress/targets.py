@@ -1,0 +1,216 @@
+"""Target areas: customers with the same finding in the same zone that one project could fix. Pure, no I/O.
+
+Customers of one finding and one zone are clustered with scikit-learn's
+DBSCAN on their coordinates in ft, with ``eps = distance_ft`` and
+``min_samples = 1``: two customers at most ``distance_ft`` apart are in the
+same area, and so is a chain of them (single linkage). An area needs at
+least ``min_customers``; smaller clusters are left to individual fixes.
+
+Each area's polygon is the convex hull of its customers buffered by half the
+distance. Ground, pressures and settings are rounded to 0.1 (the HGL range
+inward, so every setting it shows serves everyone). Its **zone-level fix** is one HGL ``H`` for the whole area, from a
+zone PRV (for ``high``) or a booster (for the other findings), that puts the
+pressure of every customer of the area, and of every ``ok`` customer of the
+zone already inside the polygon, within ``[min_static_psi, max_static_psi]``:
+
+* ``H <= lowest ground + max_static_psi / psi_per_ft`` (no one above the maximum),
+* ``H >= highest served level + min_static_psi / psi_per_ft`` (no one below the minimum),
+
+where the served level is the ground (the street), or for an
+upper-floors area the top floor (a booster serving the upper floors). These
+are the textbook bounds (shared REFERENCES.md, worked example: 95 + 2.31 *
+30 = 164.3 ft and 5 + 2.31 * 90 = 212.9 ft). The range is empty when the
+area's levels span more than ``(max - min) / psi_per_ft`` ft: no single
+setting can serve it. A PRV can only lower the HGL, so a high-pressure area
+whose zone's low HGL is below the lower bound cannot be served by one either
+(at low water its highest customers would fall short whatever the setting).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+import shapely
+from numpy.typing import NDArray
+
+from .classify import names_at
+from .findings import FINDINGS, FLAGGED_STATUSES, WORST
+
+#: the layer's columns, in order (``geometry`` last)
+COLUMNS = (
+    "area", "finding", "zone", "customers", "addresses", "ground_ft_min", "ground_ft_max", "served_ft_max",
+    "worst_psi", "ok_inside", "fix", "hgl_ft_from", "hgl_ft_to", "psi_at_lowest_from", "psi_at_lowest_to",
+    "replaces", "note", "geometry",
+)
+
+
+@dataclass(frozen=True)
+class TargetCriteria:
+    """How areas are formed: ``distance_ft``, the most two neighbouring customers of an area are apart, and
+    ``min_customers``, the fewest an area has.
+
+    Defaults: 300 ft, about a city block, so customers along one street or in one subdivision pocket join, while
+    a neighbourhood across a valley stays apart; 10 customers, below which individual PRVs or service boosters
+    are usually cheaper than a zone-level PRV station or booster (both common practice, no source). ``enabled``
+    false skips them (they cost most where most customers are flagged: see scripts/README.md).
+    """
+
+    distance_ft: float = 300.0
+    min_customers: int = 10
+    enabled: bool = True
+
+
+@dataclass(frozen=True)
+class Fix:
+    """One zone-level setting for an area: its HGL range (NaN, NaN when none) and why not, when empty."""
+
+    hgl_ft_from: float
+    hgl_ft_to: float
+    note: str
+
+
+def feasible_hgl(served_max_ft: float, ground_min_ft: float, criteria, *, source_low_ft: float | None = None,
+                 ) -> Fix:
+    """The HGL range that keeps every level from ``ground_min_ft`` (at most ``max_static_psi``) up to
+    ``served_max_ft`` (at least ``min_static_psi``) in the window; for a PRV, ``source_low_ft`` is the lowest HGL
+    its inlet can give (the zone's low HGL), below which it cannot hold the lower bound."""
+    k = criteria.psi_per_ft
+    lo = served_max_ft + criteria.min_static_psi / k
+    hi = ground_min_ft + criteria.max_static_psi / k
+    if lo > hi:
+        span = served_max_ft - ground_min_ft
+        allowed = (criteria.max_static_psi - criteria.min_static_psi) / k
+        return Fix(np.nan, np.nan, f"no single setting: its levels span {span:,.1f} ft, more than the "
+                                   f"{allowed:,.1f} ft the pressure window allows")
+    if source_low_ft is not None and source_low_ft < lo:
+        return Fix(np.nan, np.nan, f"no PRV setting: the zone's low HGL of {source_low_ft:,.1f} ft is below the "
+                                   f"{lo:,.1f} ft its highest customer needs, and a PRV cannot raise it")
+    return Fix(lo, hi, "")
+
+
+def _tenth(value: float) -> float:
+    """``value`` rounded to 0.1, as the other outputs give ft and psi."""
+    return float(np.round(value, 1)) + 0.0
+
+
+def _inward(fix: Fix) -> Fix:
+    """``fix`` with its range rounded inward to 0.1 ft, so every setting shown keeps everyone in the window;
+    as it is when the range is narrower than that."""
+    # within 1e-6 of a tenth counts as on it: the arithmetic's noise (95 + 30 * 2.31 is not exactly 164.3 in
+    # binary), a millionth of a tenth of a foot, far below any survey's accuracy
+    lo = np.ceil(fix.hgl_ft_from * 10.0 - 1e-6) / 10.0
+    hi = np.floor(fix.hgl_ft_to * 10.0 + 1e-6) / 10.0
+    return Fix(lo, hi, fix.note) if lo <= hi else fix
+
+
+def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distance_ft: float) -> NDArray[np.intp]:
+    """DBSCAN (min_samples 1) labels of points in ft: points at most ``distance_ft`` apart share one."""
+    from sklearn.cluster import DBSCAN
+
+    if x_ft.size == 0:
+        return np.zeros(0, dtype=np.intp)
+    # a ball tree: 0.9 s for 100,000 points with about 110 neighbours each, against 2.1 s with the k-d tree that
+    # "auto" picks (measured on 2 cores, scikit-learn 1.9). Giving DBSCAN the Delaunay triangulation's short
+    # edges as a sparse graph instead (the same clusters, 3 neighbours a point) was slower at these densities:
+    # 12 s against 7.8 s for 200,000 points on a loaded machine, most of it in qhull.
+    return DBSCAN(eps=distance_ft, min_samples=1, algorithm="ball_tree").fit_predict(
+        np.column_stack([x_ft, y_ft])).astype(np.intp)
+
+
+@dataclass
+class Areas:
+    """The target areas (``table``: one row per area, :data:`COLUMNS`, sorted by customers served, most first)
+    and, per finding, each customer's area id (missing where none)."""
+
+    table: pd.DataFrame
+    member: dict[str, pd.api.extensions.ExtensionArray]
+
+
+def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit: float, zone: NDArray[np.intp],
+                 zone_names: list[str], zone_low_hgl_ft: NDArray[np.float64], ground_ft: NDArray[np.float64],
+                 top_ft: NDArray[np.float64], pressures: Mapping[str, NDArray[np.float64]],
+                 found: Mapping[str, NDArray[np.bool_]], ok: NDArray[np.bool_], address: NDArray[np.intp],
+                 criteria, targets: TargetCriteria) -> Areas:
+    """The target areas of every finding and zone.
+
+    ``x``/``y`` are the customers' coordinates in a projected CRS (``ft_per_unit`` ft per unit), ``zone`` each
+    customer's index into ``zone_names`` (-1: none) and ``zone_low_hgl_ft`` each zone's low HGL; ``top_ft`` the
+    top floor's elevation (the ground for one story); ``pressures`` the psi columns of :data:`geopress.findings.WORST`
+    by name; ``found`` each finding's customers; ``ok`` the customers with status ok; ``address`` a code per
+    customer's mailing address (equal codes, one address).
+    """
+    k_to_units = 1.0 / ft_per_unit
+    rows = []
+    members: dict[str, NDArray[np.intp]] = {}
+    ok_rows = np.flatnonzero(ok & (zone >= 0))
+    for finding in FINDINGS:
+        member = np.full(x.size, -1, dtype=np.intp)
+        members[finding] = member
+        # a storage level's shortfall (a finding that is no status) is fixed at the tank, not by a zone-level PRV or
+        # booster over an area: it gets none
+        if not targets.enabled or finding not in FLAGGED_STATUSES:
+            continue
+        worst_col, worse = WORST[finding]
+        served = top_ft if finding == "low_upper_floors" else ground_ft
+        for z, zname in enumerate(zone_names):
+            sel = np.flatnonzero(found[finding] & (zone == z) & np.isfinite(x) & np.isfinite(y))
+            if sel.size < targets.min_customers:
+                continue
+            labels = cluster_labels(x[sel] * ft_per_unit, y[sel] * ft_per_unit, targets.distance_ft)
+            sizes = np.bincount(labels)
+            keep = np.flatnonzero(sizes >= targets.min_customers)
+            if keep.size == 0:
+                continue
+            zone_ok = ok_rows[zone[ok_rows] == z]
+            order = np.argsort(x[zone_ok], kind="stable")
+            ok_sorted, ok_x = zone_ok[order], x[zone_ok][order]
+            taken = np.flatnonzero(np.isin(labels, keep))
+            part = np.searchsorted(keep, labels[taken])
+            by_part = np.argsort(part, kind="stable")  # shapely groups parts given in increasing order
+            members_of = sel[taken[by_part]]
+            hulls = shapely.buffer(shapely.convex_hull(shapely.multipoints(
+                np.column_stack([x[members_of], y[members_of]]), indices=part[by_part])),
+                targets.distance_ft / 2.0 * k_to_units)
+            for i, label in enumerate(keep):
+                rows_i = sel[labels == label]
+                polygon = hulls[i]
+                left, bottom, right, top = polygon.bounds
+                cand = ok_sorted[np.searchsorted(ok_x, left, "left"):np.searchsorted(ok_x, right, "right")]
+                cand = cand[(y[cand] >= bottom) & (y[cand] <= top)]
+                inside = cand[shapely.contains_xy(polygon, x[cand], y[cand])] if cand.size else cand
+                everyone = np.r_[rows_i, inside]
+                g = ground_ft[everyone]
+                ground_min, served_max = float(np.nanmin(g)), float(np.nanmax(served[everyone]))
+                is_prv = finding == "high"
+                fix = _inward(feasible_hgl(served_max, ground_min, criteria,
+                                           source_low_ft=float(zone_low_hgl_ft[z]) if is_prv else None))
+                worst_values = pressures[worst_col][rows_i]
+                rows.append({
+                    "finding": finding, "zone": zname, "customers": int(rows_i.size),
+                    "addresses": int(np.unique(address[rows_i]).size),
+                    "ground_ft_min": _tenth(np.nanmin(ground_ft[rows_i])),
+                    "ground_ft_max": _tenth(np.nanmax(ground_ft[rows_i])),
+                    "served_ft_max": _tenth(served_max),
+                    "worst_psi": _tenth(np.nanmax(worst_values) if worse == "max" else np.nanmin(worst_values)),
+                    "ok_inside": int(inside.size),
+                    "fix": "zone PRV" if is_prv else "booster",
+                    "hgl_ft_from": fix.hgl_ft_from, "hgl_ft_to": fix.hgl_ft_to,
+                    "psi_at_lowest_from": _tenth(criteria.psi_per_ft * (fix.hgl_ft_from - ground_min)),
+                    "psi_at_lowest_to": _tenth(criteria.psi_per_ft * (fix.hgl_ft_to - ground_min)),
+                    "replaces": int(rows_i.size), "note": fix.note, "geometry": polygon,
+                    "_first": int(rows_i[0]), "_rows": rows_i,
+                })
+    # most customers served first; ties in the registry's order of findings, then zone, then first customer
+    rank = {f: i for i, f in enumerate(FINDINGS)}
+    rows.sort(key=lambda r: (-r["customers"], rank[r["finding"]], r["zone"], r["_first"]))
+    for n, r in enumerate(rows, start=1):
+        r["area"] = f"T{n}"
+        members[r["finding"]][r.pop("_rows")] = n - 1
+        del r["_first"]
+    ids = [r["area"] for r in rows]
+    member = {f: names_at(ids or [""], np.maximum(m, 0), m >= 0) for f, m in members.items()}
+    table = pd.DataFrame(rows, columns=list(COLUMNS))
+    return Areas(table=table, member=member)
