@@ -37,7 +37,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .findings import FINDINGS, FLAGGED_LAYERS
+from .findings import FINDINGS, FLAGGED_LAYERS, FLAGGED_STATUSES
 from .tables import in_finding, mailing_list
 
 CHANGES: tuple[str, ...] = ("new_customer", "removed", "unchanged", "newly_flagged", "cleared", "status_changed")
@@ -152,7 +152,7 @@ def newly_in_status(table: pd.DataFrame) -> dict[str, np.ndarray]:
     rows = table["current_row"].to_numpy()
     fresh = (rows >= 0) & (table["change"] != "unchanged").to_numpy()
     status = table["status"]
-    return {s: rows[fresh & (status == s).to_numpy()].astype(np.int64) for s in FLAGGED_LAYERS}
+    return {s: rows[fresh & (status == s).to_numpy()].astype(np.int64) for s in FLAGGED_STATUSES}
 
 
 def findings_of(customers: pd.DataFrame) -> dict[str, np.ndarray]:

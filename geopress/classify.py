@@ -32,16 +32,18 @@ import pandas as pd
 import pyarrow as pa
 from numpy.typing import ArrayLike, NDArray
 
-from .findings import AREA_COLUMNS, BY_NAME, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, REGISTRY, STATUSES, Values, evaluate
+from .findings import AREA_COLUMNS, BY_NAME, FINDING_COLUMNS, FINDINGS, FLAGGED_LAYERS, STATUSES, Values, evaluate
 from .pressure import DEFAULT_PSI_PER_FT
+from .storage import LEVELS
 
 __all__ = ["CODE", "FINDINGS", "FINDING_COLUMNS", "FLAGGED_LAYERS", "RESULT_COLUMNS", "STATUSES", "Criteria",
            "classify", "names_at", "reasons", "screen", "status_names"]
 
 #: per-customer result columns written after the id field; input fields may not reuse these names.
 RESULT_COLUMNS: tuple[str, ...] = (
-    "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "status", "reason",
-    "margin_psi", "sigma_psi", "confidence", *FINDING_COLUMNS.values(), *AREA_COLUMNS.values(), "geometry",
+    "zone", "ground_ft", "hgl_high_ft", "hgl_low_ft", "psi_max", "psi_min", "psi_top", "psi_fire", "psi_standby",
+    "status", "reason", "margin_psi", "sigma_psi", "confidence", *FINDING_COLUMNS.values(), *AREA_COLUMNS.values(),
+    "geometry",
 )
 CODE = {name: np.int8(i) for i, name in enumerate(STATUSES)}
 
@@ -53,12 +55,23 @@ class Criteria:
     Defaults: 80 psi maximum static (plumbing codes require an individual PRV
     above it), 35 psi minimum normal working pressure, 0.433 psi per ft of
     water, 10 ft per story.
+
+    Storage levels (:mod:`geopress.storage`), each off (None) by default: the
+    least static pressure at ground with the zone at its low HGL (peak hour,
+    equalizing storage used), and with a tank drawn to the bottom of its fire
+    suppression or its standby storage. ``rule_set`` names the published set
+    of values the config started from (a shipped file of ``geopress/rule_sets``,
+    or the path of the user's own; see :func:`geopress.config.rule_set_names`), if any.
     """
 
     max_static_psi: float = 80.0
     min_static_psi: float = 35.0
     psi_per_ft: float = DEFAULT_PSI_PER_FT
     floor_height_ft: float = 10.0
+    peak_hour_min_psi: float | None = None
+    fire_min_psi: float | None = None
+    standby_min_psi: float | None = None
+    rule_set: str | None = None
 
 
 def screen(
@@ -70,13 +83,17 @@ def screen(
     psi_max: ArrayLike,
     psi_top: ArrayLike,
     criteria: Criteria,
+    levels: Mapping[str, ArrayLike] | None = None,
 ) -> tuple[NDArray[np.int8], dict[str, NDArray[np.bool_]]]:
-    """Status codes (indices into :data:`STATUSES`), one per customer, and each finding's boolean array."""
+    """Status codes (indices into :data:`STATUSES`), one per customer, and each finding's boolean array.
+
+    ``levels``: the pressures at the storage levels checked, by column (``psi_fire``, ``psi_standby``; see
+    :func:`geopress.storage.level_columns`)."""
     return evaluate(Values(
         has_geometry=np.asarray(has_geometry, dtype=bool), ground_ft=np.asarray(ground_ft, dtype=np.float64),
         zoned=np.asarray(zoned, dtype=bool), psi_min=np.asarray(psi_min, dtype=np.float64),
         psi_max=np.asarray(psi_max, dtype=np.float64), psi_top=np.asarray(psi_top, dtype=np.float64),
-        criteria=criteria))
+        criteria=criteria, extra={k: np.asarray(v, dtype=np.float64) for k, v in (levels or {}).items()}))
 
 
 def classify(**values) -> NDArray[np.int8]:
@@ -138,6 +155,7 @@ def reasons(
     floors: ArrayLike,
     criteria: Criteria,
     findings: Mapping[str, ArrayLike] | None = None,
+    levels: Mapping[str, ArrayLike] | None = None,
 ) -> pd.api.extensions.ExtensionArray:
     """One text per customer saying why it has its status and findings, with the numbers, as pandas text (``"str"``).
 
@@ -155,6 +173,9 @@ def reasons(
         "pmin": np.asarray(psi_min, dtype=np.float64),
         "pmax": np.asarray(psi_max, dtype=np.float64),
         "ptop": np.asarray(psi_top, dtype=np.float64),
+        # the storage levels' pressures (as for screen), NaN where not checked
+        **{name: np.asarray((levels or {}).get(column, np.full(codes.shape, np.nan)), dtype=np.float64)
+           for name, column in (("pfire", "psi_fire"), ("pstandby", "psi_standby"))},
     }
     floors_arr = np.asarray(floors, dtype=np.float64)
     # the numbers of the rows selected by a mask; stories only where needed (floors may be NaN elsewhere)
@@ -163,6 +184,8 @@ def reasons(
     }
     numbers["stories"] = lambda m: np.round(floors_arr[m]).astype(np.int64)
     lo, hi = _g(criteria.min_static_psi), _g(criteria.max_static_psi)
+    # the storage levels' minimums, for their sentences (a sentence is used only where its minimum is set)
+    minimums = {lv.name: _g(getattr(criteria, lv.minimum)) for lv in LEVELS if getattr(criteria, lv.minimum) is not None}
 
     def sentences(status: str, m: NDArray[np.bool_], sentence: NDArray[np.intp], table: list[str]) -> None:
         """Fill ``sentence[m]`` with indices into ``table`` of ``status``'s sentences for the rows ``m``."""
@@ -171,17 +194,18 @@ def reasons(
             index, count, values = _distinct([numbers[name](m) for name in entry.numbers], int(np.count_nonzero(m)))
             texts = [v.astype(str) for v in values]
             sentence[m] = len(table) + index
-            table.extend(entry.sentence.format(*(t[i] for t in texts), lo=lo, hi=hi) for i in range(count))
+            table.extend(entry.sentence.format(*(t[i] for t in texts), lo=lo, hi=hi, **minimums) for i in range(count))
 
-    found = ({name: codes == CODE[name] for name in FINDINGS} if findings is None
+    found = ({name: codes == CODE[name] if name in CODE else np.zeros(codes.shape, dtype=bool) for name in FINDINGS}
+             if findings is None
              else {name: np.asarray(findings[name], dtype=bool) for name in FINDINGS})
     any_finding = np.zeros(codes.shape, dtype=bool)
     for m in found.values():
         any_finding |= m
     sentence = np.full(codes.shape, -1, dtype=np.intp)  # index into table; a code of no status fails the take
     table: list[str] = []
-    for entry in REGISTRY:
-        sentences(entry.name, (codes == CODE[entry.name]) & ~any_finding, sentence, table)
+    for name in STATUSES:
+        sentences(name, (codes == CODE[name]) & ~any_finding, sentence, table)
     if any_finding.any():
         # each finding's sentences apart, then each distinct combination of them joined once
         own: list[list[str]] = []

@@ -39,7 +39,7 @@ import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 
 from .classify import CODE, Criteria
-from .findings import BY_NAME, FINDINGS
+from .findings import BY_NAME, FINDINGS, FLAGGED_STATUSES
 from .tables import in_finding
 
 #: the confidence classes, most certain flag first
@@ -52,9 +52,11 @@ VERIFICATION_LIST = "field_verification"
 
 def margins(codes: ArrayLike, *, psi_min: ArrayLike, psi_max: ArrayLike, psi_top: ArrayLike,
             criteria: Criteria) -> NDArray[np.float64]:
-    """``margin_psi`` per customer (see the module's table); NaN for no_geometry, no_terrain and unzoned."""
+    """``margin_psi`` per customer (see the module's table); NaN for no_geometry, no_terrain and unzoned. A status
+    is judged by its own threshold, an ok customer by the statuses' (the storage-level findings are no status)."""
     codes = np.asarray(codes)
-    each = finding_margins(psi_min=psi_min, psi_max=psi_max, psi_top=psi_top, criteria=criteria)
+    each = finding_margins(psi_min=psi_min, psi_max=psi_max, psi_top=psi_top, criteria=criteria,
+                           names=FLAGGED_STATUSES)
     out = np.full(codes.shape, np.nan)
     for name, m in each.items():
         own = codes == CODE[name]
@@ -66,13 +68,22 @@ def margins(codes: ArrayLike, *, psi_min: ArrayLike, psi_max: ArrayLike, psi_top
     return out
 
 
-def finding_margins(*, psi_min: ArrayLike, psi_max: ArrayLike, psi_top: ArrayLike,
-                    criteria: Criteria) -> dict[str, NDArray[np.float64]]:
+def finding_margins(*, psi_min: ArrayLike, psi_max: ArrayLike, psi_top: ArrayLike, criteria: Criteria,
+                    extra: Mapping[str, ArrayLike] | None = None,
+                    names: Sequence[str] = FINDINGS) -> dict[str, NDArray[np.float64]]:
     """Each finding's margin for every customer, psi: its worst column beyond its threshold, positive on the
-    flagged side (:meth:`geopress.findings.Finding.margin`)."""
+    flagged side (:meth:`geopress.findings.Finding.margin`). ``extra`` holds the storage levels' pressure columns
+    (``psi_fire`` ...); a finding whose column is absent or whose minimum is off (None) has NaN margins."""
     columns = {"psi_min": np.asarray(psi_min, dtype=np.float64), "psi_max": np.asarray(psi_max, dtype=np.float64),
-               "psi_top": np.asarray(psi_top, dtype=np.float64)}
-    return {name: BY_NAME[name].finding.margin(columns[BY_NAME[name].finding.worst], criteria) for name in FINDINGS}
+               "psi_top": np.asarray(psi_top, dtype=np.float64),
+               **{k: np.asarray(v, dtype=np.float64) for k, v in (extra or {}).items()}}
+    out = {}
+    for name in names:
+        finding = BY_NAME[name].finding
+        worst = columns.get(finding.worst)
+        off = worst is None or finding.threshold(criteria) is None
+        out[name] = np.full(columns["psi_min"].shape, np.nan) if off else finding.margin(worst, criteria)
+    return out
 
 
 def rate(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.ExtensionArray:

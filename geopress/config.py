@@ -170,6 +170,14 @@ class ZonesConfig:
                 return s
         return None
 
+    def inlet_hgl(self, src: PrvSource, psi_per_ft: float) -> tuple[float, float] | None:
+        """(high, low) HGL, ft, that a PRV's inlet can supply: its ``inlet_hgl_ft`` both, or the HGL range of
+        its ``inlet_zone``'s source; None when the PRV gives no inlet."""
+        if src.inlet_hgl_ft is not None:
+            return (src.inlet_hgl_ft, src.inlet_hgl_ft)
+        upstream = None if src.inlet_zone is None else self.source_for(src.inlet_zone)
+        return None if upstream is None else upstream.hgl_range(psi_per_ft)
+
 
 @dataclass(frozen=True)
 class OutputConfig:
@@ -205,6 +213,24 @@ class OutputConfig:
 
 
 @dataclass(frozen=True)
+class OperatorConfig:
+    """Steps an operator can set, and the tolerance of the robust range (see :mod:`geopress.besthgl`).
+
+    ``tank_step_ft``: ft of tank level (counted from the tank's ``bottom_ft``
+    when given, else from 0 ft); ``prv_step_psi``: psi of PRV setting;
+    ``pump_step_ft``: ft of a booster's discharge HGL. The robust range may
+    flag ``robust_percent`` % of the zone's customers (rounded down) or
+    ``robust_customers``, whichever is larger, above the minimum.
+    """
+
+    tank_step_ft: float = 1.0
+    prv_step_psi: float = 1.0
+    pump_step_ft: float = 2.0
+    robust_percent: float = 1.0
+    robust_customers: int = 5
+
+
+@dataclass(frozen=True)
 class Config:
     """A whole, validated configuration."""
 
@@ -213,6 +239,7 @@ class Config:
     zones: ZonesConfig
     criteria: Criteria
     output: OutputConfig
+    operator: OperatorConfig = field(default_factory=OperatorConfig)
     #: how target areas are formed (the optional ``[targets]`` section)
     targets: TargetCriteria = TargetCriteria()
     readings: ReadingsConfig | None = None
@@ -244,10 +271,11 @@ class Config:
             "terrain": _plain(self.terrain),
             "zones": {
                 **_layer_dict(self.zones, ("path", "layer", "id_field")),
-                "source": [_plain(s) for s in self.zones.sources],
+                "source": [{k: v for k, v in _plain(s).items() if v is not None} for s in self.zones.sources],
             },
             "criteria": _plain(self.criteria),
             "output": _plain(self.output),
+            "operator": _plain(self.operator),
             "targets": _plain(self.targets),
             **({"readings": _plain(self.readings)} if self.readings else {}),
         }
@@ -261,6 +289,22 @@ MAX_SCHEMA_BYTES = 63
 #: above this a value of terrain.vertical_rmse_ft is not a DEM's RMSE in ft (the coarsest 3DEP products are
 #: a few ft; 100 ft is a value in cm or inches, or a typo)
 MAX_PLAUSIBLE_RMSE_FT = 100.0
+#: the shipped rule sets: TOML files of criteria values, each citing its source
+RULE_SETS = Path(__file__).parent / "rule_sets"
+#: the criteria keys of the storage levels (geopress.storage), each off unless set
+STORAGE_MINIMUMS = ("peak_hour_min_psi", "fire_min_psi", "standby_min_psi")
+
+
+def rule_set_key(text: str) -> str:
+    """A rule set's name as its file is named: lower case, every run of other characters one hyphen."""
+    return re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-")
+
+
+def rule_set_names() -> list[str]:
+    """The shipped rule sets' names."""
+    return sorted(p.stem for p in RULE_SETS.glob("*.toml"))
+
+
 #: the keys an --out-dir sets
 OUTPUT_KEYS = ("output.path", "output.mailing_dir")
 #: the files of a Shapefile besides the .shp, as GDAL reads them (attributes, index, CRS, encoding, spatial index)
@@ -549,13 +593,15 @@ class _Reader:
 
     # -- sections ----------------------------------------------------------
     def build(self, data: dict[str, Any]) -> Config:
-        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "targets", "readings"})
+        self.no_unknown(data, "", {"customers", "terrain", "zones", "criteria", "output", "operator", "targets",
+                                   "readings"})
         cfg = Config(
             customers=self.customers(self.table(data, "customers")),
             terrain=self.terrain(self.table(data, "terrain")),
             zones=self.zones(self.table(data, "zones")),
             criteria=self.criteria(self.table(data, "criteria", required=False)),
             output=self.output(self.table(data, "output")),
+            operator=self.operator(self.table(data, "operator", required=False)),
             targets=self.targets(self.table(data, "targets", required=False)),
             readings=self.readings(self.table(data, "readings", required=False)) if "readings" in data else None,
             source_path=self.source_path,
@@ -572,6 +618,7 @@ class _Reader:
         if cfg.output.mailing_dir in inputs:
             raise self.error("output.mailing_dir", f"is the same path as {inputs[cfg.output.mailing_dir]}")
         self.datums_fit(cfg.terrain, cfg.zones)
+        self.inlets_supply(cfg.zones, cfg.criteria.psi_per_ft)
         return cfg
 
     def datums_fit(self, terrain: TerrainConfig, zones: ZonesConfig) -> None:
@@ -755,6 +802,31 @@ class _Reader:
         "prv": ("valve_elevation_ft", "setting_psi"),
         "pump": ("discharge_hgl_ft",),
     }
+    #: optional numeric keys per kind, ft (``inlet_zone`` of a prv is text)
+    _OPTIONAL_KEYS = {
+        "tank": ("overflow_ft", "bottom_ft", "fire_bottom_ft", "standby_bottom_ft"),
+        "prv": ("inlet_hgl_ft",),
+        "pump": ("no_demand_hgl_ft", "shutoff_hgl_ft"),
+    }
+    #: per kind, (lower, upper, the key an error names, why): the levels that must not cross, where both are given
+    _ORDER = {
+        "tank": (
+            ("low_water_ft", "high_water_ft", "low_water_ft", "swap them"),
+            ("high_water_ft", "overflow_ft", "overflow_ft", "a tank holds no water above its overflow: fix one of them"),
+            ("bottom_ft", "low_water_ft", "bottom_ft", "a tank holds no water below its bottom: fix one of them"),
+            ("fire_bottom_ft", "low_water_ft", "fire_bottom_ft", "fire storage lies below the equalizing storage: fix one of them"),
+            ("standby_bottom_ft", "low_water_ft", "standby_bottom_ft",
+             "standby storage lies below the equalizing storage: fix one of them"),
+            ("bottom_ft", "fire_bottom_ft", "fire_bottom_ft", "a tank holds no water below its bottom: fix one of them"),
+            ("bottom_ft", "standby_bottom_ft", "standby_bottom_ft", "a tank holds no water below its bottom: fix one of them"),
+        ),
+        "pump": (
+            ("discharge_hgl_ft", "no_demand_hgl_ft", "no_demand_hgl_ft",
+             "a closed zone rises above the discharge HGL at no demand, not below it: fix one of them"),
+            ("no_demand_hgl_ft", "shutoff_hgl_ft", "no_demand_hgl_ft", "the pump makes no HGL above its shutoff: fix one of them"),
+            ("discharge_hgl_ft", "shutoff_hgl_ft", "discharge_hgl_ft", "the pump makes no HGL above its shutoff: fix one of them"),
+        ),
+    }
 
     def source(self, t: dict[str, Any], i: int) -> Source:
         s = f"zones.source[{i}]"
@@ -763,41 +835,116 @@ class _Reader:
         if kind not in self._KIND_KEYS:
             raise self.error(f"{s}.kind", f"must be one of {', '.join(self._KIND_KEYS)}, not {kind!r}")
         keys = self._KIND_KEYS[kind]
-        self.no_unknown(t, s, {"zone", "kind", *keys, "hgl_uncertainty_ft"})
+        optional = self._OPTIONAL_KEYS[kind]
+        self.no_unknown(t, s, {"zone", "kind", *keys, *optional, *(("inlet_zone",) if kind == "prv" else ()),
+                               "hgl_uncertainty_ft"})
         v = {k: self.get(t, s, k, "number") for k in keys}
+        v.update({k: self.get(t, s, k, "number", None) for k in optional})
         v["hgl_uncertainty_ft"] = self.get(t, s, "hgl_uncertainty_ft", "number", 0.0)
         if v["hgl_uncertainty_ft"] < 0:
             raise self.error(f"{s}.hgl_uncertainty_ft", "must not be negative")
+        for lower, upper, key, why in self._ORDER.get(kind, ()):
+            if v[lower] is not None and v[upper] is not None and v[lower] > v[upper]:
+                raise self.error(f"{s}.{key}", f"{lower} {v[lower]:g} ft is above {upper} {v[upper]:g} ft; {why}")
         if kind == "tank":
-            if v["low_water_ft"] > v["high_water_ft"]:
-                raise self.error(
-                    f"{s}.low_water_ft",
-                    f"{v['low_water_ft']:g} ft is above high_water_ft {v['high_water_ft']:g} ft; swap them",
-                )
             return TankSource(zone=zone, **v)
         if kind == "prv":
             if v["setting_psi"] <= 0:
                 raise self.error(f"{s}.setting_psi", "must be positive")
+            v["inlet_zone"] = self.get(t, s, "inlet_zone", "str", None)
+            if v["inlet_zone"] is not None and v["inlet_hgl_ft"] is not None:
+                raise self.error(f"{s}.inlet_zone", "and inlet_hgl_ft both give the valve's inlet; keep one")
+            if v["inlet_zone"] == zone:
+                raise self.error(f"{s}.inlet_zone", f"is the valve's own zone '{zone}'; name the zone upstream")
             return PrvSource(zone=zone, **v)
         return PumpSource(zone=zone, **v)
 
+    def inlets_supply(self, zones: ZonesConfig, psi_per_ft: float) -> None:
+        """Every PRV's inlet exists and can supply its setting: a setting whose HGL is above the highest HGL
+        of its inlet is refused."""
+        for i, src in enumerate(zones.sources):
+            if not isinstance(src, PrvSource) or (src.inlet_zone is None and src.inlet_hgl_ft is None):
+                continue
+            s = f"zones.source[{i}]"
+            if src.inlet_zone is not None and zones.source_for(src.inlet_zone) is None:
+                raise self.error(f"{s}.inlet_zone", f"names zone '{src.inlet_zone}', which has no [[zones.source]]; "
+                                                    f"name one of {', '.join(x.zone for x in zones.sources)}")
+            inlet_high, _ = zones.inlet_hgl(src, psi_per_ft)
+            hgl, _ = src.hgl_range(psi_per_ft)
+            if hgl > inlet_high:
+                what = (f"inlet_hgl_ft {inlet_high:,.1f} ft" if src.inlet_zone is None
+                        else f"{inlet_high:,.1f} ft, the highest HGL of its inlet zone '{src.inlet_zone}'")
+                raise self.error(f"{s}.setting_psi", f"{src.setting_psi:g} psi puts the HGL at {hgl:,.1f} ft, above "
+                                                     f"{what}: a PRV cannot raise the HGL; lower the setting or fix the "
+                                                     "inlet")
+
     def criteria(self, t: dict[str, Any]) -> Criteria:
         s = "criteria"
-        defaults = asdict(Criteria())
-        self.no_unknown(t, s, set(defaults))
+        defaults = {k: v for k, v in asdict(Criteria()).items() if k != "rule_set"}
+        self.no_unknown(t, s, {*defaults, "rule_set"})
+        rule_set = self.get(t, s, "rule_set", "str", None)
+        if rule_set is not None:
+            rule_set, values = self.rule_set(rule_set, set(defaults))
+            defaults.update(values)
         v = {k: self.get(t, s, k, "number", d) for k, d in defaults.items()}
+        where = f" (from rule set {rule_set})" if rule_set else ""
         if v["psi_per_ft"] <= 0:
             raise self.error("criteria.psi_per_ft", f"must be positive, not {v['psi_per_ft']:g}")
         if v["floor_height_ft"] <= 0:
             raise self.error("criteria.floor_height_ft", f"must be positive, not {v['floor_height_ft']:g}")
-        if v["min_static_psi"] < 0:
-            raise self.error("criteria.min_static_psi", "must not be negative")
+        for name in ("min_static_psi", *STORAGE_MINIMUMS):
+            if v[name] is not None and v[name] < 0:
+                raise self.error(f"criteria.{name}", f"must not be negative{where}")
         if v["min_static_psi"] > v["max_static_psi"]:
             raise self.error(
                 "criteria.min_static_psi",
-                f"{v['min_static_psi']:g} psi is above max_static_psi {v['max_static_psi']:g} psi; fix one of them",
+                f"{v['min_static_psi']:g} psi is above max_static_psi {v['max_static_psi']:g} psi{where}; fix one of them",
             )
-        return Criteria(**v)
+        return Criteria(**v, rule_set=rule_set)
+
+    def rule_set(self, text: str, allowed: set[str]) -> tuple[str, dict[str, float]]:
+        """The criteria values of a rule set: a shipped one by name (its file's stem, any case and punctuation:
+        "WAC 246-290-230"), or a user's TOML file (a path ending in .toml, relative to the config). Returns the
+        name to record (the shipped stem, or the file's absolute path) and the values."""
+        key = "criteria.rule_set"
+        if text.lower().endswith(".toml"):
+            path = self.path(text, key)
+            name = str(path)
+        else:
+            name = rule_set_key(text)
+            path = RULE_SETS / f"{name}.toml"
+            if not path.is_file():
+                raise self.error(key, f"unknown rule set {text!r}; use one of {', '.join(rule_set_names())}, "
+                                      "or the path of your own .toml file")
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8-sig"))
+        except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+            raise self.error(key, f"cannot read rule set {path} ({exc}); fix the file or the path") from exc
+        values = data.get("criteria")
+        if not isinstance(values, dict):
+            raise self.error(key, f"rule set {path} has no [criteria] table; add one with the values it sets")
+        for k, value in values.items():
+            if k not in allowed:
+                raise self.error(key, f"rule set {path} sets unknown key {k!r}; allowed keys are "
+                                      f"{', '.join(sorted(allowed))}")
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(_float_or_inf(value)):
+                raise self.error(key, f"rule set {path}: {k} must be a finite number, not {_short(value)}")
+        return name, {k: float(x) for k, x in values.items()}
+
+    def operator(self, t: dict[str, Any]) -> OperatorConfig:
+        s = "operator"
+        defaults = asdict(OperatorConfig())
+        self.no_unknown(t, s, set(defaults))
+        v = {k: self.get(t, s, k, "number", d) for k, d in defaults.items()}
+        for name in ("tank_step_ft", "prv_step_psi", "pump_step_ft"):
+            if not 0.01 <= v[name] <= 100:
+                raise self.error(f"operator.{name}", f"must be between 0.01 and 100, not {v[name]:g}")
+        if not 0 <= v["robust_percent"] <= 100:
+            raise self.error("operator.robust_percent", f"must be between 0 and 100, not {v['robust_percent']:g}")
+        if v["robust_customers"] < 0 or v["robust_customers"] != int(v["robust_customers"]):
+            raise self.error("operator.robust_customers", f"must be a whole number >= 0, not {v['robust_customers']:g}")
+        v["robust_customers"] = int(v["robust_customers"])
+        return OperatorConfig(**v)
 
     def targets(self, t: dict[str, Any]) -> TargetCriteria:
         s = "targets"

@@ -34,6 +34,8 @@ from typing import Any, Callable, Mapping, NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
+from . import storage
+
 #: Okabe-Ito colours (Okabe and Ito, "Color Universal Design", 2008), by name.
 OKABE_ITO = {
     "black": "#000000", "orange": "#E69F00", "sky_blue": "#56B4E9", "bluish_green": "#009E73",
@@ -93,7 +95,9 @@ class Status:
     """One status: ``condition`` (None for ``ok``, the default), the reason ``sentence`` (a template for
     str.format with the criteria as ``lo`` and ``hi`` and the ``numbers`` of :func:`geopress.classify.reasons`
     filling its ``{}`` in order), its ``style``, its drawing ``layer_order`` on the maps (lowest first) and,
-    when it flags a customer, its :class:`Finding`."""
+    when it flags a customer, its :class:`Finding`. An entry with ``is_status`` False is a finding only: it
+    never becomes a customer's status (the storage levels: emergencies, not normal operation), so it is on no
+    status map, only in its own layer, list and column; its style draws that layer."""
 
     name: str
     condition: Callable[[Values], NDArray[np.bool_]] | None
@@ -102,6 +106,7 @@ class Status:
     style: Style
     layer_order: int
     finding: Finding | None = None
+    is_status: bool = True
 
     @property
     def column(self) -> str:
@@ -112,6 +117,17 @@ class Status:
     def area_column(self) -> str:
         """The customer's column naming its target area of this finding (geopress.targets), missing where none."""
         return f"target_area_{self.name}"
+
+
+def _short_at(v: Values, level: str) -> NDArray[np.bool_]:
+    """Whether the pressure at a storage level (:mod:`geopress.storage`) is below its minimum: nowhere when the
+    minimum is off (None) or no zone has the level (its column absent from ``v.extra``)."""
+    lv = storage.BY_NAME[level]
+    minimum = getattr(v.criteria, lv.minimum)
+    psi = v.psi_min if lv.column == "psi_min" else v.extra.get(lv.column)
+    if minimum is None or psi is None:
+        return np.zeros(np.shape(v.ground_ft), dtype=bool)
+    return storage.short(psi, minimum)
 
 
 _C = OKABE_ITO
@@ -142,16 +158,36 @@ REGISTRY: tuple[Status, ...] = (
            "top floor of {} stories down to {} psi is below {lo} psi: upper floors need a booster", ("stories", "ptop"),
            Style(_C["sky_blue"], "s", "low upper floors: top floor below the minimum", "square", 36.0, "■"), 3,
            Finding("upper_floors", "psi_top", "min", lambda c: c.min_static_psi)),
+    # the storage levels: findings only, each off unless its criteria minimum is set (geopress.storage)
+    Status("peak_hour_short", lambda v: _short_at(v, "peak_hour"),
+           "at peak hour with equalizing storage used (HGL {} ft), static pressure down to {} psi is below {peak_hour} psi",
+           ("hgl_low", "pmin"),
+           Style(_C["blue"], "v", "short at peak hour: below the peak-hour minimum", "triangle-down", 40.0, "▼"), 4,
+           Finding("peak_hour_short", "psi_min", "min", lambda c: c.peak_hour_min_psi), is_status=False),
+    Status("fire_short", lambda v: _short_at(v, "fire"),
+           "with fire suppression and equalizing storage used, static pressure down to {} psi is below {fire} psi",
+           ("pfire",),
+           Style(_C["reddish_purple"], "D", "short with fire storage used: below the fire minimum", "diamond", 36.0,
+                 "◆"), 6,
+           Finding("fire_storage_short", "psi_fire", "min", lambda c: c.fire_min_psi), is_status=False),
+    Status("standby_short", lambda v: _short_at(v, "standby"),
+           "with standby and equalizing storage used, static pressure down to {} psi is below {standby} psi",
+           ("pstandby",),
+           Style(_C["sky_blue"], "s", "short with standby storage used: below the standby minimum", "square", 36.0,
+                 "■"), 3,
+           Finding("standby_storage_short", "psi_standby", "min", lambda c: c.standby_min_psi), is_status=False),
     Status("ok", None, "static pressure {} to {} psi, within {lo} to {hi} psi", ("pmin", "pmax"),
            Style(_C["bluish_green"], "o", "ok: within the pressure window", "circle", 14.0, "●"), 0),
 )
 del _C
 
 #: every status, in precedence order (``ok`` last)
-STATUSES: tuple[str, ...] = tuple(s.name for s in REGISTRY)
+STATUSES: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.is_status)
 BY_NAME: dict[str, Status] = {s.name: s for s in REGISTRY}
 #: the statuses that flag a customer, in precedence order: the findings
 FINDINGS: tuple[str, ...] = tuple(s.name for s in REGISTRY if s.finding is not None)
+#: the findings that are also statuses (the statuses that flag a customer), in precedence order
+FLAGGED_STATUSES: tuple[str, ...] = tuple(name for name in FINDINGS if name in STATUSES)
 #: finding -> its output layer and mailing list
 FLAGGED_LAYERS: dict[str, str] = {s.name: s.finding.layer for s in REGISTRY if s.finding is not None}
 #: finding -> its boolean column of the customers
@@ -163,7 +199,10 @@ WORST: dict[str, tuple[str, str]] = {s.name: (s.finding.worst, s.finding.worse) 
                                      if s.finding is not None}
 #: status -> style, in drawing order: the first is drawn lowest, so every flagged status lies above ``ok``.
 #: ``no_geometry`` has no location and appears on no map, only in the tables.
-STATUS_STYLE: dict[str, Style] = {s.name: s.style for s in sorted(REGISTRY, key=lambda s: s.layer_order)}
+STATUS_STYLE: dict[str, Style] = {s.name: s.style for s in sorted(REGISTRY, key=lambda s: s.layer_order)
+                                   if s.is_status}
+#: every entry's style, the findings that are no status too (their layers are drawn in it)
+STYLES: dict[str, Style] = {s.name: s.style for s in REGISTRY}
 #: the statuses that say why no finding could be evaluated (no location, ground or zone)
 UNSCREENED: tuple[str, ...] = STATUSES[: STATUSES.index(FINDINGS[0])]
 
@@ -186,10 +225,10 @@ def evaluate(values: Values) -> tuple[NDArray[np.int8], dict[str, NDArray[np.boo
     found = {name: held[name] & screened for name in FINDINGS}
     codes = np.full(n, STATUSES.index("ok"), dtype=np.int8)
     decided = np.zeros(n, dtype=bool)
-    for i, s in enumerate(REGISTRY):
-        if s.condition is None:
+    for i, name in enumerate(STATUSES):
+        if name not in held:  # ok: no condition
             continue
-        now = held[s.name] & ~decided
+        now = held[name] & ~decided
         codes[now] = i
         decided |= now
     return codes, found

@@ -34,6 +34,7 @@ from . import fieldcheck
 from . import guards
 from . import planning
 from . import runner
+from . import storage
 from ._compat import report_missing, xlsx_missing
 from . import nightly
 from ._version import __version__
@@ -47,7 +48,7 @@ from .io import write as write_io
 from .pressure import M_PER_FT, customer_pressures
 from . import targets as targets_mod
 from .changes import CHANGES
-from .findings import AREA_COLUMNS
+from .findings import AREA_COLUMNS, FLAGGED_STATUSES
 from .tables import mailing_lists, zone_summary
 from .units import customers_in_units, mailing_columns_in_units, units_for
 from .zones import assign_xy, overlaps
@@ -363,10 +364,11 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   if cfg.customers.floors_field else np.full(len(ground), np.nan))
         p = customer_pressures(ground, hgl_high, hgl_low, floors, psi_per_ft=crit.psi_per_ft,
                                floor_height_ft=crit.floor_height_ft)
+        levels = storage.level_columns(ground, zi, zones.zone_ids, crit, cfg.zones.sources)
         codes, found = cls.screen(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
-                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
+                                  psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit, levels=levels)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
-                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found)
+                             psi_top=p.psi_top, floors=floors, criteria=crit, findings=found, levels=levels)
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
     with clock.step("target areas"):
@@ -385,6 +387,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "psi_max": p.psi_max,
             "psi_min": p.psi_min,
             "psi_top": p.psi_top,
+            **levels,
             "status": cls.status_names(codes),
             "reason": reason,
             "margin_psi": margin,
@@ -406,7 +409,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         shown = customers_in_units(customers, units)
         # each finding's margin (in the display unit) and class, for its mailing list
         rated = {name: (units.pressure_from_psi(m), confidence.rate(m, sigma)) for name, m in confidence.finding_margins(
-            psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit).items()}
+            psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit, extra=levels).items()}
         mailing = {name: mailing_columns_in_units(df, units) for name, df in mailing_lists(
             shown, id_field=id_field, mail_fields=cfg.customers.mail_fields, letter_fields=cfg.customers.letter_fields,
             rated=rated, firm_only=cfg.output.mail_firm_only).items()}
@@ -444,6 +447,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                   "overlaps": overlap_info},
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
+        "storage_levels": storage.record(crit, cfg.zones.sources),
         "target_areas": area_info,
         "terrain_accuracy": terrain_accuracy(cfg),
         "confidence": {"counts": {c: int((customers["confidence"] == c).sum()) for c in confidence.CLASSES},
@@ -497,7 +501,7 @@ def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray,
     info = {"enabled": cfg.targets.enabled, "distance_ft": cfg.targets.distance_ft,
             "min_customers": cfg.targets.min_customers,
             "clustered_in": crs.to_string(), "areas": int(len(layer)),
-            "by_finding": {f: int((layer["finding"] == f).sum()) for f in cls.FINDINGS},
+            "by_finding": {f: int((layer["finding"] == f).sum()) for f in FLAGGED_STATUSES},  # the findings that get areas
             "customers_in_areas": int(layer["customers"].sum())}
     return areas, layer, info
 

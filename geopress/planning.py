@@ -23,13 +23,13 @@ import shapely
 from pyproj import CRS
 
 from . import band as band_mod
-from .besthgl import best_range
+from .besthgl import BestRange, Dial, best_range, flagged_count, robust_tolerance, settable
 from .classify import FLAGGED_LAYERS
 from .config import Config
 from .io import raster as raster_io
 from .io.datum import DatumShift
 from .io.vector import Zones
-from .pressure import M_PER_FT, PrvSource, PumpSource, TankSource
+from .pressure import M_PER_FT, PrvSource, Source, TankSource
 
 if TYPE_CHECKING:  # the report extra is optional: report_html imports it when it runs
     from . import report
@@ -169,15 +169,74 @@ BEST_COLUMNS = (
     "best_discharge_hgl_ft_from", "best_discharge_hgl_ft_to",
     "flagged_now", "flagged_at_best",
 )
+#: the settings an operator can set, in the unit of the zone's control (``control``: the source key it is)
+OPERATOR_COLUMNS = (
+    "control", "control_step", "control_min", "control_max", "optimum_vs_bounds",
+    "step_from", "step_to", "flagged_at_step", "steps_inside_optimum",
+    "robust_from", "robust_to", "flagged_robust", "robust_tolerance",
+)
+#: counts that may be missing (no step can be set)
+_COUNTS = ("flagged_at_step", "flagged_robust")
+
+
+@dataclass(frozen=True)
+class Control:
+    """A zone's control as the best-range sweep sees it: ``key`` (the source key it sets), the steps of
+    ``dial``, the bounds on the high HGL ``lower_ft``/``upper_ft`` (what the source can do, infinite where
+    nothing is known), and ``to_control``, the control's value (its unit) at a high HGL (ft)."""
+
+    key: str
+    dial: Dial
+    lower_ft: float
+    upper_ft: float
+    offset: float
+    scale: float
+
+    def to_control(self, hgl_ft: float) -> float:
+        """The control's value at high HGL ``hgl_ft``."""
+        return self.scale * (hgl_ft - self.offset)
+
+
+def control_of(src: Source, cfg: Config) -> Control:
+    """The control of ``src``'s zone: a tank's high water (steps from its bottom), a PRV's setting, a
+    booster's discharge HGL; bounded by the tank's bottom plus its operating range and its overflow, the
+    PRV's inlet (the lowest HGL it supplies) and a setting of 0 psi, the pump's shutoff HGL."""
+    k, op = cfg.criteria.psi_per_ft, cfg.operator
+    high, low = src.hgl_range(k)
+    inf = np.inf
+    if isinstance(src, TankSource):
+        origin = 0.0 if src.bottom_ft is None else src.bottom_ft
+        return Control("high_water_ft", Dial(origin, op.tank_step_ft, origin, op.tank_step_ft),
+                       -inf if src.bottom_ft is None else src.bottom_ft + (high - low),
+                       inf if src.overflow_ft is None else src.overflow_ft, 0.0, 1.0)
+    if isinstance(src, PrvSource):
+        inlet = cfg.zones.inlet_hgl(src, k)
+        return Control("setting_psi", Dial(src.valve_elevation_ft, op.prv_step_psi / k, 0.0, op.prv_step_psi),
+                       src.valve_elevation_ft, inf if inlet is None else inlet[1], src.valve_elevation_ft, k)
+    band = high - low  # the discharge HGL is the high HGL less the band up to the no-demand HGL
+    return Control("discharge_hgl_ft", Dial(band, op.pump_step_ft, 0.0, op.pump_step_ft), -inf,
+                   inf if src.shutoff_hgl_ft is None else src.shutoff_hgl_ft, band, 1.0)
+
+
+def _where(best: BestRange, lower_ft: float, upper_ft: float) -> str:
+    """Where the exact optimum lies against the bounds: inside, partly outside, outside (none: no optimum)."""
+    if np.isnan(best.from_ft):
+        return "none"
+    if best.from_ft >= lower_ft and best.to_ft <= upper_ft:
+        return "inside"
+    if best.to_ft < lower_ft or best.from_ft > upper_ft:
+        return "outside"
+    return "partly outside"
 
 
 def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
-    """Per zone, the best range of its control (tank high water, PRV setting or pump HGL) and the counts.
+    """Per zone, the best range of its control (tank high water, PRV setting or pump HGL), the counts, and
+    what an operator can set (:data:`OPERATOR_COLUMNS`, from :func:`geopress.besthgl.settable`).
 
-    Only the pair of columns for the zone's source kind is filled; the
-    others are NaN.
+    Only the pair of ``best_`` columns for the zone's source kind is filled; the others are NaN. The
+    ``best_`` range is the exact optimum with no bounds; the operator's steps lie within the bounds.
     """
-    crit = cfg.criteria
+    crit, op = cfg.criteria, cfg.operator
     floors_all = (customers[cfg.customers.floors_field].to_numpy(dtype=np.float64, na_value=np.nan) if cfg.customers.floors_field
                   else np.full(len(customers), np.nan))
     zone_col = customers["zone"]
@@ -188,18 +247,33 @@ def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
         sel = (zone_col == src.zone).to_numpy(dtype=bool)  # compared as the column's own text, no Python str per row
         row: dict[str, Any] = {"zone": src.zone, **{c: np.nan for c in BEST_COLUMNS}}
         high, low = src.hgl_range(crit.psi_per_ft)
-        best = best_range(ground_all[sel], floors_all[sel], high - low, crit)
-        if isinstance(src, TankSource):
-            row["best_high_water_ft_from"], row["best_high_water_ft_to"] = best.from_ft, best.to_ft
-        elif isinstance(src, PrvSource):
-            to_psi = lambda h: crit.psi_per_ft * (h - src.valve_elevation_ft)  # noqa: E731
-            row["best_setting_psi_from"], row["best_setting_psi_to"] = to_psi(best.from_ft), to_psi(best.to_ft)
-        elif isinstance(src, PumpSource):
-            row["best_discharge_hgl_ft_from"], row["best_discharge_hgl_ft_to"] = best.from_ft, best.to_ft
+        ground, floors = ground_all[sel], floors_all[sel]
+        best = best_range(ground, floors, high - low, crit)
+        control = control_of(src, cfg)
+        key = {"high_water_ft": "best_high_water_ft", "setting_psi": "best_setting_psi",
+               "discharge_hgl_ft": "best_discharge_hgl_ft"}[control.key]
+        row[f"{key}_from"], row[f"{key}_to"] = control.to_control(best.from_ft), control.to_control(best.to_ft)
         row["flagged_now"] = int(flagged_all[sel].sum())
         row["flagged_at_best"] = best.flagged
+        lower, upper = control.lower_ft, control.upper_ft
+        bounded = best_range(ground, floors, high - low, crit, lower_ft=lower, upper_ft=upper)
+        tolerance = robust_tolerance(best.customers, op.robust_percent, op.robust_customers)
+        steps = settable(flagged_count(ground, floors, high - low, crit), bounded, control.dial,
+                         tolerance=tolerance, lower_ft=lower, upper_ft=upper)
+        row.update({
+            "control": control.key, "control_step": control.dial.c_step,
+            "control_min": control.to_control(lower) if np.isfinite(lower) else np.nan,
+            "control_max": control.to_control(upper) if np.isfinite(upper) else np.nan,
+            "optimum_vs_bounds": _where(best, lower, upper),
+            "step_from": steps.step_from, "step_to": steps.step_to, "flagged_at_step": steps.flagged_at_step,
+            "steps_inside_optimum": steps.inside_optimum,
+            "robust_from": steps.robust_from, "robust_to": steps.robust_to, "flagged_robust": steps.flagged_robust,
+            "robust_tolerance": steps.tolerance,
+        })
         rows.append(row)
-    return pd.DataFrame(rows, columns=["zone", *BEST_COLUMNS]).astype({"flagged_now": "int64", "flagged_at_best": "int64"})
+    table = pd.DataFrame(rows, columns=["zone", *BEST_COLUMNS, *OPERATOR_COLUMNS])
+    return table.astype({"flagged_now": "int64", "flagged_at_best": "int64", "robust_tolerance": "int64",
+                         "steps_inside_optimum": "bool"} | {c: "Int64" for c in _COUNTS})
 
 
 def _frame(crs: CRS, bounds: tuple[float, float, float, float]) -> "report.Frame":

@@ -74,13 +74,25 @@ def static_psi(hgl_ft: ArrayLike, elevation_ft: ArrayLike, psi_per_ft: float = D
 
 @dataclass(frozen=True)
 class TankSource:
-    """A zone fed by an elevated tank; the HGL is the water surface, ft."""
+    """A zone fed by an elevated tank; the HGL is the water surface, ft.
+
+    ``high_water_ft`` and ``low_water_ft`` are the normal operating levels (the
+    bottom of operational and of equalizing storage). Optional, ft: the
+    ``overflow_ft`` and the tank's ``bottom_ft`` (what the tank can hold), and
+    the bottoms of its fire suppression and standby storage,
+    ``fire_bottom_ft`` and ``standby_bottom_ft`` (the levels with that storage
+    used too), between ``bottom_ft`` and ``low_water_ft``.
+    """
 
     zone: str
     high_water_ft: float
     low_water_ft: float
     #: one standard uncertainty of the HGL, ft (level sensor, datum of the records); 0 when not known
     hgl_uncertainty_ft: float = 0.0
+    overflow_ft: float | None = None
+    bottom_ft: float | None = None
+    fire_bottom_ft: float | None = None
+    standby_bottom_ft: float | None = None
     kind: Literal["tank"] = "tank"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:
@@ -90,13 +102,19 @@ class TankSource:
 
 @dataclass(frozen=True)
 class PrvSource:
-    """A zone fed through a pressure-reducing valve: HGL = valve elevation + setting head."""
+    """A zone fed through a pressure-reducing valve: HGL = valve elevation + setting head.
+
+    Optional inlet side: ``inlet_zone`` (the zone upstream, whose HGL range
+    feeds the valve) or ``inlet_hgl_ft`` (a fixed inlet HGL, ft); at most one.
+    """
 
     zone: str
     valve_elevation_ft: float
     setting_psi: float
     #: one standard uncertainty of the HGL, ft (the valve's setting drift, its surveyed elevation); 0 when not known
     hgl_uncertainty_ft: float = 0.0
+    inlet_zone: str | None = None
+    inlet_hgl_ft: float | None = None
     kind: Literal["prv"] = "prv"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:
@@ -107,17 +125,27 @@ class PrvSource:
 
 @dataclass(frozen=True)
 class PumpSource:
-    """A closed zone held by a booster station at a discharge HGL, ft."""
+    """A closed zone held by a booster station at a discharge HGL, ft.
+
+    Optional, ft: ``no_demand_hgl_ft``, the HGL the closed zone rises to at no
+    demand (towards the pump's shutoff head, or the discharge setting plus its
+    control band), which makes the zone's HGL a range like a tank's; and
+    ``shutoff_hgl_ft``, the highest HGL the station can make (suction HGL plus
+    the shutoff head), which bounds the settings considered.
+    """
 
     zone: str
     discharge_hgl_ft: float
     #: one standard uncertainty of the HGL, ft (the discharge gauge, its elevation); 0 when not known
     hgl_uncertainty_ft: float = 0.0
+    no_demand_hgl_ft: float | None = None
+    shutoff_hgl_ft: float | None = None
     kind: Literal["pump"] = "pump"
 
     def hgl_range(self, psi_per_ft: float) -> tuple[float, float]:
-        """(high, low) HGL in ft; both equal the discharge HGL."""
-        return (self.discharge_hgl_ft, self.discharge_hgl_ft)
+        """(high, low) HGL in ft: (``no_demand_hgl_ft``, discharge), both the discharge HGL without it."""
+        high = self.discharge_hgl_ft if self.no_demand_hgl_ft is None else self.no_demand_hgl_ft
+        return (high, self.discharge_hgl_ft)
 
 
 Source = Union[TankSource, PrvSource, PumpSource]

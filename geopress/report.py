@@ -777,20 +777,62 @@ def _fmt(value: Any, digits: int = 1) -> str:
     return str(value)
 
 
+#: per control key: how the report names it, and whether it is a length (else a pressure)
+_CONTROLS = {"high_water_ft": ("high water", True), "setting_psi": ("setting", False),
+             "discharge_hgl_ft": ("discharge HGL", True)}
+_BEST_KEYS = {"high_water_ft": "best_high_water_ft", "setting_psi": "best_setting_psi",
+              "discharge_hgl_ft": "best_discharge_hgl_ft"}
+
+
+def _count(value: Any) -> str:
+    return "–" if value is None or pd.isna(value) else f"{int(value):,}"
+
+
+def control_texts(r: Mapping[str, Any], units: Units) -> dict[str, str]:
+    """A zone_summary row's control ranges as display text in ``units``: ``best`` (the whole steps an operator
+    can set, or the single best step; ``best_note`` says which, at length), ``flagged_at_best`` (what they flag), ``exact`` (the exact optimum,
+    against what the source can do) and ``robust``."""
+    key = r.get("control")
+    if key not in _CONTROLS:
+        return {"best": "–", "best_note": "–", "flagged_at_best": "–", "exact": "–", "robust": "–"}
+    label, length = _CONTROLS[key]
+    unit = units.length if length else units.pressure
+    V = lambda v: _fmt(float(units.length_from_ft(v) if length else units.pressure_from_psi(v)))  # noqa: E731
+    step = f"{float(units.length_from_ft(r['control_step']) if length else units.pressure_from_psi(r['control_step'])):.3g}"
+
+    def span(a: Any, b: Any) -> str:
+        return f"{V(a)} {unit}" if a == b else f"{V(a)} to {V(b)} {unit}"
+
+    lo, hi = r.get(f"{_BEST_KEYS[key]}_from"), r.get(f"{_BEST_KEYS[key]}_to")
+    exact = "–" if lo is None or pd.isna(lo) else f"{label} {span(lo, hi)}, flags {_count(r.get('flagged_at_best'))}"
+    where = r.get("optimum_vs_bounds")
+    limits = [f"from {V(r['control_min'])}" if not pd.isna(r.get("control_min")) else "",
+              f"up to {V(r['control_max'])}" if not pd.isna(r.get("control_max")) else ""]
+    if where in ("outside", "partly outside"):
+        exact += f"; {where} what the source can do ({label} {' '.join(x for x in limits if x)} {unit})"
+    if pd.isna(r.get("step_from")):
+        best = note = "no step serves any customer"
+    elif r.get("steps_inside_optimum"):
+        best = f"{label} {span(r['step_from'], r['step_to'])}"
+        note = f"{best}: whole {step} {unit} steps inside the exact optimum"
+    else:
+        best = f"{label} {span(r['step_from'], r['step_to'])} (one step)"
+        note = (f"{label} {span(r['step_from'], r['step_to'])}: the exact optimum is narrower than one {step} {unit} "
+                "step, and this is the step that flags fewest")
+    robust = "–" if pd.isna(r.get("robust_from")) else (
+        f"{label} {span(r['robust_from'], r['robust_to'])}, flags at most {_count(r.get('flagged_robust'))} "
+        f"(the minimum plus up to {_count(r.get('robust_tolerance'))})")
+    return {"best": best, "best_note": note, "flagged_at_best": _count(r.get("flagged_at_step")), "exact": exact,
+            "robust": robust}
+
+
 def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units, criteria: Criteria) -> list[dict[str, str]]:
     """The zone_summary table as display text, one row per zone, in ``units``."""
     band_by_zone = {} if bands is None else {r["zone"]: r for r in bands.to_dict("records")}
     rows = []
     for r in summary.to_dict("records"):
         L = lambda ft: _fmt(float(units.length_from_ft(ft)))  # noqa: E731
-        P = lambda psi: _fmt(float(units.pressure_from_psi(psi)))  # noqa: E731
-        if r.get("source_kind") == "tank":
-            best = f"high water {L(r.get('best_high_water_ft_from'))} to {L(r.get('best_high_water_ft_to'))} {units.length}"
-        elif r.get("source_kind") == "prv":
-            best = f"setting {P(r.get('best_setting_psi_from'))} to {P(r.get('best_setting_psi_to'))} {units.pressure}"
-        else:
-            best = (f"discharge HGL {L(r.get('best_discharge_hgl_ft_from'))} to {L(r.get('best_discharge_hgl_ft_to'))} "
-                    f"{units.length}")
+        texts = control_texts(r, units)
         b = band_by_zone.get(r["zone"])
         if b is not None:
             band = (f"{L(b['lower_limit_ft'])} to {L(b['upper_limit_ft'])} {units.length}, "
@@ -803,12 +845,11 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
             "hgl": f"{L(r['hgl_low_ft'])} to {L(r['hgl_high_ft'])}",
             "customers": str(int(r["customers"])), "ok": str(int(r.get("n_ok", 0))),
             # per finding (registry order): customers with it as their status, and on its list
-            "by_status": [str(int(r.get(f"n_{s}", 0))) for s in FLAGGED_LAYERS],
+            "by_status": [str(int(r[f"n_{s}"])) if f"n_{s}" in r else "–" for s in FLAGGED_LAYERS],  # –: no status
             "by_finding": [str(int(r.get(f"n_{c}", 0))) for c in FINDING_COLUMNS.values()],
-            "flagged": str(flagged), "best": best,
+            "flagged": str(flagged), **texts,
             "firm": str(int(r.get("n_firm", 0))), "borderline": str(int(r.get("n_borderline", 0))),
             "near_limit": str(int(r.get("n_near_limit", 0))), "unrated": str(int(r.get("n_unrated", 0))),
-            "flagged_at_best": _fmt(r.get("flagged_at_best"), 0) if "flagged_at_best" in r else "–",
             "band": band,
         })
     return rows
@@ -817,8 +858,12 @@ def summary_rows(summary: pd.DataFrame, bands: pd.DataFrame | None, units: Units
 #: a zone source's configured keys, in the order a reader expects them, with their unit
 SOURCE_KEYS = (
     ("high_water_ft", "high water", "ft"), ("low_water_ft", "low water", "ft"),
+    ("fire_bottom_ft", "bottom of fire storage", "ft"), ("standby_bottom_ft", "bottom of standby storage", "ft"),
+    ("overflow_ft", "overflow", "ft"), ("bottom_ft", "bottom", "ft"),
     ("valve_elevation_ft", "valve elevation", "ft"), ("setting_psi", "setting", "psi"),
-    ("discharge_hgl_ft", "discharge HGL", "ft"),
+    ("inlet_zone", "inlet zone", ""), ("inlet_hgl_ft", "inlet HGL", "ft"),
+    ("discharge_hgl_ft", "discharge HGL", "ft"), ("no_demand_hgl_ft", "HGL at no demand", "ft"),
+    ("shutoff_hgl_ft", "shutoff HGL", "ft"),
 )
 
 
@@ -831,6 +876,9 @@ def source_rows(sources: Sequence[Mapping[str, Any]], summary: pd.DataFrame, uni
         controls = []
         for key, label, unit in SOURCE_KEYS:
             if s.get(key) is None:
+                continue
+            if not unit:  # text: a zone's name
+                controls.append(f"{label} {s[key]}")
                 continue
             value = float(s[key])
             text = f"{label} {value:,.1f} {unit}"

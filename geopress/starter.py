@@ -17,7 +17,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
 from .classify import Criteria
-from .config import PLACEHOLDER
+from .config import PLACEHOLDER, rule_set_names
 
 #: field names that usually hold an account or meter id, tried first among the unique fields
 ID_NAME = re.compile(r"(^|_)(id|account|acct|meter|premise|parcel|pin|apn|number|no)($|_)|id$", re.I)
@@ -237,8 +237,9 @@ def config_text(customers: VectorSummary | None, rasters: Sequence[RasterSummary
         *_zones(zones, zone_ids),
         "",
         "[criteria]",
-        "# the defaults; set the ones your plumbing code and state rules use",
-        *[f"{k} = {v!r}" for k, v in crit.items()],
+        "# the defaults; set the ones your plumbing code and state rules use, or start from a published rule set:",
+        f"# rule_set = {toml_string(rule_set_names()[-1])}   # one of {', '.join(rule_set_names())}",
+        *[f"{k} = {v!r}" for k, v in crit.items() if v is not None],
         "",
         "[output]",
         f"path = {toml_string(f'{output}/pressure.gpkg')}",

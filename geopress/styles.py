@@ -21,7 +21,7 @@ import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from typing import Mapping, Sequence
 
-from .findings import FLAGGED_LAYERS, STATUS_STYLE, STATUSES, finding_of_layer
+from .findings import FLAGGED_LAYERS, FLAGGED_STATUSES, STATUSES, STYLES, finding_of_layer
 from .report import AREA_OPACITY, BAND_COLOUR, LIMIT_STYLE
 
 SLD_NS = "http://www.opengis.net/sld"
@@ -88,7 +88,7 @@ def _filter_equal(rule: ET.Element, field: str, value: str) -> None:
 
 def _point_rule(fts: ET.Element, status: str, filtered: bool = True) -> None:
     """A rule drawing ``status``'s marker: for the features of that status, or (not ``filtered``) for every one."""
-    style = STATUS_STYLE[status]
+    style = STYLES[status]
     colour, label = style.colour, style.label
     well_known, rotation, filled = MARKS[style.marker]
     rule = _el(fts, "Rule")
@@ -165,13 +165,13 @@ def area_style(layer: str = "target_areas") -> LayerStyle:
     name = f"{layer} by finding"
     description = f"geopress: target areas filled in their finding's colour, as in report.html. {CAUTION}"
     root, fts = _document(layer, name, description)
-    for finding in FLAGGED_LAYERS:
+    for finding in FLAGGED_STATUSES:  # the findings that get target areas
         rule = _el(fts, "Rule")
         _el(rule, "Name", finding)
         _el(rule, "Title", f"target area: {finding}")
         _filter_equal(rule, "finding", finding)
         symbolizer = _el(rule, "PolygonSymbolizer")
-        _css(_el(symbolizer, "Fill"), fill=STATUS_STYLE[finding].colour, fill_opacity=AREA_OPACITY)
+        _css(_el(symbolizer, "Fill"), fill=STYLES[finding].colour, fill_opacity=AREA_OPACITY)
         _css(_el(symbolizer, "Stroke"), stroke="#000000", stroke_width=OUTLINE_PX)
     return LayerStyle(layer, name, description, _text(root))
 

@@ -37,7 +37,7 @@ import shapely
 from numpy.typing import NDArray
 
 from .classify import names_at
-from .findings import FINDINGS, WORST
+from .findings import FINDINGS, FLAGGED_STATUSES, WORST
 
 #: the layer's columns, in order (``geometry`` last)
 COLUMNS = (
@@ -149,7 +149,9 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     for finding in FINDINGS:
         member = np.full(x.size, -1, dtype=np.intp)
         members[finding] = member
-        if not targets.enabled:
+        # a storage level's shortfall (a finding that is no status) is fixed at the tank, not by a zone-level PRV or
+        # booster over an area: it gets none
+        if not targets.enabled or finding not in FLAGGED_STATUSES:
             continue
         worst_col, worse = WORST[finding]
         served = top_ft if finding == "low_upper_floors" else ground_ft

@@ -54,7 +54,7 @@ def units_for(system: str) -> Units:
     return SI if system == "si" else US
 
 
-PRESSURE_COLUMNS = ("psi_max", "psi_min", "psi_top", "margin_psi", "sigma_psi")
+PRESSURE_COLUMNS = ("psi_max", "psi_min", "psi_top", "psi_fire", "psi_standby", "margin_psi", "sigma_psi")
 
 
 def customers_in_units(customers: pd.DataFrame, units: Units) -> pd.DataFrame:

@@ -79,8 +79,18 @@ RIDGEWAY_TOP_M = 366.0
 
 # Hydraulic grade lines, feet.  Chosen so the demo shows every status.
 TANK = {"zone": "Ridgeway", "high_water_ft": 1212.0, "low_water_ft": 1194.0}
+# What the tank (a standpipe) can hold, and its storage levels below low water (the bottom
+# of equalizing storage): the level with fire suppression storage used too,
+# and with standby storage used too.  Invented, like the rest.
+TANK_LEVELS = {"overflow_ft": 1214.0, "bottom_ft": 1135.0,
+               "fire_bottom_ft": 1150.0, "standby_bottom_ft": 1145.0}
 PRV = {"zone": "Lowfield", "valve_elevation_ft": 1010.0, "setting_psi": 51.0}
 PUMP = {"zone": "Summit", "discharge_hgl_ft": 1405.0}
+PUMP_SHUTOFF_HGL_FT = 1425.0
+# The criteria of a published rule set (20 psi with fire storage used, 30 psi
+# at peak hour) and a standby minimum, for the storage levels.
+RULE_SET = "wac-246-290-230"
+STANDBY_MIN_PSI = 20.0
 
 CRITERIA = {
     "max_static_psi": 80.0,
@@ -1041,20 +1051,28 @@ id_field = "zone"
 zone = "{TANK['zone']}"
 kind = "tank"
 high_water_ft = {TANK['high_water_ft']}
-low_water_ft = {TANK['low_water_ft']}
+low_water_ft = {TANK['low_water_ft']}          # the bottom of equalizing storage
+overflow_ft = {TANK_LEVELS['overflow_ft']}
+bottom_ft = {TANK_LEVELS['bottom_ft']}
+fire_bottom_ft = {TANK_LEVELS['fire_bottom_ft']}        # fire suppression storage used too
+standby_bottom_ft = {TANK_LEVELS['standby_bottom_ft']}     # standby storage used too
 
 [[zones.source]]
 zone = "{PRV['zone']}"
 kind = "prv"
 valve_elevation_ft = {PRV['valve_elevation_ft']}
 setting_psi = {PRV['setting_psi']}
+inlet_zone = "{TANK['zone']}"         # fed from the tank's zone
 
 [[zones.source]]
 zone = "{PUMP['zone']}"
 kind = "pump"
 discharge_hgl_ft = {PUMP['discharge_hgl_ft']}
+shutoff_hgl_ft = {PUMP_SHUTOFF_HGL_FT}
 
 [criteria]
+rule_set = "{RULE_SET}"   # 30 psi at peak hour, 20 psi with fire storage used
+standby_min_psi = {STANDBY_MIN_PSI}
 max_static_psi = {CRITERIA['max_static_psi']}
 min_static_psi = {CRITERIA['min_static_psi']}
 psi_per_ft = {CRITERIA['psi_per_ft']}
@@ -1131,7 +1149,7 @@ contours.
 | zone | kind | HGL (ft) |
 | --- | --- | --- |
 | `{PRV['zone']}` | PRV, valve at {PRV['valve_elevation_ft']:g} ft set to {PRV['setting_psi']:g} psi | {prv_hgl:.1f} |
-| `{TANK['zone']}` | tank, low / high water | {TANK['low_water_ft']:g} / {TANK['high_water_ft']:g} |
+| `{TANK['zone']}` | tank, low / high water (bottom of fire storage {TANK_LEVELS['fire_bottom_ft']:g}, of standby storage {TANK_LEVELS['standby_bottom_ft']:g}; overflow {TANK_LEVELS['overflow_ft']:g}, bottom {TANK_LEVELS['bottom_ft']:g}) | {TANK['low_water_ft']:g} / {TANK['high_water_ft']:g} |
 | `{PUMP['zone']}` | closed zone, booster discharge | {PUMP['discharge_hgl_ft']:g} |
 
 ## Customers

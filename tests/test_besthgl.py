@@ -11,11 +11,12 @@ from hypothesis import strategies as st
 from geopress import classify as cls
 from geopress.besthgl import best_range, ok_intervals
 from geopress.classify import Criteria
+from geopress.findings import FLAGGED_STATUSES
 from geopress.config import config_from_dict
 from geopress.planning import best_hgl_table
 from geopress.pressure import customer_pressures
 
-FLAGGED = [cls.CODE[s] for s in cls.FLAGGED_LAYERS]
+FLAGGED = [cls.CODE[s] for s in FLAGGED_STATUSES]
 # psi_per_ft 0.5 and quarter-foot data keep every breakpoint exact in binary floating point, so the
 # brute force can be evaluated exactly at each breakpoint without rounding deciding a tie
 EXACT = Criteria(max_static_psi=80.0, min_static_psi=30.0, psi_per_ft=0.5, floor_height_ft=10.0)

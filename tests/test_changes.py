@@ -90,6 +90,10 @@ def test_new_lists_reuse_the_full_lists_only_where_every_customer_is_new():
     assert changes.new_mailing_lists(customers, later, **fields, full=full)["new_high_pressure"]["accounts"].tolist() == ["b"]
 
 
+#: the storage-level findings (geopress.storage), empty when no level is checked
+NO_STORAGE = {"peak_hour_short": [], "fire_short": [], "standby_short": []}
+
+
 def test_new_lists_follow_findings_not_the_status():
     # a was high; now high with low upper floors too: newly on the upper-floors list only, status unchanged.
     # b had both findings already: on no new list.
@@ -109,12 +113,13 @@ def test_new_lists_follow_findings_not_the_status():
         return rows, {f: cur["acct"].to_numpy()[r].tolist() for f, r in rows.items()}
 
     rows, got = new_accounts(prev)
-    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a"]}
+    # (the storage findings' columns are absent from cur: no level was checked, so nobody is on their lists)
+    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a"], **NO_STORAGE}
     lists = changes.new_mailing_lists(cur, rows, id_field="acct", mail_fields=["owner"])
     assert lists["new_upper_floors"]["accounts"].tolist() == ["a"] and lists["new_high_pressure"].empty
     # a run written before the finding columns had only its status's finding: both are new to upper floors
     rows, got = new_accounts(prev[["acct", "status"]])
-    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a", "b"]}
+    assert got == {"above_hgl": [], "low": [], "high": [], "low_upper_floors": ["a", "b"], **NO_STORAGE}
     lists = changes.new_mailing_lists(cur, rows, id_field="acct", mail_fields=["owner"])
     assert lists["new_upper_floors"]["accounts"].tolist() == ["b", "a"]  # most severe (lowest psi_top) first
 
@@ -224,7 +229,8 @@ def test_second_run_reports_exactly_the_changes_made(world, changed):
                                          "cleared": 1, "status_changed": 1}
     assert info["changes"]["newly_in_status"] == {"high": 1, "low": 1, "above_hgl": 1, "low_upper_floors": 0}
     # each of these customers has one finding, its status's: the new lists hold the same customers
-    assert info["changes"]["newly_in_finding"] == {"above_hgl": 1, "low": 1, "high": 1, "low_upper_floors": 0}
+    assert info["changes"]["newly_in_finding"] == {"above_hgl": 1, "low": 1, "high": 1, "low_upper_floors": 0,
+                                                   **{name: 0 for name in NO_STORAGE}}
 
     new = {now: k for k, (_, now, _) in expected.items() if now in FLAGGED_LAYERS}
     assert csv_accounts(world, "new_high_pressure") == [new["high"]]

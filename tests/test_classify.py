@@ -57,9 +57,13 @@ def test_order_decides_between_conditions_that_all_hold():
     assert run_classify(ground=np.nan, zoned=False) == ["no_terrain"]
 
 
-def test_flagged_layers_name_flagged_statuses():
-    assert set(FLAGGED_LAYERS) == {"high", "low", "above_hgl", "low_upper_floors"}
-    assert set(FLAGGED_LAYERS.values()) == {"high_pressure", "low_pressure", "above_hgl", "upper_floors"}
+def test_flagged_layers_name_flagged_statuses_and_the_storage_findings():
+    assert set(FLAGGED_LAYERS) == {"high", "low", "above_hgl", "low_upper_floors",
+                                   "peak_hour_short", "fire_short", "standby_short"}
+    assert set(FLAGGED_LAYERS.values()) == {"high_pressure", "low_pressure", "above_hgl", "upper_floors",
+                                            "peak_hour_short", "fire_storage_short", "standby_storage_short"}
+    # the storage findings are findings only, never a status
+    assert set(FLAGGED_LAYERS) - set(STATUSES) == {"peak_hour_short", "fire_short", "standby_short"}
 
 
 def reference_status(geom, ground, zoned, pmin, pmax, ptop, crit) -> str:

@@ -83,14 +83,16 @@ def test_no_finding_where_it_cannot_be_evaluated():
 
 def test_the_registry_is_one_consistent_table():
     reg = findings.REGISTRY
-    assert findings.STATUSES == tuple(s.name for s in reg) and findings.STATUSES[-1] == "ok"
+    assert findings.STATUSES == tuple(s.name for s in reg if s.is_status) and findings.STATUSES[-1] == "ok"
+    # an entry that is no status (the storage levels) is there for its finding: its layer, list and column
+    assert all(s.finding is not None for s in reg if not s.is_status)
     assert reg[-1].condition is None and all(s.condition is not None for s in reg[:-1])
     layers = list(findings.FLAGGED_LAYERS.values())
     assert len(set(layers)) == len(layers)  # one layer and one list per finding
     assert set(findings.FLAGGED_LAYERS) == set(findings.FINDINGS) == set(findings.WORST)
     for name in findings.FINDINGS:
         column, worse = findings.WORST[name]
-        assert column in ("psi_min", "psi_max", "psi_top") and worse in ("min", "max")
+        assert column in ("psi_min", "psi_max", "psi_top", "psi_fire", "psi_standby") and worse in ("min", "max")
         assert findings.FINDING_COLUMNS[name] == f"finding_{name}"
         assert findings.finding_of_layer(findings.FLAGGED_LAYERS[name]) == name
     # every status drawn, in the order of its layer_order; ok lowest

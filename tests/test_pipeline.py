@@ -27,6 +27,7 @@ from geopress import pipeline
 from geopress.cli import cli
 from geopress.errors import GeometryWarning, InputError, OutputError
 from geopress.io import write as write_io
+from geopress.findings import FLAGGED_LAYERS
 from geopress.pressure import M_PER_FT, M_PER_US_FT
 
 from conftest import (
@@ -382,8 +383,7 @@ def read_csv(path: Path) -> list[dict[str, str]]:
 def test_mailing_lists_dedupe_addresses_and_neutralise_formulas(crafted):
     run_crafted(crafted)
     mailing = crafted.parent / "out" / "mailing"
-    lists = [f"{n}{suffix}" for n in ("above_hgl", "high_pressure", "low_pressure", "upper_floors")
-             for suffix in (".csv", ".xlsx")]
+    lists = [f"{n}{suffix}" for n in LISTS for suffix in (".csv", ".xlsx")]
     assert sorted(p.name for p in mailing.iterdir()) == sorted(lists + [f"new_{n}" for n in lists]
                                                                + ["field_verification.csv", "field_verification.xlsx"])
     high = read_csv(mailing / "high_pressure.csv")
@@ -407,9 +407,8 @@ def test_flagged_layers_and_zone_summary(crafted):
     run_crafted(crafted)
     out = crafted.parent / "out/pressure.gpkg"
     names = [str(n) for n in pyogrio.list_layers(out)[:, 0]]
-    assert sorted(names) == sorted(["customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors",
-                                    "zone_summary", "service_band", "band_limits", "changes", "layer_styles",
-                                    "target_areas"])
+    assert sorted(names) == sorted(["customers", *LISTS, "zone_summary", "service_band", "band_limits", "changes",
+                                    "layer_styles", "target_areas"])
     for name in ("customers", "high_pressure", "low_pressure", "above_hgl", "upper_floors"):
         assert pyogrio.read_info(out, layer=name)["geometry_type"] == "Point", name
     flagged = {name: sorted(pyogrio.read_dataframe(out, layer=name)["account"])
@@ -476,7 +475,9 @@ def test_a_customer_with_two_findings_is_on_both_lists(crafted):
     assert res.counts["high"] == 3 and res.counts["low_upper_floors"] == 1
     info = json.loads((root / "out/run.json").read_text())
     assert info["counts"] == res.counts
-    assert info["counts_by_finding"] == {"above_hgl": 3, "low": 1, "high": 3, "low_upper_floors": 2}
+    # no storage level is checked here: nobody is short at one
+    assert info["counts_by_finding"] == {"above_hgl": 3, "low": 1, "high": 3, "low_upper_floors": 2,
+                                         "peak_hour_short": 0, "fire_short": 0, "standby_short": 0}
     out = root / "out/pressure.gpkg"
     for layer, accounts in {"high_pressure": ["A-high", "A-high-2", "A-tower"],
                             "upper_floors": ["A-tower", "A-upper"]}.items():
@@ -546,8 +547,9 @@ def test_target_areas_of_customers_in_a_geographic_crs_are_clustered_in_utm():
 
 #: the layers that get a style, in the order the GeoPackage gets them
 #: the styled layers in the order the GeoPackage gets them: customers and its views, then the others
-STYLED = ["customers", "above_hgl", "low_pressure", "high_pressure", "upper_floors", "changes", "target_areas",
-          "service_band", "band_limits"]
+STYLED = ["customers", *FLAGGED_LAYERS.values(), "changes", "target_areas", "service_band", "band_limits"]
+#: every finding's layer and mailing list, in the registry's order (the storage levels' too, empty when not checked)
+LISTS = tuple(FLAGGED_LAYERS.values())
 
 
 def test_run_json_records_the_run(crafted):
@@ -561,11 +563,10 @@ def test_run_json_records_the_run(crafted):
     assert [i["path"] for i in info["inputs"]] == [str(root / "customers.gpkg"), str(root / "dem.tif"),
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
-    lists = [f"{n}{suffix}" for n in ("above_hgl", "low_pressure", "high_pressure", "upper_floors")
-             for suffix in (".csv", ".xlsx")]
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / name)
-        for name in [*lists, "field_verification.csv", "field_verification.xlsx", *[f"new_{n}" for n in lists]]
+        str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
+        for n in LISTS for suffix in (".csv", ".xlsx")
+    ] + [str(root / "out/mailing" / name) for name in ("field_verification.csv", "field_verification.xlsx")
     ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
     assert info["xlsx"] == {"written": True, "reason": None}
     assert info["styles"] == {"written": True, "layers": STYLED}
@@ -589,8 +590,7 @@ def test_a_failed_write_leaves_previous_outputs_byte_identical(crafted, monkeypa
     run_crafted(crafted)
     before = output_files(root)
     assert set(before) == {"out/pressure.gpkg", "out/.pressure.gpkg.baseline.gpkg", "out/run.json", "out/report.html"} | {
-        f"out/mailing/{p}{n}{suffix}" for p in ("", "new_") for n in ("high_pressure", "low_pressure", "above_hgl",
-                                                                       "upper_floors") for suffix in (".csv", ".xlsx")
+        f"out/mailing/{p}{n}{suffix}" for p in ("", "new_") for n in LISTS for suffix in (".csv", ".xlsx")
     } | {f"out/pressure.{layer}.sld" for layer in STYLED} | {"out/mailing/field_verification.csv",
                                                              "out/mailing/field_verification.xlsx"}
     # a second run that would change every output, and runs out of space part way

@@ -11,7 +11,8 @@ import pytest
 
 import geopress
 from geopress import pipeline
-from geopress.classify import FLAGGED_LAYERS, STATUSES, Criteria
+from geopress.classify import STATUSES, Criteria
+from geopress.findings import FLAGGED_STATUSES
 from geopress.report import OKABE_ITO, STATUS_STYLE, render
 from geopress.scenario import load_scenario
 from geopress.units import SI, US
@@ -134,14 +135,18 @@ def test_status_colours_are_okabe_ito_and_every_status_has_its_own_colour_and_ma
         assert len({getattr(st, field) for st in STATUS_STYLE.values()}) == len(STATUSES), field
     # drawn in the dict's order: every flagged status above ok, and larger
     order = list(STATUS_STYLE)
-    assert all(order.index(s) > order.index("ok") for s in FLAGGED_LAYERS)
-    assert all(STATUS_STYLE[s].size > STATUS_STYLE["ok"].size for s in FLAGGED_LAYERS)
+    assert all(order.index(s) > order.index("ok") for s in FLAGGED_STATUSES)
+    assert all(STATUS_STYLE[s].size > STATUS_STYLE["ok"].size for s in FLAGGED_STATUSES)
 
 
 def _summary():
     return pd.DataFrame({"zone": ["Z"], "source_kind": ["tank"], "hgl_high_ft": [1200.0], "hgl_low_ft": [1180.0],
                          "customers": [2], "n_ok": [2], "best_high_water_ft_from": [1150.0],
-                         "best_high_water_ft_to": [1160.0], "flagged_at_best": [0]})
+                         "best_high_water_ft_to": [1160.0], "flagged_at_best": [0], "control": ["high_water_ft"],
+                         "control_step": [1.0], "control_min": [np.nan], "control_max": [np.nan],
+                         "optimum_vs_bounds": ["inside"], "step_from": [1150.0], "step_to": [1160.0],
+                         "flagged_at_step": [0], "steps_inside_optimum": [True], "robust_from": [1148.0],
+                         "robust_to": [1162.0], "flagged_robust": [1], "robust_tolerance": [5]})
 
 
 def test_changes_section_and_si_units():

@@ -13,6 +13,7 @@ import geopress
 from geopress import styles
 from geopress.classify import FLAGGED_LAYERS, STATUSES
 from geopress.report import BAND_COLOUR, LIMIT_STYLE, STATUS_STYLE
+from geopress.findings import FLAGGED_STATUSES, STYLES
 
 NS = {"sld": styles.SLD_NS, "ogc": styles.OGC_NS}
 # The order of children in SLD 1.0.0's content models (OGC 02-070, the schema's xsd:sequence of each element;
@@ -101,7 +102,7 @@ def test_a_findings_layer_draws_every_customer_in_its_findings_style():
         rules = doc.findall(".//sld:Rule", NS)
         assert len(rules) == 1 and rules[0].find("ogc:Filter", NS) is None
         assert rules[0].findtext("sld:Name", namespaces=NS) == finding
-        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STATUS_STYLE[finding].colour
+        assert css(rules[0].find(".//sld:Mark/sld:Fill", NS))["fill"] == STYLES[finding].colour  # a finding that is no status has a style too
 
 
 def css_by_value(doc, field: str, symbol: str) -> dict[str, dict[str, str]]:
@@ -116,7 +117,7 @@ def css_by_value(doc, field: str, symbol: str) -> dict[str, dict[str, str]]:
 
 def test_target_areas_are_filled_in_their_findings_colour():
     got = css_by_value(parse(styles.area_style().sld), "finding", "sld:PolygonSymbolizer/sld:Fill")
-    assert list(got) == list(FLAGGED_LAYERS)
+    assert list(got) == list(FLAGGED_STATUSES)  # the storage findings get no target areas
     for finding, fill in got.items():
         assert fill["fill"] == STATUS_STYLE[finding].colour and 0 < float(fill["fill-opacity"]) < 1
 
