@@ -90,7 +90,7 @@ def rate(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.Exten
     """A finding's confidence for each customer as if flagged by it: firm, borderline or unrated (see
     :func:`classes`), for the mailing list of that finding."""
     m = np.asarray(margin_psi, dtype=np.float64)
-    return classes(np.full(m.shape, CODE[FINDINGS[0]]), m, sigma_psi)
+    return classes(np.full(m.shape, CODE[FLAGGED_STATUSES[0]]), m, sigma_psi)
 
 
 def sigmas(dem_rmse_ft: ArrayLike, hgl_uncertainty_ft: ArrayLike, psi_per_ft: float) -> NDArray[np.float64]:
@@ -105,7 +105,7 @@ def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd
     codes = np.asarray(codes)
     m = np.asarray(margin_psi, dtype=np.float64)
     s = np.asarray(sigma_psi, dtype=np.float64)
-    flagged = np.isin(codes, [CODE[st] for st in FINDINGS])
+    flagged = np.isin(codes, [CODE[st] for st in FLAGGED_STATUSES])
     ok = codes == CODE["ok"]
     sure = np.where(flagged, m, -m) > Z95 * s  # beyond 1.96 sigma on the side the status is on
     rated = ~np.isnan(m)

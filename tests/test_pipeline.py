@@ -563,10 +563,10 @@ def test_run_json_records_the_run(crafted):
     assert [i["path"] for i in info["inputs"]] == [str(root / "customers.gpkg"), str(root / "dem.tif"),
                                                    str(root / "zones.gpkg")]
     assert info["inputs"][1]["bytes"] == (root / "dem.tif").stat().st_size
+    lists = [f"{n}{suffix}" for n in LISTS for suffix in (".csv", ".xlsx")]
     assert info["outputs"] == [str(root / "out/pressure.gpkg")] + [
-        str(root / "out/mailing" / f"{p}{n}{suffix}") for p in ("", "new_")
-        for n in LISTS for suffix in (".csv", ".xlsx")
-    ] + [str(root / "out/mailing" / name) for name in ("field_verification.csv", "field_verification.xlsx")
+        str(root / "out/mailing" / name)
+        for name in [*lists, "field_verification.csv", "field_verification.xlsx", *[f"new_{n}" for n in lists]]
     ] + [str(root / f"out/pressure.{layer}.sld") for layer in STYLED] + [str(root / "out/report.html")]
     assert info["xlsx"] == {"written": True, "reason": None}
     assert info["styles"] == {"written": True, "layers": STYLED}
