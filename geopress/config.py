@@ -118,10 +118,11 @@ class ReadingsConfig:
     has no height or accuracy of its own, ``gauge_height_ft`` and the layer's
     gauge accuracy apply (``gauge_accuracy_psi``, or ``gauge_grade`` of a
     gauge with the span ``gauge_span_psi``). Outlier and bias rules are in
-    :class:`geopress.fieldcheck.Rules`.
+    :class:`geopress.fieldcheck.Rules`. ``database`` reads the readings from a
+    PostGIS table or query instead of the file at ``path`` (None then).
     """
 
-    path: Path
+    path: Path | None
     pressure_field: str
     layer: str | None = None
     id_field: str | None = None
@@ -137,6 +138,7 @@ class ReadingsConfig:
     outlier_sigmas: float = 2.0
     bias_psi: float = 1.0
     min_readings: int = 3
+    database: DatabaseSource | None = None
 
     def fields(self) -> dict[str, str]:
         """The layer's fields the config names, by key (``readings.pressure_field`` ...)."""
@@ -277,7 +279,7 @@ class Config:
             "output": _plain(self.output),
             "operator": _plain(self.operator),
             "targets": _plain(self.targets),
-            **({"readings": _plain(self.readings)} if self.readings else {}),
+            **({"readings": _layer_dict(self.readings)} if self.readings else {}),
         }
 
 
@@ -327,7 +329,8 @@ def with_sidecars(path: Path) -> list[Path]:
 DATUM_NAMES: dict[str, str] = {"NAVD88": "EPSG:5703", "NGVD29": "EPSG:7968"}
 
 
-def _layer_dict(cfg: CustomersConfig | ZonesConfig, names: tuple[str, ...] | None = None) -> dict[str, Any]:
+def _layer_dict(cfg: CustomersConfig | ZonesConfig | ReadingsConfig, names: tuple[str, ...] | None = None
+                ) -> dict[str, Any]:
     """A layer's section as the TOML has it: ``names`` (default every field), the database's keys flat in it."""
     out = {f.name: _plain(getattr(cfg, f.name)) for f in fields(cfg)
            if f.name != "database" and (names is None or f.name in names)}
@@ -608,7 +611,7 @@ class _Reader:
         )
         inputs = {p: name for name, p in [("customers.path", cfg.customers.path), ("zones.path", cfg.zones.path)]}
         inputs.update({p: "terrain.paths" for p in cfg.terrain.paths})
-        if cfg.readings is not None:
+        if cfg.readings is not None and cfg.readings.path is not None:
             inputs[cfg.readings.path] = "readings.path"
         if cfg.source_path is not None:
             inputs[Path(cfg.source_path).resolve()] = "the config file"
@@ -967,7 +970,8 @@ class _Reader:
                      "gauge_grade")
         number_keys = {"gauge_height_ft": 0.0, "gauge_accuracy_psi": None, "gauge_span_psi": None, "outlier_psi": 5.0,
                        "outlier_sigmas": 2.0, "bias_psi": 1.0, "min_readings": 3.0}
-        self.no_unknown(t, s, {"path", "pressure_field", *text_keys, *number_keys})
+        self.no_unknown(t, s, {"path", "pressure_field", *text_keys, *number_keys, *DATABASE_KEYS})
+        database = self.database_source(t, s)
         v: dict[str, Any] = {k: self.get(t, s, k, "str", None) for k in text_keys}
         v.update({k: self.get(t, s, k, "number", d) for k, d in number_keys.items()})
         for k in ("gauge_accuracy_psi", "gauge_span_psi", "outlier_psi", "outlier_sigmas", "bias_psi"):
@@ -996,8 +1000,8 @@ class _Reader:
             raise self.error("readings", "says nothing of the gauges' accuracy; add readings.gauge_accuracy_psi "
                                          "(psi) or readings.gauge_grade with readings.gauge_span_psi (used where "
                                          "a reading has no accuracy_field value of its own)")
-        return ReadingsConfig(path=self.path(self.get(t, s, "path", "str"), "readings.path"),
-                              pressure_field=self.get(t, s, "pressure_field", "str"), **v)
+        return ReadingsConfig(path=None if database else self.path(self.get(t, s, "path", "str"), "readings.path"),
+                              pressure_field=self.get(t, s, "pressure_field", "str"), database=database, **v)
 
     def output(self, t: dict[str, Any]) -> OutputConfig:
         s = "output"

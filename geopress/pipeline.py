@@ -430,8 +430,9 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         "config_file": str(cfg.source_path) if cfg.source_path else None,
         "config": cfg.to_dict(),
         "inputs": [*(_input_record(p) for p in cfg.input_paths()),
-                   *(_database_record(c.database, key) for key, c in (("customers", cfg.customers), ("zones", cfg.zones))
-                     if c.database is not None)],
+                   *(_database_record(c.database, key) for key, c in (("customers", cfg.customers), ("zones", cfg.zones),
+                                                                      ("readings", cfg.readings))
+                     if c is not None and c.database is not None)],
         "customers": {
             "total": int(len(customers)),
             "layer": cust.layer,
@@ -570,7 +571,7 @@ def field_check_info(cfg: Config, readings: pd.DataFrame, by_zone: pd.DataFrame)
     """What run.json records of the field check: counts per check, and per zone the bias and the outliers."""
     counts = readings["check"].value_counts()
     return {
-        "path": str(cfg.readings.path),
+        "path": _where(cfg.readings),
         "readings": int(len(readings)),
         "checks": {c: int(counts.get(c, 0)) for c in fieldcheck.CHECKS},
         "zones_with_bias": by_zone.loc[by_zone["significant_bias"], "zone"].tolist(),
@@ -898,7 +899,7 @@ class CheckReport:
 
 
 def _where(layer_cfg: Any) -> str:
-    """Where a customers or zones layer is read from: its file, or its table or query in a database."""
+    """Where a customers, zones or readings layer is read from: its file, or its table or query in a database."""
     return str(layer_cfg.path) if layer_cfg.database is None else layer_cfg.database.describe()
 
 
@@ -978,7 +979,7 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
         with _recorded_warnings(shown):
             readings, _ = field_check(cfg, zones, shift)
         checks = readings["check"].value_counts()
-        lines.append(f"readings: {len(readings)} from {cfg.readings.path} ("
+        lines.append(f"readings: {len(readings)} from {_where(cfg.readings)} ("
                      + ", ".join(f"{checks[c]} {c}" for c in fieldcheck.CHECKS if checks.get(c, 0)) + ")")
     lines.append(f"output: {cfg.output.path}, mailing lists in {cfg.output.mailing_dir}")
     if cfg.output.database is not None:

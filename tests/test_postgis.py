@@ -464,3 +464,22 @@ def test_a_session_shows_as_geopress(postgis_server):
     with postgis_io.connect(postgis_server.dsn(), "output.database") as con, con.cursor() as cur:
         cur.execute("SELECT application_name FROM pg_stat_activity WHERE pid = pg_backend_pid()")
         assert cur.fetchone() == ("geopress",)
+
+
+def test_readings_from_the_database_give_the_same_field_check(world, db):
+    from conftest import ORIGIN, write_layer
+
+    x0, y1 = ORIGIN
+    records = {"tag": ["W1", "W2", "E1"], "static_psi": [50.0, 40.0, 60.0], "height_ft": [2.0, None, 1.5]}
+    geoms = [shapely.Point(x0 + dx, y1 - 500.0) for dx in (123.4, 377.7, 640.2)]
+    write_layer(world.root / "readings.gpkg", "gauges", records, geoms, crs="EPSG:32631")
+    keys = 'pressure_field = "static_psi"\nid_field = "tag"\ngauge_height_field = "height_ft"\ngauge_accuracy_psi = 1.0\n'
+    world.write_config(BASE_CONFIG + '\n[readings]\npath = "readings.gpkg"\n' + keys)
+    from_file = pipeline.run(world.config_path, write=False).field_check
+    postgis_support.load(db.server, f"{db.inputs}.gauges", gpd.read_file(world.root / "readings.gpkg"))
+    world.write_config(BASE_CONFIG + "\n[readings]\n" + db.source("gauges") + keys)
+    res = pipeline.run(world.config_path, write=False)
+    # the same values through the same computation: exactly equal
+    pd.testing.assert_frame_equal(pd.DataFrame(res.field_check), pd.DataFrame(from_file), check_exact=True)
+    assert res.info["field_check"]["path"] == f"table {db.inputs}.gauges of database '{db.dsn}'"
+    assert any(i.get("layer") == "readings" and i.get("table") == f"{db.inputs}.gauges" for i in res.info["inputs"])

@@ -421,16 +421,21 @@ def read_readings(cfg: ReadingsConfig) -> Readings:
     or a gauge accuracy that is not positive. A reading without a pressure or a
     location is kept: the check gives it a status of its own.
     """
-    path = cfg.path
-    layer = resolve_layer(path, cfg.layer, "readings")
-    info = layer_info(path, layer)
-    check_fields(path, layer, info, cfg.fields())
-    _located(path, layer, info, "readings")
-    crs = _crs(path, layer, info["crs"])
-    df, _ = read_layer(path, layer, list(dict.fromkeys(cfg.fields().values())))
+    columns = list(dict.fromkeys(cfg.fields().values()))
+    if cfg.database is not None:
+        df, _, crs, layer, path = _read_database(cfg.database, "readings", cfg.fields(), columns=columns)
+    else:
+        path = cfg.path
+        layer = resolve_layer(path, cfg.layer, "readings")
+        info = layer_info(path, layer)
+        check_fields(path, layer, info, cfg.fields())
+        _located(path, layer, info, "readings")
+        crs = _crs(path, layer, info["crs"])
+        df, _ = read_layer(path, layer, columns)
     if len(df) == 0:
-        raise InputError(f"layer '{layer}' (from readings.path) has no readings; check the export that wrote it",
-                         path=path, key="readings.path")
+        source = "readings.path" if cfg.database is None else "readings.database"
+        raise InputError(f"layer '{layer}' (from {source}) has no readings; check the export that wrote it",
+                         path=path, key=source)
     ids = (df[cfg.id_field].astype("string").fillna("").to_numpy(dtype=object) if cfg.id_field
            else np.array([str(i + 1) for i in range(len(df))], dtype=object))
     geom = df.geometry.to_numpy()
