@@ -257,6 +257,14 @@ def _zone_codes(zi: np.ndarray, zones: vector_io.Zones, names: list[str]) -> np.
     return np.where(zi >= 0, code_of_polygon[np.maximum(zi, 0)], -1)
 
 
+def _zone_values(zi: np.ndarray, zones: vector_io.Zones, cfg: Config,
+                 value: Callable[[Any], float]) -> np.ndarray:
+    """Each point's ``value`` of its zone's source, from its polygon index ``zi`` (-1: none, then NaN)."""
+    source = {s.zone: s for s in cfg.zones.sources}
+    table = np.array([value(source[z]) for z in zones.zone_ids] or [np.nan])
+    return np.where(zi >= 0, table[np.maximum(zi, 0)], np.nan)
+
+
 def apply_guards(cfg: Config, terrain: raster_io.TerrainResult, zone_code: np.ndarray, located: int,
                  crs: pyproj.CRS, zones: vector_io.Zones) -> list[guards.ZoneGround]:
     """The guards of :mod:`geopress.guards` on a run's (or a check's) sampled ground and zone join.
@@ -337,21 +345,17 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
                                                         zones.priority, points=pts)
         zoned = zi >= 0
         zone = cls.names_at(zones.zone_ids, zi, zoned)
-        hgl = {s.zone: s.hgl_range(crit.psi_per_ft) for s in cfg.zones.sources}
-        zone_high = np.array([hgl[z][0] for z in zones.zone_ids] or [0.0])
-        zone_low = np.array([hgl[z][1] for z in zones.zone_ids] or [0.0])
-        safe = np.where(zoned, zi, 0)
-        hgl_high = np.where(zoned, zone_high[safe], np.nan)
-        hgl_low = np.where(zoned, zone_low[safe], np.nan)
-        unc = {s.zone: s.hgl_uncertainty_ft for s in cfg.zones.sources}
-        hgl_unc = np.where(zoned, np.array([unc[z] for z in zones.zone_ids] or [0.0])[safe], np.nan)
+        zone_code = _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources])
+        hgl_high = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(crit.psi_per_ft)[0])
+        hgl_low = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(crit.psi_per_ft)[1])
+        hgl_unc = _zone_values(zi, zones, cfg, lambda s: s.hgl_uncertainty_ft)
     with clock.step("sample terrain"):
         terrain = joined.terrain if joined else raster_io.sample_terrain(
             cfg.terrain, cust.x, cust.y, cust.crs, shift, count=clock.counter("sample terrain", "customers"))
         ground = terrain.ground_ft
         # the guards first: too few customers on the terrain is a CRS or extent problem, said as such
-        ground_table = apply_guards(cfg, terrain, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]),
-                                    int(np.count_nonzero(cust.has_geometry)), cust.crs, zones)
+        ground_table = apply_guards(cfg, terrain, zone_code, int(np.count_nonzero(cust.has_geometry)), cust.crs,
+                                    zones)
         if np.isnan(ground).all():
             paths = ", ".join(str(p) for p in cfg.terrain.paths)
             if terrain.inside_any:
@@ -372,8 +376,7 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
     with clock.step("target areas"):
-        areas, area_layer, area_info = _target_areas(
-            cfg, cust, _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources]), ground, floors, p, codes, found)
+        areas, area_layer, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
     with clock.step("customer table"):
         frame = cust.frame
         id_field = cfg.customers.id_field
@@ -526,15 +529,8 @@ def field_check(cfg: Config, zones: vector_io.Zones,
     r = vector_io.read_readings(rc)
     zi = assign_xy(r.x, r.y, r.crs, zones.polygons, zones.crs, zones.priority)
     zoned = zi >= 0
-    safe = np.where(zoned, zi, 0)
-    source = {s.zone: s for s in cfg.zones.sources}
-
-    def per_zone(value: Callable[[Any], float]) -> np.ndarray:
-        table = np.array([value(source[z]) for z in zones.zone_ids] or [np.nan])
-        return np.where(zoned, table[safe], np.nan)
-
-    high = per_zone(lambda s: s.hgl_range(k)[0])
-    low = per_zone(lambda s: s.hgl_range(k)[1])
+    high = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(k)[0])
+    low = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(k)[1])
     recorded = ~np.isnan(r.hgl_ft)
     hgl_high, hgl_low = np.where(recorded, r.hgl_ft, high), np.where(recorded, r.hgl_ft, low)
     terrain = raster_io.sample_terrain(cfg.terrain, r.x, r.y, r.crs, shift)
@@ -543,7 +539,7 @@ def field_check(cfg: Config, zones: vector_io.Zones,
                else fieldcheck.grade_accuracy_psi(rc.gauge_grade, rc.gauge_span_psi, r.measured_psi))
     gauge = np.where(np.isnan(r.accuracy_psi), default, r.accuracy_psi)
     rmse = np.nan_to_num(terrain.rmse_ft, nan=0.0)  # a DEM of unstated accuracy adds nothing (run.json says so)
-    hgl_unc = np.nan_to_num(per_zone(lambda s: s.hgl_uncertainty_ft), nan=0.0)
+    hgl_unc = np.nan_to_num(_zone_values(zi, zones, cfg, lambda s: s.hgl_uncertainty_ft), nan=0.0)
     rules = fieldcheck.Rules(outlier_psi=rc.outlier_psi, outlier_sigmas=rc.outlier_sigmas, bias_psi=rc.bias_psi,
                              min_readings=rc.min_readings)
     checked = fieldcheck.check_readings(
