@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from geopress.classify import Criteria
 from geopress.findings import FINDINGS
 from geopress.pressure import static_psi
-from geopress.targets import TargetCriteria, feasible_hgl, target_areas
+from geopress.targets import TargetCriteria, cluster_labels, feasible_hgl, target_areas
 
 # the worked example of shared REFERENCES.md (university water-distribution course notes, confirmed):
 # HGL_min = highest elevation + 2.31 * P_min = 95 + 2.31 * 30 = 164.3 ft; HGL_max = lowest + 2.31 * P_max =
@@ -152,3 +152,46 @@ def test_every_customer_is_within_the_window_across_the_range(ground, lo, span):
     if exact.hgl_ft_to - exact.hgl_ft_from >= 0.2:
         assert row["hgl_ft_from"] - exact.hgl_ft_from < 0.1 and exact.hgl_ft_to - row["hgl_ft_to"] < 0.1
 
+
+
+def dbscan_labels(x, y, distance_ft):
+    """The reference: scikit-learn's DBSCAN with ``min_samples = 1`` (single linkage at ``eps``), a
+    general-purpose library from the package registry, brute force so it shares no code path with the triangulation."""
+    from sklearn.cluster import DBSCAN
+
+    return DBSCAN(eps=distance_ft, min_samples=1, algorithm="brute").fit_predict(np.column_stack([x, y]))
+
+
+def assert_same_partition(a, b):
+    """Two labelings group the points alike (the label numbers may differ)."""
+    pairs = set(zip(a.tolist(), b.tolist()))
+    assert len(pairs) == len(set(a.tolist())) == len(set(b.tolist()))
+
+
+# coordinates on a 5 ft grid (ties at exactly the distance, places shared by several customers, rows on one line)
+# or anywhere in a block; state-plane-like offsets, so qhull sees large coordinates with a small spread
+grid = st.integers(0, 40).map(lambda i: i * 5.0)
+anywhere = st.floats(0.0, 200.0, allow_nan=False)
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.tuples(grid | anywhere, grid | anywhere), min_size=1, max_size=60),
+       st.sampled_from([5.0, 12.5, 25.0, 60.0]), st.sampled_from([0.0, 2_000_000.0]))
+def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offset):
+    xy = np.array(points) + offset
+    got = cluster_labels(xy[:, 0], xy[:, 1], distance_ft)
+    assert_same_partition(got, dbscan_labels(xy[:, 0], xy[:, 1], distance_ft))
+    # numbered from 0 in order of each cluster's first point
+    _, first = np.unique(got, return_index=True)
+    assert (got[np.sort(first)] == np.arange(first.size)).all()
+
+
+@pytest.mark.parametrize("x, y", [
+    ([0.0, 0.0, 0.0], [0.0, 0.0, 0.0]),                       # one place
+    ([0.0, 9.0, 0.0, 9.0], [0.0, 0.0, 0.0, 0.0]),             # two places
+    ([0.0, 10.0, 20.0, 45.0, 55.0], [0.0, 10.0, 20.0, 45.0, 55.0]),  # all on one line: qhull cannot triangulate
+])
+def test_degenerate_points_cluster_as_dbscan_does(x, y):
+    x, y = np.array(x), np.array(y)
+    got = cluster_labels(x, y, 15.0)
+    assert_same_partition(got, dbscan_labels(x, y, 15.0))
