@@ -13,6 +13,7 @@ from contextlib import ExitStack, contextmanager
 from pathlib import Path
 from typing import Iterator
 
+import numpy as np
 import pandas as pd
 
 from . import changes
@@ -104,12 +105,12 @@ def _baseline_path(cfg: Config, explicit: str | os.PathLike | None) -> tuple[Pat
 
 
 def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = False,
-          published: postgis.Publication | None = None) -> None:
+          published: postgis.Publication | None = None) -> dict[str, np.ndarray]:
     """Compare ``result`` (a pipeline Result) with the baseline: ``baseline`` when given, else the customers
     last ``published`` into the database when the run publishes and one has, else as :func:`_baseline_path`
     says (so a run that starts publishing keeps the history of its GeoPackage); adds the
-    ``previous_status`` and ``change`` columns to its customers and sets its removed customers and its
-    new mailing lists.
+    ``previous_status`` and ``change`` columns to its customers, sets its removed customers and returns the
+    rows newly in each finding, for :func:`new_lists`.
 
     Raises InputError when more customers are missing than ``output.max_drop_percent`` of the
     baseline's (an export cut short), unless ``accept_drop``.
@@ -158,11 +159,19 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
         previous = prev.rows(table["previous_row"].to_numpy()[gone])
         result.removed = changes.removed_layer(table, previous, id_field=cust_cfg.id_field,
                                                columns=[*cust_cfg.mail_fields, "zone", current.geometry.name])
+    result.info["changes"] = summary.to_dict()
+    log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())
+    return newly
+
+
+def new_lists(result, newly: dict[str, np.ndarray]) -> None:
+    """Set ``result.new_mailing``, the ``new_*`` mailing lists of the customers :func:`track` found ``newly`` in
+    each finding, once ``result`` has its own lists."""
+    cfg = result.config
+    cust_cfg = cfg.customers
     # in the display units, as the run's own lists (which a first run copies)
     units = units_for(cfg.output.units)
     result.new_mailing = {name: mailing_columns_in_units(df, units) for name, df in changes.new_mailing_lists(
-        customers_in_units(current, units), newly, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields,
-        letter_fields=cust_cfg.letter_fields, full=result.mailing, rated=result.rated,
-        firm_only=cfg.output.mail_firm_only).items()}
-    result.info["changes"] = summary.to_dict()
-    log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())
+        customers_in_units(result.customers, units), newly, id_field=cust_cfg.id_field,
+        mail_fields=cust_cfg.mail_fields, letter_fields=cust_cfg.letter_fields, full=result.mailing,
+        rated=result.rated, firm_only=cfg.output.mail_firm_only).items()}

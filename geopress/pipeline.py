@@ -227,11 +227,29 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
     return value, round(time.perf_counter() - t0, 4)
 
 
-def compute(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str = "local", scheduler: Any = None,
-            partitions: int | None = None) -> Result:
-    """Read the inputs and compute every result a run writes (writing nothing): the customers with
-    their pressures and statuses, the zone summary with the best control ranges, the mailing lists
-    and the service band, which ``worker``'s process computes meanwhile. ``engine`` as in :func:`run`.
+@dataclass
+class Screening:
+    """What :func:`summarise` takes from :func:`screen` beside the :class:`Result`."""
+
+    customers: vector_io.Customers
+    zones: vector_io.Zones
+    overlap_info: list[dict[str, Any]]
+    shift: datum_io.DatumShift
+    terrain: raster_io.TerrainResult
+    ground_table: list[guards.ZoneGround]
+    pressures: Any
+    levels: dict[str, np.ndarray]
+    sigma: np.ndarray
+    finding_counts: dict[str, int]
+    area_info: dict[str, Any]
+
+
+def screen(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str = "local", scheduler: Any = None,
+           partitions: int | None = None) -> tuple[Result, Screening]:
+    """Read the inputs and screen every customer (writing nothing): the result's customers with their
+    pressures, statuses, findings and target areas, its counts, and the service band, which ``worker``'s
+    process computes meanwhile. Its summaries and lists come from :func:`summarise`. ``engine`` as in
+    :func:`run`.
     """
     cfg = config
     with clock.step("read zones"):
@@ -241,8 +259,8 @@ def compute(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str
         shift = datum_shift(cfg, crs)
     # the service band needs only the zones and the DEM: the child process computes it meanwhile
     band = worker.submit(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
-    return _compute(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
-                    partitions=partitions)
+    return _screen(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
+                   partitions=partitions)
 
 
 def datum_shift(cfg: Config, crs: pyproj.CRS) -> datum_io.DatumShift:
@@ -325,9 +343,9 @@ def _suspicion_text(cfg: Config, zg: guards.ZoneGround, why: str, unit: str) -> 
             f"and terrain.datum_offset_ft: read {alt}")
 
 
-def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
-             shift: datum_io.DatumShift, band: runner.Job, *, engine: str, scheduler: Any,
-             partitions: int | None) -> Result:
+def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: list[dict[str, Any]],
+            shift: datum_io.DatumShift, band: runner.Job, *, engine: str, scheduler: Any,
+            partitions: int | None) -> tuple[Result, Screening]:
     crit = cfg.criteria
     with clock.step("read customers"):
         cust = vector_io.read_customers(cfg.customers, count=clock.counter("read customers", "customers"))
@@ -407,6 +425,19 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
         finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
+    result = Result(config=cfg, customers=customers, zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={},
+                    plan=plan, wkb=cust.wkb, areas=area_layer)
+    return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
+                             ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
+                             finding_counts=finding_counts, area_info=area_info)
+
+
+def summarise(result: Result, s: Screening, clock: _Clock) -> None:
+    """Add to ``result`` (from :func:`screen`) what is made from its customers: the zone summary with the best
+    control ranges, the mailing lists, the field check and what run.json records. Reads only the field
+    readings; leaves the customers as they are."""
+    cfg, customers, cust, p, levels, sigma = result.config, result.customers, s.customers, s.pressures, s.levels, s.sigma
+    crit, id_field, zones, shift, terrain, plan = cfg.criteria, cfg.customers.id_field, s.zones, s.shift, s.terrain, result.plan
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -443,26 +474,26 @@ def _compute(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: l
             "from_polygons": cust.from_polygons,
             "no_geometry": cust.no_geometry,
         },
-        "counts": counts,
-        "counts_by_finding": finding_counts,
+        "counts": result.counts,
+        "counts_by_finding": s.finding_counts,
         "terrain": [vars(r) for r in terrain.rasters],
         "datum": {**shift.info(), "direction": shift.direction()},
-        "ground_vs_hgl": [_ground_row(zg, crit.psi_per_ft) for zg in ground_table],
+        "ground_vs_hgl": [_ground_row(zg, crit.psi_per_ft) for zg in s.ground_table],
         "zones": {"layer": zones.layer, "crs": zones.crs.to_string(), "repaired": zones.repaired,
-                  "overlaps": overlap_info},
+                  "overlaps": s.overlap_info},
         "overrides": dict(cfg.overrides),
         "service_band": plan.info,
         "storage_levels": storage.record(crit, cfg.zones.sources),
-        "target_areas": area_info,
+        "target_areas": s.area_info,
         "terrain_accuracy": terrain_accuracy(cfg),
         "confidence": {"counts": {c: int((customers["confidence"] == c).sum()) for c in confidence.CLASSES},
                        "mail_firm_only": cfg.output.mail_firm_only},
     }
     if readings is not None:
         info["field_check"] = field_check_info(cfg, readings, by_zone)
-    return Result(config=cfg, customers=customers, zone_summary=summary, counts=counts, mailing=mailing, info=info,
-                  plan=plan, wkb=cust.wkb, areas=area_layer, field_check=readings,
-                  field_check_by_zone=by_zone, rated=rated)
+    result.zone_summary, result.mailing, result.rated = summary, mailing, rated
+    result.field_check, result.field_check_by_zone = readings, by_zone
+    result.info = {**info, **result.info}  # what the baseline comparison recorded comes after
 
 
 def _projected(x: np.ndarray, y: np.ndarray, crs: pyproj.CRS) -> tuple[np.ndarray, np.ndarray, float, pyproj.CRS]:
@@ -655,24 +686,43 @@ def run_json_path(config: Config) -> Path:
     return config.output.path.parent / "run.json"
 
 
-def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker,
+@dataclass
+class Writing:
+    """The GeoPackage's customer layers as :func:`start_writing` handed them to the writer process: its job
+    (None when the run writes no GeoPackage), the GeoPackage's temporary file and the layers."""
+
+    job: runner.Job | None
+    gpkg: Path | None
+    first_layers: dict[str, write_io.Layer]
+
+
+def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker) -> Writing:
+    """Start writing the GeoPackage's customer layers in ``worker``'s process, from ``result``'s customers as
+    they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile."""
+    out = result.config.output
+    with clock.step("hand the customers to the writer"):
+        write_io.ensure_dir(out.path.parent, "output.path")
+        if not out.geopackage:
+            return Writing(job=None, gpkg=None, first_layers=customer_layers(result))
+        gpkg = stage.temp_for(out.path)
+        # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
+        table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
+                                                                 _layer_frame(result)))
+        first_layers = customer_layers(result, table)
+        job = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+        return Writing(job=job, gpkg=gpkg, first_layers=first_layers)
+
+
+def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writing: Writing,
                   publication: postgis_io.Publication | None = None) -> list[Path]:
-    """Write every output: the GeoPackage's customer layers in ``worker``'s process while the mailing
-    lists, the layer styles, the report and (with a ``publication``) the database's new layers are
+    """Write every output: while the writer process writes the GeoPackage's customer layers (``writing``), the
+    mailing lists, the layer styles, the report and (with a ``publication``) the database's new layers are
     staged here, then its other layers, run.json, the database's swap, and the renames into place."""
     cfg = result.config
     out = cfg.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
-        write_io.ensure_dir(out.path.parent, "output.path")
-        first_layers, writer = customer_layers(result), None
-        if out.geopackage:
-            gpkg = stage.temp_for(out.path)
-            # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
-            table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
-                                                                     _layer_frame(result)))
-            first_layers = customer_layers(result, table)
-            writer = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+        first_layers, writer, gpkg = writing.first_layers, writing.job, writing.gpkg
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         info = dict(result.info)
         files = _list_files(result, info)
@@ -747,16 +797,13 @@ def _list_files(result: Result, info: dict[str, Any]) -> dict[Path, Callable[[Pa
         write_io.write_list_csv(tmp, df)
         staged[name] = tmp
 
-    for name, df in result.mailing.items():
-        files[out.mailing_dir / f"{name}.csv"] = lambda tmp, name=name, df=df: csv(tmp, name, df)
-    for name, df in result.new_mailing.items():
+    for name, df in {**result.mailing, **result.new_mailing}.items():
         full = name.removeprefix("new_")
-        if full in result.mailing and df.equals(result.mailing[full]):
+        if name in result.new_mailing and full in result.mailing and df.equals(result.mailing[full]):
             # a first run's new list is its full list: the CSV is copied, not formatted again (1.7 s of a 1M run)
             files[out.mailing_dir / f"{name}.csv"] = lambda tmp, full=full: shutil.copyfile(staged[full], tmp)
         else:
-            files[out.mailing_dir / f"{name}.csv"] = lambda tmp, df=df: write_io.write_list_csv(tmp, df)
-    for name, df in {**result.mailing, **result.new_mailing}.items():
+            files[out.mailing_dir / f"{name}.csv"] = lambda tmp, name=name, df=df: csv(tmp, name, df)
         if info["xlsx"]["written"]:
             files[out.mailing_dir / f"{name}.xlsx"] = lambda tmp, df=df, name=name: write_io.write_xlsx(tmp, df, name)
     return files
@@ -871,15 +918,20 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
             write_io.Staging(journal_for=cfg.output.path) as stage, \
             runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker:  # stopped before the staging is discarded
         inputs = nightly.snapshot(cfg.input_paths())
-        result = compute(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
-        nightly.check_unchanged(inputs)
+        result, screening = screen(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
         with clock.step("compare with baseline"):
-            nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
+            newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
+        # the customers are final: the writer process writes them while their summaries and lists are made here
+        writing = start_writing(result, clock, stage, worker) if write else None
+        summarise(result, screening, clock)
+        nightly.check_unchanged(inputs)
+        with clock.step("new mailing lists"):
+            nightly.new_lists(result, newly)
         result.info["started"] = started
         result.info["engine"] = engine
         result.info["warnings"] = shown  # the same list: warnings shown while writing are added too
-        if write:
-            result.outputs = write_outputs(result, clock, stage, worker, publication)
+        if writing is not None:
+            result.outputs = write_outputs(result, clock, stage, writing, publication)
     result.timings = clock.timings
     result.elapsed_s = time.perf_counter() - t0
     log.debug("run finished in %.2f s: %s", result.elapsed_s,

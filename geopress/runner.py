@@ -1,8 +1,8 @@
 """The run's second process: one spawned child that does the side work, a job at a time.
 
 A run keeps both cores busy by giving a child process two jobs: the service band while the
-customers are read and sampled, then writing the GeoPackage while the summaries, the mailing
-lists and the report are made.
+customers are read and sampled, then writing the GeoPackage's customers while their summaries, the
+mailing lists and the report are made.
 
 The child is never a fork of this process, which already runs threads (numpy's BLAS, Arrow's
 allocator, GDAL's pool): it comes from multiprocessing's ``forkserver``, a server process

@@ -713,7 +713,7 @@ def test_cli_unexpected_failure_exit_1(crafted, invoke, monkeypatch):
     def broken(*args, **kwargs):
         raise RuntimeError("simulated bug")
 
-    monkeypatch.setattr(pipeline, "compute", broken)
+    monkeypatch.setattr(pipeline, "screen", broken)
     res = invoke("run", crafted)
     assert res.exit_code == 1
     line = one_error_line(res.stderr)
@@ -868,13 +868,13 @@ def test_datum_offset_shifts_ground_onto_the_hgl_datum(world):
 
 def test_a_run_pauses_the_cycle_collector_and_restores_it(world, monkeypatch):
     seen = []
-    real = pipeline.compute
+    real = pipeline.screen
 
     def spy(*args, **kwargs):
         seen.append(gc.isenabled())
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(pipeline, "compute", spy)
+    monkeypatch.setattr(pipeline, "screen", spy)
     assert gc.isenabled()
     geopress.run(world.config_path)
     assert seen == [False] and gc.isenabled()
