@@ -286,7 +286,7 @@ class Encoded:
 @dataclass(frozen=True)
 class ArrowFile:
     """A point layer in an Arrow IPC file (WKB geometries in column ``geometry``, CRS ``crs``), which a
-    writer in another process maps into memory instead of receiving the rows (see
+    writer in another process reads a batch at a time instead of receiving the rows (see
     :func:`arrow_file`)."""
 
     path: Path
@@ -315,15 +315,19 @@ class Polygons:
 Layer = pd.DataFrame | Encoded | ArrowFile | View | Polygons | Styles
 
 
+#: rows per record batch of an :class:`ArrowFile`: the writer process holds one batch at a time
+ARROW_BATCH_ROWS = 65_536
+
+
 def arrow_file(path: Path, layer: Encoded | gpd.GeoDataFrame) -> ArrowFile:
-    """Write the point layer ``layer`` as an Arrow IPC file at ``path`` (its geometries as WKB, passed
-    through when already encoded) and return it as an :class:`ArrowFile` layer."""
+    """Write the point layer ``layer`` as an Arrow IPC file at ``path`` in batches of :data:`ARROW_BATCH_ROWS`
+    (its geometries as WKB, passed through when already encoded) and return it as an :class:`ArrowFile` layer."""
     encoded = layer if isinstance(layer, Encoded) else Encoded(layer, pa.array(shapely.to_wkb(
         layer.geometry.to_numpy()), type=pa.binary()))
     table, geometry, crs = _point_table(encoded)
     try:
         with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as out:
-            out.write_table(table)
+            out.write_table(table, max_chunksize=ARROW_BATCH_ROWS)
     except pa.ArrowIOError as exc:  # a full disk, say
         raise OSError(errno.EIO, str(exc)) from exc
     return ArrowFile(path=path, geometry=geometry, crs=crs)
@@ -363,43 +367,42 @@ MISSING, POINT = -1, 0
 def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     points: dict[str, Encoded | gpd.GeoDataFrame | pa.Table] = {}  # the point layers written, that views select from
     seconds = {}
-    maps = []  # the Arrow files mapped, closed once every layer is written
-    try:
-        for name, layer in layers.items():
-            t0 = time.perf_counter()
-            if isinstance(layer, Styles):
-                _write_layer_styles(path, name, layer)
-            elif isinstance(layer, View):
-                if layer.rows:
-                    _create_view(path, name, layer)
-                else:
-                    # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
-                    _write_point_layer(path, name, _no_rows(points[layer.of]))
-            elif isinstance(layer, Polygons):
-                pyogrio.write_dataframe(layer.frame, path, layer=name, driver="GPKG", use_arrow=True,
-                                        geometry_type="Polygon", layer_options={"SPATIAL_INDEX": "YES"})
-            elif isinstance(layer, ArrowFile):
-                source = pa.memory_map(str(layer.path))
-                maps.append(source)
-                table = pa.ipc.open_file(source).read_all()  # zero copy: the pages of the file
-                _write_arrow_points(path, name, table, layer.geometry, layer.crs)
-                points[name] = (table, layer.geometry, layer.crs)
-            elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
-                _write_point_layer(path, name, layer)
-                points[name] = layer
-            elif isinstance(layer, gpd.GeoDataFrame):
-                pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True,
-                                        layer_options={"SPATIAL_INDEX": "YES"})
+    for name, layer in layers.items():
+        t0 = time.perf_counter()
+        if isinstance(layer, Styles):
+            _write_layer_styles(path, name, layer)
+        elif isinstance(layer, View):
+            if layer.rows:
+                _create_view(path, name, layer)
             else:
-                pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
-            seconds[name] = round(time.perf_counter() - t0, 4)
-    finally:
-        for source in maps:
-            source.close()
+                # GDAL finds a view's fid column from its first row: an empty view would list the fid as a field
+                _write_point_layer(path, name, _no_rows(points[layer.of]))
+        elif isinstance(layer, Polygons):
+            pyogrio.write_dataframe(layer.frame, path, layer=name, driver="GPKG", use_arrow=True,
+                                    geometry_type="Polygon", layer_options={"SPATIAL_INDEX": "YES"})
+        elif isinstance(layer, ArrowFile):
+            # read a batch at a time and given to GDAL as a stream, so this process holds one batch, not
+            # the file (mapped whole, its pages counted here until the end: 1.2 GB at 4,000,000 customers)
+            with pa.OSFile(str(layer.path)) as source:
+                reader = pa.ipc.open_file(source)
+                batches = (reader.get_batch(i) for i in range(reader.num_record_batches))
+                _write_arrow_points(path, name, pa.RecordBatchReader.from_batches(reader.schema, batches),
+                                    layer.geometry, layer.crs)
+            points[name] = (reader.schema.empty_table(), layer.geometry, layer.crs)
+        elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
+            _write_point_layer(path, name, layer)
+            points[name] = layer
+        elif isinstance(layer, gpd.GeoDataFrame):
+            pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True,
+                                    layer_options={"SPATIAL_INDEX": "YES"})
+        else:
+            pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG")
+        seconds[name] = round(time.perf_counter() - t0, 4)
     return seconds
 
 
-def _write_arrow_points(path: Path, name: str, table: pa.Table, geometry: str, crs: str | None) -> None:
+def _write_arrow_points(path: Path, name: str, table: pa.Table | pa.RecordBatchReader, geometry: str,
+                        crs: str | None) -> None:
     pyogrio.write_arrow(table, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
                         crs=crs, layer_options={"SPATIAL_INDEX": "YES"})
 
