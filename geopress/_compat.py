@@ -8,11 +8,13 @@ installed and :func:`report_missing` names what is missing; the layer styles
 need it too (their palette is the report's). :func:`xlsx_missing` says the
 same of openpyxl, which the report extra also brings, for the mailing lists'
 .xlsx copies. :func:`import_dask` returns the ``dask`` extra's modules or
-raises MissingExtraError.
+raises MissingExtraError. :func:`release_freed_heap` returns freed heap pages to the
+system where the C library can (glibc), and does nothing elsewhere.
 """
 
 from __future__ import annotations
 
+import ctypes
 import importlib.util
 from types import ModuleType
 
@@ -53,3 +55,26 @@ def import_dask() -> tuple[ModuleType, ModuleType]:
             key="engine",
         ) from exc
     return dask_geopandas, distributed
+
+
+def _malloc_trim():
+    """glibc's ``malloc_trim``, or None where the C library has none (macOS, musl, Windows)."""
+    try:
+        return ctypes.CDLL("libc.so.6").malloc_trim
+    except (OSError, AttributeError):
+        return None
+
+
+_MALLOC_TRIM = _malloc_trim()
+
+
+def release_freed_heap() -> None:
+    """Give the system back the heap pages freed so far.
+
+    glibc keeps memory that C code frees (qhull's in the target areas, Arrow's and pandas' temporaries) for
+    reuse, and in the arena of each thread that freed it; a run would hold it to its end. Measured at
+    4,000,000 customers: 0.6 GB kept after the target areas' threads, 0.3 GB less at the run's peak with it
+    returned after every step (scripts/README.md).
+    """
+    if _MALLOC_TRIM is not None:
+        _MALLOC_TRIM(0)
