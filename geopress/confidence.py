@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 
-from .classify import CODE, Criteria
+from .classify import CODE, Criteria, names_at
 from .findings import BY_NAME, FINDINGS, FLAGGED_STATUSES
 from .tables import in_finding
 
@@ -109,12 +109,11 @@ def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd
     ok = codes == CODE["ok"]
     sure = np.where(flagged, m, -m) > Z95 * s  # beyond 1.96 sigma on the side the status is on
     rated = ~np.isnan(m)
-    names = np.array([None, *CLASSES], dtype=object)  # index 0: no class
     which = np.select([rated & np.isnan(s), flagged & sure, flagged, ok & sure, ok],
                       [CLASSES.index(c) + 1 for c in ("unrated", "firm", "borderline", "clear", "near_limit")],
                       default=0)
-    which[~rated] = 0
-    return pd.array(names[which], dtype="str")
+    which[~rated] = 0  # 0: no class
+    return names_at(CLASSES, np.maximum(which - 1, 0), which > 0)
 
 
 def chance_other_side(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> NDArray[np.float64]:

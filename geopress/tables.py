@@ -195,7 +195,7 @@ def mailing_list(
         best = np.full(n_groups, np.nan)
         best[margin.index.to_numpy()] = margin.to_numpy().round(2)
         # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
-        classes = np.asarray(pd.array(rated[1], dtype="str").to_numpy(dtype=object, na_value=None))[rows]
+        classes = pd.array(rated[1], dtype="str")[rows]  # the finding's rows only, not every customer's
         rank = pd.Series(pd.Categorical(classes, categories=ADDRESS_CLASSES).codes).replace(-1, 99)
         surest = rank.groupby(group, sort=False).min()
         code = np.full(n_groups, 99)

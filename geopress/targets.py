@@ -130,13 +130,15 @@ def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distanc
     places, at = np.unique(np.column_stack([x_ft, y_ft]), axis=0, return_inverse=True)
     edges = None
     if places.shape[0] >= 3:
+        # in vertical strips, alternately up and down, so each point qhull adds lies near the one before
+        order = _snake(places)
         try:
             # centred, so qhull's precision follows the spread of the points, not their distance from the origin
-            tri = Delaunay(places - places.mean(axis=0))
+            tri = Delaunay(places[order] - places.mean(axis=0))
         except QhullError:
             tri = None
         if tri is not None and len(tri.coplanar) == 0:
-            s = tri.simplices
+            s = order[tri.simplices]
             edges = np.column_stack([np.r_[s[:, 0], s[:, 1], s[:, 2]], np.r_[s[:, 1], s[:, 2], s[:, 0]]])
             # lengths from the coordinates as given, as a neighbour search would measure them
             d = places[edges[:, 0]] - places[edges[:, 1]]
@@ -151,6 +153,16 @@ def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distanc
     rank = np.empty(first.size, dtype=np.intp)
     rank[np.argsort(first)] = np.arange(first.size)
     return rank[labels]
+
+
+def _snake(xy: NDArray[np.float64]) -> NDArray[np.intp]:
+    """An order of the points ``xy`` in about sqrt(n) / 8 vertical strips of equal width, up the first, down the
+    next: qhull triangulates 950,000 points in it in 7.1 s against 9.0 s sorted by x (scripts/README.md)."""
+    n = xy.shape[0]
+    strips = max(1, int(np.sqrt(n) / 8))
+    left, width = xy[:, 0].min(), np.ptp(xy[:, 0])
+    strip = np.minimum((xy[:, 0] - left) / (width or 1.0) * strips, strips - 1).astype(np.intp)
+    return np.lexsort((np.where(strip % 2 == 0, xy[:, 1], -xy[:, 1]), strip))
 
 
 def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], distance_ft: float,
