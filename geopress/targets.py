@@ -107,28 +107,88 @@ def _inward(fix: Fix) -> Fix:
     return Fix(lo, hi, fix.note) if lo <= hi else fix
 
 
+#: the most places triangulated at once: a set with more is split into strips of this many (see
+#: :func:`cluster_labels`), which bounds qhull's memory (about 700 bytes a place) and keeps every core busy
+STRIP_PLACES = 200_000
+
+
 def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distance_ft: float) -> NDArray[np.intp]:
     """Single-linkage labels of points in ft at ``distance_ft``: two points at most ``distance_ft`` apart share one,
     and so does a chain of them (DBSCAN's with ``min_samples = 1``). Labels count from 0 in order of each
     cluster's first point.
 
     The clusters are the connected components of the Delaunay triangulation's edges no longer than
-    ``distance_ft`` (scipy's qhull and csgraph): a Euclidean minimum spanning tree lies within the Delaunay
-    triangulation, and any two points at most ``distance_ft`` apart are joined by its path, whose every edge is at
-    most that long, so the components are exactly those of the points within ``distance_ft`` of each other.
-    The triangulation gives about three edges a point whatever the density, where a neighbour search finds every
-    point within the distance (hundreds a customer in a dense subdivision). Points at one place are triangulated
-    once. When qhull cannot triangulate them (fewer than three places, all on a line) or leaves a place out as too
-    close to another for its precision, the pairs within the distance come from a k-d tree instead.
+    ``distance_ft`` (scipy's qhull and csgraph). A Euclidean minimum spanning tree lies within the relative
+    neighbourhood graph, which lies within the Delaunay triangulation, and any two points at most ``distance_ft``
+    apart are joined by its path, whose every edge is at most that long: so the components are exactly those of the
+    points within ``distance_ft`` of each other. The triangulation gives about three edges a point whatever the
+    density, where a neighbour search finds every point within the distance (hundreds a customer in a dense
+    subdivision).
+
+    Points at one place are triangulated once. More than :data:`STRIP_PLACES` places are split by x into strips
+    of that many, each triangulated with the places within ``distance_ft`` of it on either side: a spanning-tree
+    edge no longer than the distance has both ends in the widened strip of its left end, and stays an edge of
+    that strip's relative neighbourhood graph (the lune between its ends is empty of all points, so of the
+    strip's), hence of its triangulation; every edge kept joins two points within the distance. When qhull cannot
+    triangulate a set (fewer than three places, all on a line) or leaves a place out as too close to another for
+    its precision, the pairs within the distance come from a k-d tree instead.
     """
+    return _cluster_all([(x_ft, y_ft)], distance_ft)[0]
+
+
+def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], distance_ft: float,
+                 ) -> list[NDArray[np.intp]]:
+    """:func:`cluster_labels` of each set of points, in order. qhull releases the GIL, so the strips of every set
+    are triangulated in threads, one per core, the largest first (scripts/README.md)."""
     from scipy.sparse import coo_array
     from scipy.sparse.csgraph import connected_components
+
+    sets = [np.unique(np.column_stack([x, y]), axis=0, return_inverse=True) for x, y in points]
+    strips = [(i, lo, hi) for i, (places, _) in enumerate(sets) for lo, hi in _strips(places[:, 0], distance_ft)]
+    strips.sort(key=lambda t: t[1] - t[2])  # the largest first
+
+    def short(strip: tuple[int, int, int]) -> NDArray[np.intp]:
+        i, lo, hi = strip
+        return lo + _short_edges(sets[i][0][lo:hi], distance_ft)
+
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    if cores > 1 and len(strips) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=min(cores, len(strips))) as pool:
+            found = list(pool.map(short, strips))
+    else:
+        found = [short(t) for t in strips]
+    out = []
+    for i, (places, at) in enumerate(sets):
+        edges = np.concatenate([e for (j, _, _), e in zip(strips, found) if j == i] or [np.zeros((0, 2), np.intp)])
+        n = places.shape[0]
+        graph = coo_array((np.ones(len(edges), dtype=np.int8), (edges[:, 0], edges[:, 1])), shape=(n, n))
+        labels = connected_components(graph, directed=False)[1][at.ravel()] if n else np.zeros(0, dtype=np.intp)
+        # renumbered in order of each cluster's first point
+        _, first = np.unique(labels, return_index=True)
+        rank = np.empty(first.size, dtype=np.intp)
+        rank[np.argsort(first)] = np.arange(first.size)
+        out.append(rank[labels])
+    return out
+
+
+def _strips(x: NDArray[np.float64], distance_ft: float) -> list[tuple[int, int]]:
+    """Slices ``[lo, hi)`` of the places (sorted by ``x``) to triangulate: every :data:`STRIP_PLACES` of them, with
+    those within ``distance_ft`` on either side."""
+    n = x.size
+    if n == 0:
+        return []
+    cuts = np.r_[np.arange(0, n, STRIP_PLACES), n]
+    return [(int(np.searchsorted(x, x[a] - distance_ft, "left")), int(np.searchsorted(x, x[b - 1] + distance_ft, "right")))
+            for a, b in zip(cuts[:-1], cuts[1:])]
+
+
+def _short_edges(places: NDArray[np.float64], distance_ft: float) -> NDArray[np.intp]:
+    """The pairs of ``places`` (distinct) at most ``distance_ft`` apart among the Delaunay triangulation's edges, or
+    all such pairs from a k-d tree when qhull cannot triangulate them or leaves one out."""
     from scipy.spatial import Delaunay, QhullError, cKDTree
 
-    if x_ft.size == 0:
-        return np.zeros(0, dtype=np.intp)
-    places, at = np.unique(np.column_stack([x_ft, y_ft]), axis=0, return_inverse=True)
-    edges = None
     if places.shape[0] >= 3:
         # in vertical strips, alternately up and down, so each point qhull adds lies near the one before
         order = _snake(places)
@@ -142,17 +202,8 @@ def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distanc
             edges = np.column_stack([np.r_[s[:, 0], s[:, 1], s[:, 2]], np.r_[s[:, 1], s[:, 2], s[:, 0]]])
             # lengths from the coordinates as given, as a neighbour search would measure them
             d = places[edges[:, 0]] - places[edges[:, 1]]
-            edges = edges[np.sqrt(d[:, 0] * d[:, 0] + d[:, 1] * d[:, 1]) <= distance_ft]
-    if edges is None:
-        edges = cKDTree(places).query_pairs(distance_ft, output_type="ndarray")
-    n = places.shape[0]
-    graph = coo_array((np.ones(len(edges), dtype=np.int8), (edges[:, 0], edges[:, 1])), shape=(n, n))
-    labels = connected_components(graph, directed=False)[1][at.ravel()]
-    # renumbered in order of each cluster's first point
-    _, first = np.unique(labels, return_index=True)
-    rank = np.empty(first.size, dtype=np.intp)
-    rank[np.argsort(first)] = np.arange(first.size)
-    return rank[labels]
+            return edges[np.sqrt(d[:, 0] * d[:, 0] + d[:, 1] * d[:, 1]) <= distance_ft]
+    return cKDTree(places).query_pairs(distance_ft, output_type="ndarray").astype(np.intp).reshape(-1, 2)
 
 
 def _snake(xy: NDArray[np.float64]) -> NDArray[np.intp]:
@@ -163,22 +214,6 @@ def _snake(xy: NDArray[np.float64]) -> NDArray[np.intp]:
     left, width = xy[:, 0].min(), np.ptp(xy[:, 0])
     strip = np.minimum((xy[:, 0] - left) / (width or 1.0) * strips, strips - 1).astype(np.intp)
     return np.lexsort((np.where(strip % 2 == 0, xy[:, 1], -xy[:, 1]), strip))
-
-
-def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], distance_ft: float,
-                 ) -> list[NDArray[np.intp]]:
-    """:func:`cluster_labels` of each set of points, in order. qhull releases the GIL, so the sets are triangulated
-    in threads, one per core and the largest first: on 2 cores, 2.0 s instead of 3.7 s for sets like bench.py's
-    at 1,000,000 customers (scripts/README.md)."""
-    if len(points) <= 1:
-        return [cluster_labels(x, y, distance_ft) for x, y in points]
-    from concurrent.futures import ThreadPoolExecutor
-
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    largest_first = sorted(range(len(points)), key=lambda i: -points[i][0].size)
-    with ThreadPoolExecutor(max_workers=min(cores, len(points))) as pool:
-        done = dict(zip(largest_first, pool.map(lambda i: cluster_labels(*points[i], distance_ft), largest_first)))
-    return [done[i] for i in range(len(points))]
 
 
 @dataclass

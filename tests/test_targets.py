@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+from unittest import mock
+
 import numpy as np
 import pytest
 import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from geopress import targets
 from geopress.classify import Criteria
 from geopress.findings import FINDINGS
 from geopress.pressure import static_psi
@@ -176,10 +179,13 @@ anywhere = st.floats(0.0, 200.0, allow_nan=False)
 
 @settings(max_examples=150, deadline=None)
 @given(st.lists(st.tuples(grid | anywhere, grid | anywhere), min_size=1, max_size=60),
-       st.sampled_from([5.0, 12.5, 25.0, 60.0]), st.sampled_from([0.0, 2_000_000.0]))
-def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offset):
+       st.sampled_from([5.0, 12.5, 25.0, 60.0]), st.sampled_from([0.0, 2_000_000.0]),
+       st.sampled_from([targets.STRIP_PLACES, 3, 7]))
+def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offset, strip_places):
     xy = np.array(points) + offset
-    got = cluster_labels(xy[:, 0], xy[:, 1], distance_ft)
+    # strips of 3 or 7 places: the split a set of more than STRIP_PLACES gets, on sets small enough to check
+    with mock.patch.object(targets, "STRIP_PLACES", strip_places):
+        got = cluster_labels(xy[:, 0], xy[:, 1], distance_ft)
     assert_same_partition(got, dbscan_labels(xy[:, 0], xy[:, 1], distance_ft))
     # numbered from 0 in order of each cluster's first point
     _, first = np.unique(got, return_index=True)
@@ -187,11 +193,15 @@ def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offse
 
 
 @pytest.mark.parametrize("x, y", [
+    ([], []),                                                 # none
     ([0.0, 0.0, 0.0], [0.0, 0.0, 0.0]),                       # one place
     ([0.0, 9.0, 0.0, 9.0], [0.0, 0.0, 0.0, 0.0]),             # two places
     ([0.0, 10.0, 20.0, 45.0, 55.0], [0.0, 10.0, 20.0, 45.0, 55.0]),  # all on one line: qhull cannot triangulate
 ])
 def test_degenerate_points_cluster_as_dbscan_does(x, y):
-    x, y = np.array(x), np.array(y)
+    x, y = np.array(x, dtype=float), np.array(y, dtype=float)
     got = cluster_labels(x, y, 15.0)
+    if x.size == 0:
+        assert got.size == 0
+        return
     assert_same_partition(got, dbscan_labels(x, y, 15.0))
