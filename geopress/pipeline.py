@@ -524,8 +524,14 @@ def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray,
     low = {s.zone: s.hgl_range(crit.psi_per_ft)[1] for s in cfg.zones.sources}
     x, y, ft_per_unit, crs = _projected(cust.x, cust.y, cust.crs)
     mail = list(cfg.customers.mail_fields)
-    address = (cust.frame.groupby(mail, dropna=False, sort=False).ngroup().to_numpy() if mail
-               else np.arange(len(ground)))
+    if not mail:
+        address = np.arange(len(ground))
+    else:  # a code per mailing address, for the customers an area can hold only (-1 for the others)
+        address = np.full(len(ground), -1, dtype=np.intp)
+        rows = np.flatnonzero(np.logical_or.reduce([found[f] for f in FLAGGED_STATUSES])) if cfg.targets.enabled \
+            else np.zeros(0, dtype=np.intp)
+        if rows.size:
+            address[rows] = cust.frame[mail].iloc[rows].groupby(mail, dropna=False, sort=False).ngroup().to_numpy()
     top = np.where(floors > 1, ground + (floors - 1) * crit.floor_height_ft, ground)  # NaN floors: one story
     areas = targets_mod.target_areas(
         x=x, y=y, ft_per_unit=ft_per_unit, zone=zone_code, zone_names=names,
