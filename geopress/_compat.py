@@ -73,7 +73,7 @@ def release_freed_heap() -> None:
 
     glibc keeps memory that C code frees (qhull's in the target areas, Arrow's and pandas' temporaries) for
     reuse, and in the arena of each thread that freed it; a run would hold it to its end. Measured at
-    4,000,000 customers: 0.6 GB kept after the target areas' threads, 0.3 GB less at the run's peak with it
+    4,000,000 customers: 0.6 GB kept after the target areas' threads, 0.4 GB less at the run's peak with it
     returned after every step (scripts/README.md).
     """
     if _MALLOC_TRIM is not None:
