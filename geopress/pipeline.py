@@ -712,7 +712,7 @@ def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker
         if not out.geopackage:
             return Writing(job=None, gpkg=None, first_layers=customer_layers(result))
         gpkg = stage.temp_for(out.path)
-        # the customers travel to the writer as an Arrow file it maps, not pickled through a pipe
+        # the customers travel to the writer as an Arrow file it reads a batch at a time, not pickled through a pipe
         table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
                                                                  _layer_frame(result)))
         first_layers = customer_layers(result, table)

@@ -23,7 +23,7 @@ Guarantees:
   ``PR_SET_PDEATHSIG``); it ignores Ctrl-C and SIGTERM, which this process handles by stopping it.
 
 Arguments and results are pickled through a pipe; the few large tables a job needs travel as
-Arrow IPC files the child maps into memory (see :mod:`geopress.io.write`).
+Arrow IPC files the child reads a batch at a time (see :mod:`geopress.io.write`).
 """
 
 from __future__ import annotations

@@ -385,8 +385,8 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
             pyogrio.write_dataframe(layer.frame, path, layer=name, driver="GPKG", use_arrow=True,
                                     geometry_type="Polygon", layer_options={"SPATIAL_INDEX": "YES"})
         elif isinstance(layer, ArrowFile):
-            # read a batch at a time and given to GDAL as a stream, so this process holds one batch, not
-            # the file (mapped whole, its pages counted here until the end: 1.2 GB at 4,000,000 customers)
+            # read a batch at a time and given to GDAL as a stream, so this process holds one batch, not the
+            # whole table (1.45 GB uncompressed at 4,000,000 customers)
             with pa.OSFile(str(layer.path)) as source:
                 reader = pa.ipc.open_file(source)
                 batches = (reader.get_batch(i) for i in range(reader.num_record_batches))
