@@ -86,11 +86,12 @@ def finding_margins(*, psi_min: ArrayLike, psi_max: ArrayLike, psi_top: ArrayLik
     return out
 
 
-def rate(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.ExtensionArray:
+def rate(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.Categorical:
     """A finding's confidence for each customer as if flagged by it: firm, borderline or unrated (see
-    :func:`classes`), for the mailing list of that finding."""
+    :func:`classes`), for the mailing list of that finding; a categorical, a byte a customer."""
     m = np.asarray(margin_psi, dtype=np.float64)
-    return classes(np.full(m.shape, CODE[FLAGGED_STATUSES[0]]), m, sigma_psi)
+    return pd.Categorical.from_codes(_class_index(np.full(m.shape, CODE[FLAGGED_STATUSES[0]]), m, sigma_psi),
+                                     categories=CLASSES)
 
 
 def sigmas(dem_rmse_ft: ArrayLike, hgl_uncertainty_ft: ArrayLike, psi_per_ft: float) -> NDArray[np.float64]:
@@ -102,6 +103,12 @@ def sigmas(dem_rmse_ft: ArrayLike, hgl_uncertainty_ft: ArrayLike, psi_per_ft: fl
 
 def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.ExtensionArray:
     """``confidence`` per customer: one of :data:`CLASSES`, missing where there is no margin."""
+    which = _class_index(codes, margin_psi, sigma_psi)
+    return names_at(CLASSES, np.maximum(which, 0), which >= 0)
+
+
+def _class_index(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> NDArray[np.int8]:
+    """Each customer's class as its index in :data:`CLASSES`, -1 where there is no margin."""
     codes = np.asarray(codes)
     m = np.asarray(margin_psi, dtype=np.float64)
     s = np.asarray(sigma_psi, dtype=np.float64)
@@ -113,7 +120,7 @@ def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd
                       [CLASSES.index(c) + 1 for c in ("unrated", "firm", "borderline", "clear", "near_limit")],
                       default=0)
     which[~rated] = 0  # 0: no class
-    return names_at(CLASSES, np.maximum(which - 1, 0), which > 0)
+    return (which - 1).astype(np.int8)
 
 
 def chance_other_side(margin_psi: ArrayLike, sigma_psi: ArrayLike) -> NDArray[np.float64]:
@@ -140,7 +147,7 @@ def verification_list(customers: pd.DataFrame, rated: Mapping[str, tuple[ArrayLi
     parts = []
     for name in FINDINGS:
         margin, cls = rated[name]
-        borderline = pd.Series(pd.array(cls, dtype="str")).eq("borderline").to_numpy(dtype=bool, na_value=False)
+        borderline = pd.Series(cls).eq("borderline").to_numpy(dtype=bool, na_value=False)
         sel = in_finding(customers, name) & borderline
         part = pd.DataFrame(customers.loc[sel, [*keep, *after, "sigma_psi", "reason"]]).reset_index(drop=True)
         part.insert(len(keep), "list", BY_NAME[name].finding.layer)

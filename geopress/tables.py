@@ -141,7 +141,7 @@ def mailing_list(
             *(["margin_psi", "confidence"] if rated is not None else []), *(["target_area"] if area else [])]
     selected = in_finding(customers, status)
     if firm_only:
-        selected = selected & pd.Series(pd.array(rated[1], dtype="str")).eq("firm").to_numpy(dtype=bool, na_value=False)
+        selected = selected & pd.Series(rated[1]).eq("firm").to_numpy(dtype=bool, na_value=False)
     rows = np.flatnonzero(selected)
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
@@ -195,7 +195,7 @@ def mailing_list(
         best = np.full(n_groups, np.nan)
         best[margin.index.to_numpy()] = margin.to_numpy().round(2)
         # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
-        classes = pd.array(rated[1], dtype="str")[rows]  # the finding's rows only, not every customer's
+        classes = pd.array(rated[1][rows], dtype="str")  # the finding's rows only, not every customer's
         rank = pd.Series(pd.Categorical(classes, categories=ADDRESS_CLASSES).codes).replace(-1, 99)
         surest = rank.groupby(group, sort=False).min()
         code = np.full(n_groups, 99)

@@ -53,6 +53,16 @@ def test_classes_follow_the_1_96_sigma_rule():
         "firm", "borderline", "borderline", "near_limit", "clear", "near_limit", "unrated", None]
 
 
+def test_a_findings_rating_is_the_flagged_class_in_a_byte_a_customer():
+    # the same 1.96 sigma rule as above, for customers taken as flagged whatever their status; a mailing list
+    # keeps one rating per finding for every customer, so each is a categorical of one-byte codes
+    margin = np.array([1.97, 1.96, -3.0, 5.0, np.nan])
+    sigma = np.array([1.0, 1.0, 1.0, np.nan, 1.0])
+    got = cf.rate(margin, sigma)
+    assert list(pd.Series(got).to_numpy(dtype=object, na_value=None)) == [
+        "firm", "borderline", "borderline", "unrated", None]
+    assert got.codes.dtype == np.int8
+
 @settings(max_examples=200, deadline=None)
 @given(a=st.floats(-30, 30), b=st.floats(-30, 30), s=st.floats(0.01, 10))
 def test_a_larger_margin_is_never_less_sure(a, b, s):
