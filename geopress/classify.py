@@ -101,15 +101,23 @@ def classify(**values) -> NDArray[np.int8]:
     return screen(**values)[0]
 
 
-def names_at(names: Sequence[str], index: ArrayLike, valid: ArrayLike | None = None) -> pd.api.extensions.ExtensionArray:
-    """``names[index]`` as pandas text (``"str"``), missing where not ``valid``: one Arrow take, no Python string per row."""
-    table = pa.array([str(n) for n in names], type=pa.large_string())
-    mask = None if valid is None else ~np.asarray(valid, dtype=bool)
-    return pd.array(table.take(pa.array(np.asarray(index, dtype=np.intp), mask=mask)), dtype="str")
+def names_at(names: Sequence[str], index: ArrayLike, valid: ArrayLike | None = None) -> pd.Categorical:
+    """``names[index]``, missing where not ``valid``, as a categorical of the distinct names: a small code per
+    row instead of a text (a million customers have a few thousand distinct reasons, and a handful of statuses)."""
+    distinct, of_name = np.unique(np.array([str(n) for n in names], dtype=object), return_inverse=True)
+    codes = of_name[np.asarray(index, dtype=np.intp)] if len(names) else np.zeros(np.shape(index), dtype=np.intp)
+    if valid is not None:
+        codes = np.where(np.asarray(valid, dtype=bool), codes, -1)
+    return pd.Categorical.from_codes(codes.astype(_code_type(distinct.size)), categories=pd.Index(distinct, dtype="str"))
 
 
-def status_names(codes: ArrayLike) -> pd.api.extensions.ExtensionArray:
-    """Status names for an array of codes, as pandas text."""
+def _code_type(n: int) -> type[np.signedinteger]:
+    """The smallest signed integer type that numbers ``n`` categories and -1 for missing."""
+    return next(t for t in (np.int8, np.int16, np.int32, np.int64) if n < np.iinfo(t).max)
+
+
+def status_names(codes: ArrayLike) -> pd.Categorical:
+    """Status names for an array of codes, as a categorical (see :func:`names_at`)."""
     return names_at(STATUSES, codes)
 
 
@@ -156,8 +164,8 @@ def reasons(
     criteria: Criteria,
     findings: Mapping[str, ArrayLike] | None = None,
     levels: Mapping[str, ArrayLike] | None = None,
-) -> pd.api.extensions.ExtensionArray:
-    """One text per customer saying why it has its status and findings, with the numbers, as pandas text (``"str"``).
+) -> pd.Categorical:
+    """One text per customer saying why it has its status and findings, with the numbers, as a categorical of the distinct sentences.
 
     A customer with findings gets each finding's sentence, in the registry's order, joined by ``"; "``; any other
     its status's sentence. ``findings`` (finding -> boolean array, as :func:`screen` gives them) defaults to each

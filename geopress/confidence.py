@@ -101,7 +101,7 @@ def sigmas(dem_rmse_ft: ArrayLike, hgl_uncertainty_ft: ArrayLike, psi_per_ft: fl
     return np.sqrt(d * d + u * u)
 
 
-def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.api.extensions.ExtensionArray:
+def classes(codes: ArrayLike, margin_psi: ArrayLike, sigma_psi: ArrayLike) -> pd.Categorical:
     """``confidence`` per customer: one of :data:`CLASSES`, missing where there is no margin."""
     which = _class_index(codes, margin_psi, sigma_psi)
     return names_at(CLASSES, np.maximum(which, 0), which >= 0)

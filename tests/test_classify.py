@@ -195,7 +195,7 @@ def test_reasons_equal_the_sentences_formatted_one_customer_at_a_time(rows, lo, 
     codes, ground, hgl_low, pmin, pmax, ptop, floors = (np.array(c) for c in zip(*rows)) if rows else [[]] * 7
     got = reasons(np.asarray(codes, dtype=np.int8), ground_ft=ground, hgl_low_ft=hgl_low, psi_min=pmin,
                   psi_max=pmax, psi_top=ptop, floors=floors, criteria=crit)
-    assert got.dtype == "str"
+    assert got.dtype == "category" and got.categories.dtype == "str"  # a code per customer, each sentence once
     assert got.tolist() == [reference_reason(*r, crit) for r in rows]
 
 
@@ -219,7 +219,7 @@ def test_status_names_round_trip(status):
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.lists(st.text(min_size=1, max_size=8), min_size=1, max_size=5, unique=True).flatmap(
+@given(st.lists(st.text(min_size=1, max_size=8), min_size=1, max_size=5).flatmap(  # a zone's id on several polygons
     lambda names: st.tuples(st.just(names), st.lists(st.tuples(st.integers(0, len(names) - 1), st.booleans()),
                                                      max_size=30))))
 def test_names_at_is_the_names_by_index_missing_where_not_valid(case):
@@ -227,5 +227,6 @@ def test_names_at_is_the_names_by_index_missing_where_not_valid(case):
     index = np.array([i for i, _ in rows], dtype=np.intp)
     valid = np.array([v for _, v in rows], dtype=bool)
     got = pd.Series(names_at(np.array(names, dtype=object), index, valid))
-    assert str(got.dtype) == str(pd.Series(["a"], dtype="str").dtype)
+    assert got.dtype == "category" and got.cat.categories.dtype == "str"
+    assert got.cat.codes.dtype == np.int8  # a byte a row for a handful of names
     assert [None if pd.isna(g) else g for g in got] == [names[i] if v else None for i, v in rows]
