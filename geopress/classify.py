@@ -165,7 +165,8 @@ def reasons(
     findings: Mapping[str, ArrayLike] | None = None,
     levels: Mapping[str, ArrayLike] | None = None,
 ) -> pd.Categorical:
-    """One text per customer saying why it has its status and findings, with the numbers, as a categorical of the distinct sentences.
+    """One text per customer saying why it has its status and findings, with the numbers, as a categorical
+    of the distinct sentences.
 
     A customer with findings gets each finding's sentence, in the registry's order, joined by ``"; "``; any other
     its status's sentence. ``findings`` (finding -> boolean array, as :func:`screen` gives them) defaults to each
