@@ -252,12 +252,13 @@ def _stored_text(values: pd.Series) -> pd.api.extensions.ExtensionArray | np.nda
     return values.to_numpy(dtype=object, na_value=None)
 
 
-def change_columns(table: pd.DataFrame, n_current: int) -> dict[str, pd.api.extensions.ExtensionArray | np.ndarray]:
-    """``previous_status`` and ``change`` of the current customers, in their order, as text columns.
+def change_columns(table: pd.DataFrame, n_current: int) -> dict[str, pd.Categorical]:
+    """``previous_status`` and ``change`` of the current customers, in their order, as categoricals (like
+    ``status``: a code a customer; written as text).
 
     ``table`` is a :func:`compare` table of ``n_current`` current customers (its first rows).
     """
-    return {col: _stored_text(table[col].iloc[:n_current]) for col in ("previous_status", "change")}
+    return {col: table[col].iloc[:n_current].array for col in ("previous_status", "change")}
 
 
 def removed_layer(table: pd.DataFrame, previous: pd.DataFrame, *, id_field: str,
