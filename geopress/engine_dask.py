@@ -48,7 +48,7 @@ def _partition(part: gpd.GeoDataFrame, polygons: np.ndarray, zones_crs_wkt: str,
     pts = part.geometry.to_numpy()
     x, y = shapely.get_x(pts), shapely.get_y(pts)
     crs = CRS.from_wkt(crs_wkt)
-    zi = assign_xy(x, y, crs, polygons, CRS.from_wkt(zones_crs_wkt), priority, points=pts)
+    zi = assign_xy(x, y, crs, polygons, CRS.from_wkt(zones_crs_wkt), priority)
     # the guards on the sampled ground run once, in the driver, on the merged ranges
     result = raster_io.sample_terrain(terrain, x, y, crs, shift)
     return {"rows": part["_row"].to_numpy(), "zone_index": zi, "ground_ft": result.ground_ft, "rmse_ft": result.rmse_ft,
@@ -117,7 +117,7 @@ def assign_and_sample(cust: vector_io.Customers, zones: vector_io.Zones, terrain
         raise ConfigError(f"partitions must be at least 1, not {partitions}", key="partitions")
     n = len(cust.frame)
     rows = np.flatnonzero(cust.has_geometry)
-    frame = gpd.GeoDataFrame({"_row": rows}, geometry=cust.frame.geometry.to_numpy()[rows], crs=cust.crs)
+    frame = gpd.GeoDataFrame({"_row": rows}, geometry=shapely.points(cust.x[rows], cust.y[rows]), crs=cust.crs)
     template = raster_io.TerrainResult(ground_ft=np.empty(0),
                                        rasters=raster_io.describe(terrain.paths, terrain.vertical_units))
     if rows.size == 0:

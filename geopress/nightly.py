@@ -124,14 +124,14 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
         frame = published.previous(cust_cfg.id_field, columns)
         if frame is not None:
             def fetch(ids: pd.Series, names: list[str]):
-                return published.previous_rows(cust_cfg.id_field, ids, names, current.crs)
+                return published.previous_rows(cust_cfg.id_field, ids, names, result.points.crs)
 
-            prev = baseline_io.published_baseline(published.where, frame, cust_cfg.id_field, current.crs, fetch,
+            prev = baseline_io.published_baseline(published.where, frame, cust_cfg.id_field, result.points.crs, fetch,
                                                   key=key)
     if prev is None:
         path, key = _baseline_path(cfg, baseline)
         prev = None if path is None else baseline_io.read_baseline(
-            path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=current.crs, key=key,
+            path, id_field=cust_cfg.id_field, mail_fields=cust_cfg.mail_fields, crs=result.points.crs, key=key,
             optional=tuple(FINDING_COLUMNS.values()))
     frame = prev.frame if prev is not None else pd.DataFrame({cust_cfg.id_field: [], "status": []}, dtype=object)
     try:
@@ -158,7 +158,7 @@ def track(result, baseline: str | os.PathLike | None, *, accept_drop: bool = Fal
     if prev is not None and gone.any():
         previous = prev.rows(table["previous_row"].to_numpy()[gone])
         result.removed = changes.removed_layer(table, previous, id_field=cust_cfg.id_field,
-                                               columns=[*cust_cfg.mail_fields, "zone", current.geometry.name])
+                                               columns=[*cust_cfg.mail_fields, "zone", "geometry"])
     result.info["changes"] = summary.to_dict()
     log.debug("changes since %s: %s", summary.baseline or "no earlier run", summary.line())
     return newly

@@ -65,20 +65,33 @@ Count = Callable[[int, "int | None"], None]
 
 
 
+@dataclass(frozen=True)
+class Points:
+    """The customers' points, row for row: ``x``/``y`` in ``crs`` (NaN where a customer has none) and the same as
+    WKB (null there), which the writers pass through."""
+
+    x: np.ndarray
+    y: np.ndarray
+    crs: pyproj.CRS
+    wkb: pa.ChunkedArray | pa.Array
+
+
 @dataclass
 class Result:
     """What a run computed.
 
-    ``customers``: every input customer with the result columns, point geometry
-    in the customers' CRS (and, once compared with the baseline,
-    ``previous_status`` and ``change``). ``zone_summary``: one row per zone.
+    ``customers``: every input customer with the result columns (and, once
+    compared with the baseline, ``previous_status`` and ``change``), and
+    ``points`` where they are (:meth:`located` joins the two as a
+    GeoDataFrame). ``zone_summary``: one row per zone.
     ``counts``: customers per status. ``mailing``: the mailing lists by name.
     ``info``: what run.json records. ``outputs``: the files written (empty
     when ``write=False``).
     """
 
     config: Config
-    customers: gpd.GeoDataFrame
+    customers: pd.DataFrame
+    points: Points
     zone_summary: pd.DataFrame
     counts: dict[str, int]
     mailing: dict[str, pd.DataFrame]
@@ -90,8 +103,6 @@ class Result:
     outputs: list[Path] = field(default_factory=list)
     #: the service_band / band_limits layers and the report's terrain (geopress.planning)
     plan: planning.Plan | None = None
-    #: the customers' geometries as the file's WKB when they are the file's own points (for the writer), else None
-    wkb: pa.ChunkedArray | None = None
     #: per finding, each customer's margin from its threshold (display unit) and class: the mailing lists' ``rated``
     rated: dict[str, tuple[np.ndarray, Any]] | None = None
     #: the field readings checked against the screening and their per-zone table (None without [readings])
@@ -102,6 +113,13 @@ class Result:
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
     #: the target areas (geopress.targets), polygons in the customers' CRS
     areas: gpd.GeoDataFrame | None = None
+
+    def located(self) -> gpd.GeoDataFrame:
+        """:attr:`customers` with their points as a GeoDataFrame (shapely builds a geometry per customer: about
+        200 bytes each, which the run itself never holds)."""
+        return gpd.GeoDataFrame(self.customers, geometry=gpd.GeoSeries(
+            shapely.from_wkb(self.points.wkb.to_numpy(zero_copy_only=False)), index=self.customers.index,
+            crs=self.points.crs))
 
 
 class _Clock:
@@ -132,10 +150,11 @@ class _Clock:
 def _cycle_collection_paused() -> Iterator[None]:
     """Pause CPython's cycle collector for a run, then restore it as it was.
 
-    A run holds one GC-tracked shapely geometry per customer, and every
-    full collection walks them all, several times while they are decoded
-    (scripts/README.md has the measurement). The run's large objects are
-    freed by reference counting, not by the collector.
+    A run makes millions of short-lived GC-tracked objects (each chunk's
+    WKB bytes and shapely points, pandas' and Arrow's wrappers), enough to
+    set off thousands of collections (scripts/README.md has the
+    measurement). The run's large objects are freed by reference counting,
+    not by the collector.
     """
     enabled = gc.isenabled()
     gc.disable()
@@ -360,9 +379,8 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
                                                    partitions=partitions)
     # ---
     with clock.step("assign zones"):
-        pts = cust.frame.geometry.to_numpy()
         zi = joined.zone_index if joined else assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs,
-                                                        zones.priority, points=pts)
+                                                        zones.priority)
         zoned = zi >= 0
         zone = cls.names_at(zones.zone_ids, zi, zoned)
         zone_code = _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources])
@@ -400,7 +418,7 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
     with clock.step("customer table"):
         frame = cust.frame
         id_field = cfg.customers.id_field
-        extra = [c for c in frame.columns if c not in (id_field, frame.geometry.name)]
+        extra = [c for c in frame.columns if c != id_field]
         data = {
             id_field: _values(frame[id_field]),
             "zone": zone,
@@ -421,13 +439,13 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
         }
         for c in extra:
             data[c] = _values(frame[c])
-        customers = gpd.GeoDataFrame(data, geometry=gpd.GeoSeries(frame.geometry.to_numpy(), crs=cust.crs))
+        customers = pd.DataFrame(data)
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
         finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
-    result = Result(config=cfg, customers=customers, zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={},
-                    plan=plan, wkb=cust.wkb, areas=area_layer)
+    result = Result(config=cfg, customers=customers, points=Points(x=cust.x, y=cust.y, crs=cust.crs, wkb=cust.wkb),
+                    zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={}, plan=plan, areas=area_layer)
     return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
                              ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
                              finding_counts=finding_counts, area_info=area_info)
@@ -638,12 +656,12 @@ def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> 
     """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows in an Arrow file;
     else the frame, with the file's WKB when it has it: see write_io.Encoded), then the flagged layers
     and ``changes``, views of it (see write_io.View)."""
-    customers = result.customers
+    customers, x, y = result.customers, result.points.x, result.points.y
     layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
     for finding, name in cls.FLAGGED_LAYERS.items():
-        layers[name] = write_io.view_of("customers", customers, cls.FINDING_COLUMNS[finding], (True,))
+        layers[name] = write_io.view_of("customers", customers, cls.FINDING_COLUMNS[finding], (True,), x, y)
     if "change" in customers.columns:
-        layers["changes"] = write_io.view_of("customers", customers, "change", CHANGED)
+        layers["changes"] = write_io.view_of("customers", customers, "change", CHANGED, x, y)
     return layers
 
 
@@ -676,8 +694,9 @@ def database_layers(result: Result) -> dict[str, postgis_io.Table | postgis_io.V
         if isinstance(layer, write_io.View):
             layers[name] = postgis_io.View(of=layer.of, column=layer.column, values=layer.values)
         else:
-            layers[name] = postgis_io.geo_table(result.customers, wkb=result.wkb, kind="Point",
-                                                key=result.config.customers.id_field, indexes=("status",))
+            layers[name] = postgis_io.encoded_table(result.customers, result.points.wkb, result.points.crs,
+                                                    kind="Point", key=result.config.customers.id_field,
+                                                    indexes=("status",))
     for name, layer in later_layers(result).items():
         if isinstance(layer, write_io.Polygons):
             layers[name] = postgis_io.geo_table(layer.frame, kind="Geometry")
@@ -772,9 +791,9 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writin
         return [p for p in stage.committed if not p.name.startswith(".")]
 
 
-def _layer_frame(result: Result) -> write_io.Encoded | gpd.GeoDataFrame:
-    """The customers as the writer takes them: with the file's WKB when the points are the file's own."""
-    return result.customers if result.wkb is None else write_io.Encoded(result.customers, result.wkb)
+def _layer_frame(result: Result) -> write_io.Encoded:
+    """The customers as the writer takes them: their attributes and their points' WKB."""
+    return write_io.Encoded(result.customers, result.points.wkb, result.points.crs)
 
 
 def _advance(count: Count | None) -> Callable[[], None]:
@@ -865,8 +884,8 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     path = report_path(cfg)
     info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
     info["outputs"].append(str(path))
-    html = planning.report_html(cfg, result.customers, result.zone_summary, result.plan, info, result.areas,
-                                result.field_check, result.field_check_by_zone)
+    html = planning.report_html(cfg, result.customers, result.points, result.zone_summary, result.plan, info,
+                                result.areas, result.field_check, result.field_check_by_zone)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 
@@ -1013,8 +1032,8 @@ def check(config: Config | str | os.PathLike) -> CheckReport:
         each, anywhere = raster_io.coverage(tiles, cust.x, cust.y, cust.crs)
         terrain = raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs, shift)
         names = [s.zone for s in cfg.zones.sources]
-        zone_code = _zone_codes(assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority,
-                                          points=cust.frame.geometry.to_numpy()), zones, names)
+        zone_code = _zone_codes(assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority),
+                                zones, names)
         located = int(np.count_nonzero(cust.has_geometry))
         table = apply_guards(cfg, terrain, zone_code, located, cust.crs, zones)
     unzoned = located - int(np.count_nonzero(zone_code >= 0))

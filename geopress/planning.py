@@ -20,7 +20,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import shapely
-from pyproj import CRS
+from pyproj import CRS, Transformer
 
 from . import band as band_mod
 from .besthgl import BestRange, Dial, best_range, flagged_count, robust_tolerance, settable
@@ -303,18 +303,18 @@ def _terrain(zt: ZoneTerrain) -> "report.Terrain":
     return report.Terrain(dem_ft=zt.dem_ft, extent=zt.extent)
 
 
-def _xy(geom: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
-    """Coordinates of points ``geom`` (in ``src``) in ``dst``."""
-    pts = gpd.GeoSeries(geom, crs=src)
-    if not dst.equals(src):
-        pts = pts.to_crs(dst)
-    return shapely.get_x(pts.to_numpy()), shapely.get_y(pts.to_numpy())
+def _xy(x: np.ndarray, y: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, np.ndarray]:
+    """Coordinates ``x``/``y`` (in ``src``) in ``dst``, x east and y north as GeoPandas' ``to_crs`` gives them."""
+    if dst.equals(src):
+        return x, y
+    return Transformer.from_crs(src, dst, always_xy=True).transform(x, y)
 
 
-def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame, plan: Plan | None,
+def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.DataFrame, plan: Plan | None,
                 info: dict[str, Any], areas: gpd.GeoDataFrame | None = None,
                 readings: gpd.GeoDataFrame | None = None, readings_by_zone: pd.DataFrame | None = None) -> str:
-    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`).
+    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`); ``points``: the
+    customers' ``x``, ``y`` and ``crs`` (a pipeline Points).
 
     Each zone map is drawn in the CRS of its zone's first raster; the maps of
     all zones (overview and interactive) in that of the first zone map, with
@@ -342,27 +342,27 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         return {status_names[i]: int(per[i]) for i in np.flatnonzero(per)}
 
     maps = []
-    geom = customers.geometry.to_numpy()
-    drawable = ~(shapely.is_missing(geom) | shapely.is_empty(geom))
+    px, py, pcrs = points.x, points.y, points.crs
+    drawable = ~(np.isnan(px) | np.isnan(py))
     terrains = plan.terrain if plan is not None else []
     for zt in terrains:
         sel = np.flatnonzero((zone_code == code_of.get(zt.zone, -2)) & drawable)
         counts = counts_at(sel)
         sel = sel[report.map_sample(status_code[sel])]
-        x, y = _xy(geom[sel], customers.crs, zt.crs)
+        x, y = _xy(px[sel], py[sel], pcrs, zt.crs)
         maps.append(report.ZoneMap(
             zone=zt.zone, terrain=_terrain(zt), frame=_frame(zt.crs, zt.zone_geom.bounds),
             zone_geom=zt.zone_geom, band_geom=zt.band_geom, limits=zt.limits,
             x=x, y=y, status=status_names[status_code[sel]], counts=counts,
         ))
     # -- the maps of all zones, in one CRS
-    crs = terrains[0].crs if terrains else customers.crs
-    outlines = {z: _to_crs(g, customers.crs, crs) for z, g in (plan.outlines if plan is not None else {}).items()}
+    crs = terrains[0].crs if terrains else pcrs
+    outlines = {z: _to_crs(g, pcrs, crs) for z, g in (plan.outlines if plan is not None else {}).items()}
     shown = np.flatnonzero(drawable)
     counts = counts_at(shown)
     unmapped = int(len(customers) - shown.size)
     over = shown[report.map_sample(status_code[shown])]
-    x, y = _xy(geom[over], customers.crs, crs)
+    x, y = _xy(px[over], py[over], pcrs, crs)
     if outlines:
         frame = _frame(crs, shapely.union_all(list(outlines.values())).bounds)
     else:
@@ -373,7 +373,7 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
                                   status=status_names[status_code[over]], counts=counts, unmapped=unmapped)
     ok_code = {s: i for i, s in enumerate(status_names)}.get("ok", -1)
     pick = shown[report.interactive_sample(status_code[shown], ok_code)]
-    x, y = _xy(geom[pick], customers.crs, crs)
+    x, y = _xy(px[pick], py[pick], pcrs, crs)
 
     def picked(column: str) -> np.ndarray:  # only the drawn rows become Python objects
         return customers[column].iloc[pick].to_numpy(dtype=object, na_value=None)
@@ -394,7 +394,8 @@ def report_html(cfg: Config, customers: gpd.GeoDataFrame, summary: pd.DataFrame,
         from . import report_field
 
         located = readings.geometry.notna().to_numpy()
-        rx, ry = _xy(readings.geometry.to_numpy()[located], readings.crs, crs)
+        drawn = readings.geometry.to_numpy()[located]
+        rx, ry = _xy(shapely.get_x(drawn), shapely.get_y(drawn), readings.crs, crs)
         fmap = report_field.FieldMap(terrain=background, frame=frame, outlines=outlines, x=rx, y=ry,
                                      residual_psi=readings["residual_psi"].to_numpy(dtype=np.float64)[located],
                                      check=readings["check"].to_numpy(dtype=object)[located])

@@ -61,22 +61,24 @@ def assign(points: ArrayLike, polygons: ArrayLike, priority: ArrayLike) -> NDArr
     return result
 
 
-def assign_xy(x: ArrayLike, y: ArrayLike, crs: CRS, polygons: ArrayLike, polygons_crs: CRS,
-              priority: ArrayLike, points: ArrayLike | None = None) -> NDArray[np.intp]:
-    """:func:`assign` for map points ``x``, ``y`` in ``crs`` (NaN for none), made in ``polygons_crs``.
+#: points made into shapely geometries at a time by :func:`assign_xy` (about 200 bytes each while they live)
+POINTS_AT_A_TIME = 262_144
 
-    ``points``, the same points as shapely geometries (missing where ``x`` is NaN), are
-    used as they are when the two CRSs are one, instead of making new ones.
-    """
+
+def assign_xy(x: ArrayLike, y: ArrayLike, crs: CRS, polygons: ArrayLike, polygons_crs: CRS,
+              priority: ArrayLike) -> NDArray[np.intp]:
+    """:func:`assign` for map points ``x``, ``y`` in ``crs`` (NaN for none), made in ``polygons_crs``,
+    :data:`POINTS_AT_A_TIME` points at a time."""
     x, y = np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64)
-    if points is not None and crs.equals(polygons_crs):
-        return assign(points, polygons, priority)
     have = np.flatnonzero(~np.isnan(x) & ~np.isnan(y))
     px, py = x[have], y[have]
     if not crs.equals(polygons_crs):
         px, py = Transformer.from_crs(crs, polygons_crs, always_xy=True).transform(px, py)
     result = np.full(x.shape, -1, dtype=np.intp)
-    result[have] = assign(shapely.points(px, py), polygons, priority)
+    polygons = np.asarray(polygons, dtype=object)
+    for start in range(0, have.size, POINTS_AT_A_TIME):
+        at = slice(start, start + POINTS_AT_A_TIME)
+        result[have[at]] = assign(shapely.points(px[at], py[at]), polygons, priority)
     return result
 
 

@@ -35,7 +35,7 @@ def main() -> None:
     times = []
     for _ in range(args.repeat):
         t0 = time.perf_counter()
-        html = planning.report_html(result.config, result.customers, result.zone_summary, result.plan, result.info)
+        html = planning.report_html(result.config, result.customers, result.points, result.zone_summary, result.plan, result.info)
         times.append(time.perf_counter() - t0)
     print(f"{len(result.customers):,} customers: report_html median {statistics.median(times):.2f} s "
           f"({', '.join(f'{t:.2f}' for t in times)} s), {len(html.encode('utf-8')):,} bytes")

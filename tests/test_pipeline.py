@@ -244,7 +244,7 @@ def test_geographic_customers_against_a_projected_dem(world):
     np.testing.assert_allclose(res.customers["ground_ft"], world.ground_m(px, py) / M_PER_FT, rtol=0, atol=1e-6)
     # and the projected points are the original ones: PROJ's UTM round trip is good to nanometres, 1e-6 m bounds it
     np.testing.assert_allclose(px, xs, rtol=0, atol=1e-6)
-    assert res.customers.crs.to_epsg() == 4326
+    assert res.points.crs.to_epsg() == 4326
     assert set(res.customers["zone"]) == {"West", "East"}
     assert res.counts["unzoned"] == 0
 
@@ -362,7 +362,7 @@ def test_polygon_customers_use_point_on_surface(world):
     write_layer(world.customers_path, "parcels", customer_records([0, 0], [0, 0]), [ell, square])
     res = geopress.run(world.config_path)
     expected = shapely.point_on_surface([ell, square])
-    got = res.customers.geometry.to_numpy()
+    got = res.located().geometry.to_numpy()
     assert shapely.equals(got, expected).all()
     assert ell.contains(got[0])
     ex, ey = shapely.get_x(expected), shapely.get_y(expected)
@@ -526,7 +526,7 @@ def test_target_area_of_the_two_high_customers(crafted):
     high = read_csv(root / "out/mailing/high_pressure.csv")
     assert [(r["accounts"], r["target_area"]) for r in high] == [("A-high; A-high-2", "T2")]
     info = json.loads((root / "out/run.json").read_text())
-    assert info["target_areas"] == {"enabled": True, "distance_ft": 700.0, "min_customers": 2, "clustered_in": res.customers.crs.to_string(),
+    assert info["target_areas"] == {"enabled": True, "distance_ft": 700.0, "min_customers": 2, "clustered_in": res.points.crs.to_string(),
                                     "areas": 2, "by_finding": {"above_hgl": 1, "low": 0, "high": 1,
                                                                "low_upper_floors": 0}, "customers_in_areas": 5}
     html = (root / "out/report.html").read_text(encoding="utf-8")

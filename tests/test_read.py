@@ -48,13 +48,18 @@ POINT = shapely.Point(10, 20)
     (shapely.MultiPoint([(1, 1), (2, 2)]), False),
     (shapely.Point(30, 40, 5), False),  # the output layers are 2D
 ])
-def test_the_files_wkb_is_kept_only_when_it_is_the_customers_points(tmp_path, other, passed_through):
+def test_the_customers_wkb_is_their_2d_points_the_files_own_when_they_are(tmp_path, other, passed_through):
     path = write_layer(tmp_path / "c.gpkg", "parcels", customer_records([0, 0], [0, 0]), [POINT, other])
     cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account"))
-    if passed_through:
-        assert cust.wkb.to_pylist() == list(shapely.to_wkb(cust.frame.geometry.to_numpy()))
+    if other is None or other.is_empty:
+        point = None
     else:
-        assert cust.wkb is None
+        point = other if other.geom_type == "Point" else shapely.point_on_surface(other)
+        point = shapely.to_wkb(shapely.Point(point.x, point.y))
+    # shapely's own encoding of the 2D points is the reference
+    assert cust.wkb.to_pylist() == [shapely.to_wkb(POINT), point]
+    file_wkb = pyogrio.read_arrow(path, layer="parcels")[1]["geom"].to_pylist()
+    assert (cust.wkb.to_pylist() == file_wkb) == passed_through
 
 
 def test_a_point_with_an_m_value_is_not_passed_through(tmp_path):
@@ -66,4 +71,4 @@ def test_a_point_with_an_m_value_is_not_passed_through(tmp_path):
     pyogrio.write_arrow(table, path, layer="parcels", driver="GPKG", geometry_name="geom", geometry_type="Unknown",
                         crs="EPSG:32631")
     cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account"))
-    assert cust.wkb is None
+    assert cust.wkb.to_pylist() == [shapely.to_wkb(POINT), shapely.to_wkb(shapely.Point(1, 2))]

@@ -175,7 +175,7 @@ def test_overview_shows_unzoned_and_no_terrain_customers_with_every_zone(world):
     world.write_config(text)
     result = geopress.run(world.config_path, write=False)
     assert result.counts["unzoned"] == 1 and result.counts["no_terrain"] == 1
-    html = planning.report_html(result.config, result.customers, result.zone_summary, result.plan, result.info)
+    html = planning.report_html(result.config, result.customers, result.points, result.zone_summary, result.plan, result.info)
     spec = json.loads(re.search(r'id="imap-spec">(.*?)</script>', html, re.S).group(1))
     drawn = {t["meta"]: len(t["x"]) for t in spec["data"] if t.get("meta")}
     assert drawn["unzoned"] == 1 and drawn["no_terrain"] == 1 and sum(drawn.values()) == 22

@@ -42,8 +42,8 @@ def test_dask_engine_matches_the_local_engine(world):
     for col in ("ground_ft", "psi_max", "psi_min", "psi_top", "hgl_low_ft"):
         # identical to the last bit: the same functions on the same points
         assert np.array_equal(a[col].to_numpy(), b[col].to_numpy(), equal_nan=True), col
-    pd.testing.assert_frame_equal(pd.DataFrame(a.drop(columns="geometry")), pd.DataFrame(b.drop(columns="geometry")))
-    assert a.geometry.equals(b.geometry)
+    pd.testing.assert_frame_equal(a, b)
+    assert local.points.wkb.equals(dist.points.wkb)
     assert dist.info["engine"] == "dask"
     assert [r["customers_sampled"] for r in dist.info["terrain"]] == [r["customers_sampled"] for r in local.info["terrain"]]
     assert set(local.counts.values()) != {0} and local.counts == dist.counts

@@ -6,6 +6,7 @@ import sqlite3
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import geopandas as gpd
 import pyogrio
 import pytest
@@ -29,15 +30,27 @@ def frame() -> gpd.GeoDataFrame:
     }, geometry=gpd.GeoSeries(geoms, crs="EPSG:32631"))
 
 
+def _view(frame: gpd.GeoDataFrame, values: tuple[str, ...]) -> write_io.View:
+    """The view of ``frame``'s rows with a ``status`` in ``values``, its extent from their points."""
+    points = frame.geometry.to_numpy()
+    return write_io.view_of("customers", frame, "status", values, shapely.get_x(points), shapely.get_y(points))
+
+
+def _encoded(frame: gpd.GeoDataFrame) -> write_io.Encoded:
+    """``frame`` as its attributes and its geometries encoded by shapely."""
+    return write_io.Encoded(pd.DataFrame(frame.drop(columns=frame.geometry.name)),
+                            pa.array(shapely.to_wkb(frame.geometry.to_numpy()), type=pa.binary()), frame.crs)
+
+
 def test_views_read_as_the_filtered_frames(tmp_path, frame):
     # a value with a quote must not break the view's SQL; a field named like the fid GDAL gives
     # a view elsewhere must keep its name
     frame.loc[3, "status"] = "it's"
     frame.insert(4, "ogc_fid", np.arange(len(frame)) * 10)
     status = frame["status"].to_numpy(dtype=object)
-    layers = {"customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",)),
-              "quoted": write_io.view_of("customers", frame, "status", ("it's",)),
-              "none": write_io.view_of("customers", frame, "status", ("nothing",))}
+    layers = {"customers": frame, "high": _view(frame, ("high",)),
+              "quoted": _view(frame, ("it's",)),
+              "none": _view(frame, ("nothing",))}
     out = tmp_path / "out.gpkg"
     write_io._write_layers(out, layers)
     fids = pyogrio.read_dataframe(out, layer="customers", fid_as_index=True).index.to_numpy()
@@ -61,7 +74,7 @@ def test_views_read_as_the_filtered_frames(tmp_path, frame):
 
 def test_a_view_is_filtered_by_its_base_layers_spatial_index(tmp_path, frame):
     out = tmp_path / "out.gpkg"
-    write_io._write_layers(out, {"customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",))})
+    write_io._write_layers(out, {"customers": frame, "high": _view(frame, ("high",))})
     bbox = (200.0, 200.0, 800.0, 800.0)
     got = pyogrio.read_dataframe(out, layer="high", bbox=bbox)
     x, y = frame.geometry.x.to_numpy(), frame.geometry.y.to_numpy()
@@ -78,8 +91,9 @@ def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
     write_io._write_layers(source, {"customers": frame})
     read, wkb = vector_io.read_layer(source, "customers", list(frame.columns.drop("geometry")))
     for layers, out in (({"customers": read}, tmp_path / "encoded-here.gpkg"),
-                        ({"customers": write_io.Encoded(read, wkb)}, tmp_path / "passed-through.gpkg")):
-        write_io._write_layers(out, {**layers, "high": write_io.view_of("customers", frame, "status", ("high",))})
+                        ({"customers": write_io.Encoded(pd.DataFrame(read.drop(columns="geometry")), wkb, read.crs)},
+                         tmp_path / "passed-through.gpkg")):
+        write_io._write_layers(out, {**layers, "high": _view(frame, ("high",))})
     for name in ("customers", "high"):
         here = pyogrio.read_dataframe(tmp_path / "encoded-here.gpkg", layer=name)
         through = pyogrio.read_dataframe(tmp_path / "passed-through.gpkg", layer=name)
@@ -91,16 +105,16 @@ def test_a_layer_with_the_files_wkb_is_written_as_its_frame(tmp_path, frame):
 def test_a_view_of_several_values_and_its_extent(tmp_path, frame):
     out = tmp_path / "out.gpkg"
     write_io.write_geopackage(out, {"customers": frame,
-                                    "flagged": write_io.view_of("customers", frame, "status", ("high", "low"))})
+                                    "flagged": _view(frame, ("high", "low"))})
     got = pyogrio.read_dataframe(out, layer="flagged")
     assert sorted(got["account"]) == sorted(frame.loc[frame["status"].isin(["high", "low"]), "account"])
 
 
 def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
     # the writer process gets the customers as an Arrow file it maps: the same layer as the frame gives
-    table = write_io.arrow_file(tmp_path / "customers.arrow", frame)
+    table = write_io.arrow_file(tmp_path / "customers.arrow", _encoded(frame))
     direct, mapped = tmp_path / "direct.gpkg", tmp_path / "mapped.gpkg"
-    view = write_io.view_of("customers", frame, "status", ("high",))
+    view = _view(frame, ("high",))
     write_io.write_geopackage(direct, {"customers": frame, "high": view})
     write_io.write_geopackage(mapped, {"customers": table, "high": view})
     for name in ("customers", "high"):
@@ -108,7 +122,7 @@ def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
         b = pyogrio.read_dataframe(mapped, layer=name, fid_as_index=True)
         pd.testing.assert_frame_equal(a, b)
     # a view selecting nothing is an empty point layer of the same fields
-    none = write_io.view_of("customers", frame, "status", ("nothing",))
+    none = _view(frame, ("nothing",))
     write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": table, "none": none})
     info = pyogrio.read_info(tmp_path / "none.gpkg", layer="none")
     assert info["features"] == 0 and info["geometry_type"] == "Point"
@@ -124,7 +138,7 @@ def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch
     monkeypatch.setattr(write_io, "_create_view", full)
     with pytest.raises(OutputError, match=r"cannot write the GeoPackage \(database or disk is full\)") as info:
         write_io.write_geopackage(tmp_path / "out.gpkg", {
-            "customers": frame, "high": write_io.view_of("customers", frame, "status", ("high",))})
+            "customers": frame, "high": _view(frame, ("high",))})
     assert info.value.path == str(tmp_path / "out.gpkg")
     # GDAL's own errors too: SQLite cannot create the file where its folder is missing
     with pytest.raises(OutputError, match=r"cannot write the GeoPackage \(sqlite3_open"):

@@ -323,15 +323,22 @@ def srid_of(crs: Any) -> int:
     return int(code)
 
 
-def geo_table(frame: gpd.GeoDataFrame, *, wkb: pa.Array | pa.ChunkedArray | None = None, kind: str = "Geometry",
-              indexes: tuple[str, ...] = (), key: str | None = None) -> Table:
-    """A GeoDataFrame as a :class:`Table`, its geometries as WKB (``wkb`` when given: already encoded)."""
+def geo_table(frame: gpd.GeoDataFrame, *, kind: str = "Geometry", indexes: tuple[str, ...] = (),
+              key: str | None = None) -> Table:
+    """A GeoDataFrame as a :class:`Table`, its geometries as WKB."""
     geometry = frame.geometry.name
     attributes = pa.Table.from_pandas(pd.DataFrame(frame.drop(columns=geometry)), preserve_index=False)
-    if wkb is None:
-        wkb = pa.array(shapely.to_wkb(frame.geometry.to_numpy()), type=pa.binary())
+    wkb = pa.array(shapely.to_wkb(frame.geometry.to_numpy()), type=pa.binary())
     data = attributes.add_column(frame.columns.get_loc(geometry), geometry, wkb)
     return Table(data=data, geometry=geometry, kind=kind, srid=srid_of(frame.crs), indexes=indexes, key=key)
+
+
+def encoded_table(frame: pd.DataFrame, wkb: pa.Array | pa.ChunkedArray, crs: Any, *, kind: str = "Geometry",
+                  indexes: tuple[str, ...] = (), key: str | None = None) -> Table:
+    """Attributes ``frame`` and their geometries already encoded, ``wkb`` in ``crs``, as a :class:`Table` whose
+    last column is the geometry, ``geometry``."""
+    data = pa.Table.from_pandas(frame, preserve_index=False).append_column("geometry", wkb)
+    return Table(data=data, geometry="geometry", kind=kind, srid=srid_of(crs), indexes=indexes, key=key)
 
 
 def plain_table(frame: pd.DataFrame) -> Table:

@@ -80,13 +80,14 @@ _TEXT = {pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.Str
 
 
 def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
-               total: int | None = None) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray]:
+               total: int | None = None, geometry: bool = True) -> tuple[pd.DataFrame, pa.ChunkedArray]:
     """The ``columns`` and geometry of a layer, errors translated, and its geometries as the file's WKB.
 
     The same frame as ``pyogrio.read_dataframe(use_arrow=True)``, made without
     a Python bytes object per row: the WKB goes straight from Arrow to
     shapely, and is returned too, so that a writer can pass unchanged
-    geometries through instead of encoding them again. The features are read
+    geometries through instead of encoding them again. With ``geometry=False``
+    the frame has the attributes only, and the WKB is left as it is. The features are read
     in Arrow batches, as ``pyogrio.read_arrow`` reads them, and ``count(done,
     total)`` is told the features read after each.
     """
@@ -103,7 +104,8 @@ def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[i
         if name not in table.column_names:
             raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
         wkb = table[name]
-        frame = _frame(table.drop_columns([name]), wkb, meta["crs"])
+        frame = (_frame(table.drop_columns([name]), wkb, meta["crs"]) if geometry
+                 else table.drop_columns([name]).to_pandas(types_mapper=_TEXT))
     except InputError:
         raise
     except Exception as exc:
@@ -117,14 +119,16 @@ def _frame(attributes: pa.Table, wkb: pa.ChunkedArray, crs) -> gpd.GeoDataFrame:
     return gpd.GeoDataFrame(attributes.to_pandas(types_mapper=_TEXT), geometry=gpd.GeoSeries(geometry, crs=crs))
 
 
-def _read_database(src, key: str, wanted: dict[str, str], count=None, columns: list[str] | None = None
-                   ) -> tuple[gpd.GeoDataFrame, pa.ChunkedArray, CRS, str, str]:
+def _read_database(src, key: str, wanted: dict[str, str], count=None, columns: list[str] | None = None,
+                   geometry: bool = True) -> tuple[pd.DataFrame, pa.ChunkedArray, CRS, str, str]:
     """A layer from a database (:mod:`geopress.io.postgis`), its ``wanted`` fields checked and its ``columns``
-    read: the frame, its WKB, its CRS, its name, and where it is."""
+    read: the frame (with its geometries unless not ``geometry``, as :func:`read_layer`), its WKB, its CRS, its
+    name, and where it is."""
     from . import postgis
 
     got = postgis.read_source(src, key, wanted, count=count, columns=columns)
-    return _frame(got.table, got.wkb, got.crs), got.wkb, got.crs, got.name, got.where
+    frame = _frame(got.table, got.wkb, got.crs) if geometry else got.table.to_pandas(types_mapper=_TEXT)
+    return frame, got.wkb, got.crs, got.name, got.where
 
 
 def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
@@ -152,15 +156,15 @@ class Customers:
     """The customers layer reduced to what a run needs.
 
     ``frame`` has the id field, mail and letter fields and floors (pandas' nullable
-    Int64, so the layer written keeps an integer field; missing where unknown) and
-    a point geometry in the layer's CRS; rows without a usable geometry have a
-    None geometry and ``has_geometry`` False. ``x``/``y`` are the point
-    coordinates (NaN where there is none). ``wkb`` is the frame's geometries
-    as the file's WKB when they are exactly the file's (every one a 2D point
-    or missing), for writers to pass through; None otherwise.
+    Int64, so the layer written keeps an integer field; missing where unknown), and
+    no geometry: each customer's point in the layer's CRS is ``x``/``y`` (a polygon's
+    point on its surface; NaN where there is no usable geometry, and ``has_geometry``
+    False). ``wkb`` is the points as WKB (null where there is none): the file's own
+    bytes when they are exactly these points (every one a 2D point or missing), for
+    writers to pass through, else encoded from ``x``/``y``.
     """
 
-    frame: gpd.GeoDataFrame
+    frame: pd.DataFrame
     x: np.ndarray
     y: np.ndarray
     has_geometry: np.ndarray
@@ -168,7 +172,7 @@ class Customers:
     layer: str
     from_polygons: int
     no_geometry: int
-    wkb: pa.ChunkedArray | None = None
+    wkb: pa.ChunkedArray | pa.Array
 
 
 def _located(path: Path, layer: str, info: dict, key: str) -> None:
@@ -211,7 +215,8 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
                                   *([cfg.floors_field] if cfg.floors_field else []),
                                   *(cfg.letter_fields if mail else ())]))
     if cfg.database is not None:
-        df, wkb, crs, layer, path = _read_database(cfg.database, "customers", wanted, count=count, columns=columns)
+        df, wkb, crs, layer, path = _read_database(cfg.database, "customers", wanted, count=count, columns=columns,
+                                                   geometry=False)
     else:
         path = cfg.path
         layer = resolve_layer(path, cfg.layer, "customers")
@@ -221,7 +226,8 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
         crs = _crs(path, layer, info["crs"])
         if info["features"] == 0:
             raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
-        df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None)
+        df, wkb = read_layer(path, layer, columns, count=count, total=info["features"] if info["features"] >= 0 else None,
+                             geometry=False)
     if len(df) == 0:
         raise InputError(f"layer '{layer}' (from customers.layer) has no features; check the export that wrote it", path=path, key="customers.layer")
 
@@ -259,25 +265,13 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
             )
         floors = vals
 
-    geom = df.geometry.to_numpy()
-    types = np.asarray(shapely.get_type_id(geom))
-    missing = shapely.is_missing(geom) | shapely.is_empty(geom)
-    # type ids: 0 Point, 1 LineString, 2 LinearRing, 3 Polygon, 4 MultiPoint, 5 MultiLineString, 6 MultiPolygon, 7 Collection
-    linear = np.isin(types, [1, 2, 5, 7]) & ~missing
-    if linear.any():
-        kinds = sorted({shapely.get_type_id(g) for g in geom[linear]})
-        names = {1: "LineString", 2: "LinearRing", 5: "MultiLineString", 7: "GeometryCollection"}
-        raise InputError(
-            f"layer '{layer}' has {int(linear.sum())} {'/'.join(names[k] for k in kinds)} geometries "
-            f"(customers {_fmt_list(ids[linear].head(5).tolist())}); customers must be points or polygons",
-            path=path,
-            key="geometry",
-        )
-    areal = np.isin(types, [3, 4, 6]) & ~missing
-    points = geom.copy()
-    if areal.any():
-        points[areal] = shapely.point_on_surface(geom[areal])
-    points[missing] = None
+    located = _locate(wkb, ids, path, layer)
+    frame = df
+    if cfg.floors_field:
+        # whole numbers (checked above) as a nullable integer column: written as an INTEGER field
+        unknown = np.isnan(floors)
+        frame[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
+    missing = ~located.has
     if missing.any():
         warnings.warn(
             f"{path}: {int(missing.sum())} customers have no geometry (e.g. {_fmt_list(ids[missing].head(5).tolist())}); "
@@ -285,26 +279,89 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
             GeometryWarning,
             stacklevel=2,
         )
-    x = np.full(len(df), np.nan)
-    y = np.full(len(df), np.nan)
-    has = ~missing
-    x[has] = shapely.get_x(points[has])
-    y[has] = shapely.get_y(points[has])
-    frame = gpd.GeoDataFrame(df.drop(columns="geometry"), geometry=gpd.GeoSeries(points, crs=crs), crs=crs)
-    if cfg.floors_field:
-        # whole numbers (checked above) as a nullable integer column: written as an INTEGER field
-        unknown = np.isnan(floors)
-        frame[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
-    log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer, int(areal.sum()), int(missing.sum()))
+    log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer,
+             located.from_polygons, int(missing.sum()))
+    return Customers(
+        frame=frame, x=located.x, y=located.y, has_geometry=located.has, crs=crs, layer=layer,
+        from_polygons=located.from_polygons, no_geometry=int(missing.sum()),
+        wkb=wkb if located.unchanged else points_wkb(located.x, located.y),
+    )
+
+
+#: features whose WKB is made into shapely geometries at a time: a customer is kept as its point's coordinates,
+#: not as a shapely object (about 200 bytes each)
+GEOMETRY_CHUNK = 262_144
+
+
+@dataclass(frozen=True)
+class _Located:
+    """Each customer's point (``x``/``y``, NaN where ``has`` is False), how many came from polygons, and whether
+    the file's WKB already holds exactly these points."""
+
+    x: np.ndarray
+    y: np.ndarray
+    has: np.ndarray
+    from_polygons: int
+    unchanged: bool
+
+
+def _locate(wkb: pa.ChunkedArray, ids: pd.Series, path: Path, layer: str) -> _Located:
+    """The customers' points from their WKB, :data:`GEOMETRY_CHUNK` features at a time: a point as it is, a
+    polygon's shapely ``point_on_surface``, none for a missing or empty geometry; lines are refused."""
+    n = len(wkb)
+    x, y, has = np.full(n, np.nan), np.full(n, np.nan), np.zeros(n, dtype=bool)
+    linear_rows, kinds, polygons, emptied = [], set(), 0, False
+    for start in range(0, n, GEOMETRY_CHUNK):
+        geom = shapely.from_wkb(wkb.slice(start, GEOMETRY_CHUNK).to_numpy(zero_copy_only=False))
+        types = np.asarray(shapely.get_type_id(geom))
+        missing = shapely.is_missing(geom) | shapely.is_empty(geom)
+        emptied |= bool((missing & ~shapely.is_missing(geom)).any())
+        # type ids: 0 Point, 1 LineString, 2 LinearRing, 3 Polygon, 4 MultiPoint, 5 MultiLineString, 6 MultiPolygon,
+        # 7 Collection
+        linear = np.isin(types, [1, 2, 5, 7]) & ~missing
+        if linear.any():
+            linear_rows.append(start + np.flatnonzero(linear))
+            kinds |= set(types[linear].tolist())
+        areal = np.isin(types, [3, 4, 6]) & ~missing
+        polygons += int(areal.sum())
+        if areal.any():
+            geom[areal] = shapely.point_on_surface(geom[areal])
+        at = slice(start, start + geom.size)
+        has[at] = ~missing
+        x[at][~missing] = shapely.get_x(geom[~missing])
+        y[at][~missing] = shapely.get_y(geom[~missing])
+    if linear_rows:
+        rows = np.concatenate(linear_rows)
+        names = {1: "LineString", 2: "LinearRing", 5: "MultiLineString", 7: "GeometryCollection"}
+        raise InputError(
+            f"layer '{layer}' has {rows.size} {'/'.join(names[k] for k in sorted(kinds))} geometries "
+            f"(customers {_fmt_list(ids.iloc[rows[:5]].tolist())}); customers must be points or polygons",
+            path=path,
+            key="geometry",
+        )
     # the file's WKB is what shapely would encode only for 2D points: 21 bytes each (byte order, type and
     # two doubles, as OGC's WKB lays them out), none where missing; an empty point became missing above
     lengths = pc.binary_length(wkb)
     two_d = pc.all(pc.or_kleene(pc.equal(lengths, 21), pc.is_null(lengths))).as_py()
-    unchanged = two_d and not areal.any() and not (missing & ~shapely.is_missing(geom)).any()
-    return Customers(
-        frame=frame, x=x, y=y, has_geometry=has, crs=crs, layer=layer, from_polygons=int(areal.sum()),
-        no_geometry=int(missing.sum()), wkb=wkb if unchanged else None,
-    )
+    return _Located(x=x, y=y, has=has, from_polygons=polygons, unchanged=bool(two_d) and not polygons and not emptied)
+
+
+#: a 2D point's WKB, as OGC's Simple Features lay it out: byte order (1, little-endian), type (1, Point), x, y
+_POINT_WKB = np.dtype([("order", "u1"), ("type", "<u4"), ("x", "<f8"), ("y", "<f8")])
+
+
+def points_wkb(x: np.ndarray, y: np.ndarray) -> pa.Array:
+    """2D points as WKB, null where ``x`` or ``y`` is NaN: the bytes shapely's ``to_wkb`` gives, made without a
+    geometry object per point."""
+    x, y = np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64)
+    has = ~(np.isnan(x) | np.isnan(y))
+    records = np.zeros(int(has.sum()), dtype=_POINT_WKB)
+    records["order"], records["type"], records["x"], records["y"] = 1, 1, x[has], y[has]
+    offsets = np.zeros(x.size + 1, dtype=np.int32)
+    np.cumsum(np.where(has, _POINT_WKB.itemsize, 0), out=offsets[1:])
+    validity = pa.array(has).buffers()[1]
+    return pa.Array.from_buffers(pa.binary(), x.size, [validity, pa.py_buffer(offsets), pa.py_buffer(records)],
+                                 null_count=int(x.size - has.sum()))
 
 
 @dataclass
