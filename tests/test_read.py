@@ -10,6 +10,8 @@ import pyarrow as pa
 import pyogrio
 import pytest
 import shapely
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from conftest import customer_records, write_layer
 from geopress.config import CustomersConfig
@@ -72,3 +74,30 @@ def test_a_point_with_an_m_value_is_not_passed_through(tmp_path):
                         crs="EPSG:32631")
     cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account"))
     assert cust.wkb.to_pylist() == [shapely.to_wkb(POINT), shapely.to_wkb(shapely.Point(1, 2))]
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(st.floats(-1e7, 1e7), st.floats(-1e7, 1e7)) | st.just((np.nan, np.nan)), max_size=20))
+def test_points_wkb_is_what_shapely_encodes(xy):
+    # shapely's to_wkb (GEOS's writer) is the reference for a 2D point's bytes; null where there is no point
+    x = np.array([p[0] for p in xy], dtype=float)
+    y = np.array([p[1] for p in xy], dtype=float)
+    expected = [None if np.isnan(a) else shapely.to_wkb(shapely.Point(a, b)) for a, b in zip(x, y)]
+    assert vector_io.points_wkb(x, y).to_pylist() == expected
+
+
+@pytest.mark.filterwarnings("ignore::geopress.errors.GeometryWarning")  # the missing one is reported
+def test_customers_decoded_a_chunk_at_a_time_are_the_same(tmp_path, monkeypatch):
+    geoms = [POINT, shapely.box(0, 0, 2, 2), None, shapely.Point(), shapely.Point(30, 40, 5), shapely.Point(7, 8),
+             shapely.MultiPolygon([shapely.box(5, 5, 6, 6)])]
+    path = write_layer(tmp_path / "c.gpkg", "parcels", customer_records([0] * 7, [0] * 7), geoms)
+    cfg = CustomersConfig(path=path, layer="parcels", id_field="account")
+    whole = vector_io.read_customers(cfg)
+    monkeypatch.setattr(vector_io, "GEOMETRY_CHUNK", 2)
+    chunked = vector_io.read_customers(cfg)
+    np.testing.assert_array_equal(chunked.x, whole.x)
+    np.testing.assert_array_equal(chunked.y, whole.y)
+    assert chunked.wkb.to_pylist() == whole.wkb.to_pylist()
+    assert (chunked.from_polygons, chunked.no_geometry) == (whole.from_polygons, whole.no_geometry) == (2, 2)
+    on_surface = shapely.point_on_surface(geoms[1])
+    assert (whole.x[1], whole.y[1]) == (on_surface.x, on_surface.y)

@@ -7,7 +7,10 @@ import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from geopress.zones import Overlap, assign, overlaps, repair
+from pyproj import CRS
+
+from geopress import zones as zones_mod
+from geopress.zones import Overlap, assign, assign_xy, overlaps, repair
 
 WEST = shapely.box(0, 0, 10, 10)
 EAST = shapely.box(10, 0, 20, 10)
@@ -80,6 +83,23 @@ def test_every_point_gets_at_most_one_zone_by_the_rule(grid_points, west_first):
             assert z == 1
         else:
             assert z == -1
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(st.tuples(st.integers(-2, 22), st.integers(-2, 12)), max_size=30), st.integers(1, 7))
+def test_points_assigned_a_chunk_at_a_time_get_the_zones_of_all_at_once(grid_points, chunk):
+    # assign_xy makes its shapely points a chunk at a time; the answer is assign's on every point (rows of NaN,
+    # a customer without a location, among them)
+    xy = np.array(grid_points + [(np.nan, np.nan)], dtype=float)
+    crs = CRS.from_epsg(32631)
+    whole = assign(shapely.points(xy), [WEST, EAST], [0, 1])
+    saved = zones_mod.POINTS_AT_A_TIME
+    zones_mod.POINTS_AT_A_TIME = chunk
+    try:
+        got = assign_xy(xy[:, 0], xy[:, 1], crs, [WEST, EAST], crs, [0, 1])
+    finally:
+        zones_mod.POINTS_AT_A_TIME = saved
+    assert got.tolist() == whole.tolist()
 
 
 def test_overlaps_reports_overlapping_pairs_not_touching_ones():
