@@ -143,7 +143,7 @@ def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], 
     from scipy.sparse import coo_array
     from scipy.sparse.csgraph import connected_components
 
-    sets = [np.unique(np.column_stack([x, y]), axis=0, return_inverse=True) for x, y in points]
+    sets = [_places(x, y) for x, y in points]
     strips = [(i, lo, hi) for i, (places, _) in enumerate(sets) for lo, hi in _strips(places[:, 0], distance_ft)]
     strips.sort(key=lambda t: t[1] - t[2])  # the largest first
 
@@ -171,6 +171,17 @@ def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], 
         rank[np.argsort(first)] = np.arange(first.size)
         out.append(rank[labels])
     return out
+
+
+def _places(x: NDArray[np.float64], y: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
+    """The distinct places of points ``x``/``y``, sorted by x then y, and each point's index among them: numpy's
+    ``unique(axis=0, return_inverse=True)`` of the pairs, by a lexsort (1,600,000 points: 0.7 s against 1.7 s)."""
+    order = np.lexsort((y, x))
+    xs, ys = x[order], y[order]
+    new = np.r_[True, (xs[1:] != xs[:-1]) | (ys[1:] != ys[:-1])] if x.size else np.zeros(0, dtype=bool)
+    at = np.empty(x.size, dtype=np.intp)
+    at[order] = np.cumsum(new) - 1
+    return np.column_stack([xs[new], ys[new]]), at
 
 
 def _strips(x: NDArray[np.float64], distance_ft: float) -> list[tuple[int, int]]:

@@ -205,3 +205,14 @@ def test_degenerate_points_cluster_as_dbscan_does(x, y):
         assert got.size == 0
         return
     assert_same_partition(got, dbscan_labels(x, y, 15.0))
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(grid | anywhere | st.just(-0.0), grid | anywhere), max_size=40))
+def test_places_are_numpys_unique_pairs(points):
+    # numpy's unique(axis=0, return_inverse=True), a general-purpose reference, on shared places and -0.0
+    xy = np.array(points, dtype=float).reshape(-1, 2)
+    places, at = targets._places(xy[:, 0], xy[:, 1])
+    want, inverse = np.unique(xy, axis=0, return_inverse=True)
+    np.testing.assert_array_equal(places, want.reshape(-1, 2))
+    np.testing.assert_array_equal(at, inverse.ravel())
