@@ -165,9 +165,17 @@ def verification_list(customers: pd.DataFrame, rated: Mapping[str, tuple[ArrayLi
 
 def zone_counts(zone: ArrayLike, confidence: ArrayLike, zones: Sequence[str]) -> pd.DataFrame:
     """Per zone of ``zones``: ``n_firm``, ``n_borderline``, ``n_near_limit``, ``n_clear``, ``n_unrated``."""
-    frame = pd.DataFrame({"zone": pd.array(zone, dtype="str"), "confidence": pd.array(confidence, dtype="str")})
-    counts = frame.dropna().groupby(["zone", "confidence"]).size()
+    # factorized (a categorical's codes as they are), then counted per pair of codes: no text per customer
+    zone_code, zone_names = pd.factorize(pd.Series(zone))
+    class_code, class_names = pd.factorize(pd.Series(confidence))
+    both = (zone_code >= 0) & (class_code >= 0)
+    per = np.bincount(zone_code[both] * len(class_names) + class_code[both],
+                      minlength=len(zone_names) * len(class_names)).reshape(len(zone_names), len(class_names))
+    at_zone = {str(z): i for i, z in enumerate(zone_names)}
+    at_class = {str(c): j for j, c in enumerate(class_names)}
     rows = []
     for z in zones:
-        rows.append({"zone": z, **{f"n_{c}": int(counts.get((z, c), 0)) for c in CLASSES}})
+        i = at_zone.get(z)
+        rows.append({"zone": z, **{f"n_{c}": int(per[i, at_class[c]]) if i is not None and c in at_class else 0
+                                   for c in CLASSES}})
     return pd.DataFrame(rows)

@@ -178,3 +178,20 @@ def test_firm_only_is_decided_per_finding():
     assert lists["upper_floors"].empty
     every = mailing_lists(customers, id_field="account", mail_fields=["owner"], rated=rated)
     assert every["upper_floors"]["confidence"].tolist() == ["borderline"]
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from(["East", "West", "Hill", None]), st.sampled_from([*cf.CLASSES, None])),
+                max_size=40), st.booleans())
+def test_zone_counts_are_pandas_crosstab(rows, categorical):
+    # pandas' crosstab of the texts (missing ones left out) is the reference; the run gives categoricals
+    zone = pd.array([z for z, _ in rows], dtype="str")
+    conf = pd.array([c for _, c in rows], dtype="str")
+    if categorical:
+        zone, conf = pd.Categorical(zone), pd.Categorical(conf)
+    got = cf.zone_counts(zone, conf, ["West", "East", "Nowhere"])
+    table = pd.crosstab(pd.Series(zone, dtype=object), pd.Series(conf, dtype=object))
+    for _, row in got.iterrows():
+        for c in cf.CLASSES:
+            want = int(table.loc[row["zone"], c]) if row["zone"] in table.index and c in table.columns else 0
+            assert row[f"n_{c}"] == want
