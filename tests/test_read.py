@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import struct
+from unittest import mock
 
 import numpy as np
 import pandas as pd
@@ -101,3 +102,36 @@ def test_customers_decoded_a_chunk_at_a_time_are_the_same(tmp_path, monkeypatch)
     assert (chunked.from_polygons, chunked.no_geometry) == (whole.from_polygons, whole.no_geometry) == (2, 2)
     on_surface = shapely.point_on_surface(geoms[1])
     assert (whole.x[1], whole.y[1]) == (on_surface.x, on_surface.y)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(-1e7, 1e7), st.floats(-1e7, 1e7)) | st.just(None) | st.just("empty"),
+                min_size=1, max_size=30), st.integers(1, 5))
+def test_plain_points_read_from_the_bytes_are_shapelys(items, chunk):
+    # shapely's reading of the same WKB (GEOS's reader) is the reference: a null is no point, and so is an empty
+    # point, which WKB gives as NaN, NaN
+    geoms = [None if g is None else shapely.Point() if g == "empty" else shapely.Point(*g) for g in items]
+    wkb = pa.chunked_array([pa.array(shapely.to_wkb(np.array(geoms, dtype=object)), type=pa.binary())])
+    ids = pd.Series([f"C{i}" for i in range(len(geoms))])
+    assert vector_io._plain_points(wkb) is not None  # read from the bytes
+    saved = vector_io.GEOMETRY_CHUNK
+    vector_io.GEOMETRY_CHUNK = chunk
+    try:
+        fast = vector_io._locate(wkb, ids, "c.gpkg", "parcels")
+        with mock.patch.object(vector_io, "_plain_points", return_value=None):
+            slow = vector_io._locate(wkb, ids, "c.gpkg", "parcels")
+    finally:
+        vector_io.GEOMETRY_CHUNK = saved
+    np.testing.assert_array_equal(fast.x, slow.x)
+    np.testing.assert_array_equal(fast.y, slow.y)
+    np.testing.assert_array_equal(fast.has, slow.has)
+    assert fast.unchanged == slow.unchanged == ("empty" not in items)
+    assert fast.has.tolist() == [isinstance(g, tuple) for g in items]
+
+
+def test_other_wkb_is_left_to_shapely():
+    # big-endian (byte order 0) and a 3D point: not read from the bytes
+    big_endian = struct.pack(">BIdd", 0, 1, 1.0, 2.0)
+    assert vector_io._plain_points(pa.array([big_endian, None])) is None
+    assert vector_io._plain_points(pa.array([shapely.to_wkb(shapely.Point(1, 2, 3))])) is None
+    assert vector_io._plain_points(pa.array([shapely.to_wkb(shapely.box(0, 0, 1, 1))])) is None

@@ -305,10 +305,43 @@ class _Located:
     unchanged: bool
 
 
+def _plain_points(wkb: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray] | None:
+    """``x``/``y`` (NaN where null) read straight from the bytes when every geometry is null or a little-endian 2D
+    point (21 bytes: byte order 1, type 1, x, y, as OGC's WKB lays them out), as GDAL gives a point layer; None
+    otherwise. No shapely object, nor a Python bytes object, per feature."""
+    x, y = np.full(len(wkb), np.nan), np.full(len(wkb), np.nan)
+    chunks = wkb.chunks if isinstance(wkb, pa.ChunkedArray) else [wkb]
+    at = 0
+    for chunk in chunks:
+        for start in range(0, len(chunk), GEOMETRY_CHUNK):
+            part = chunk.slice(start, GEOMETRY_CHUNK).cast(pa.large_binary())
+            lengths = pc.binary_length(part).to_numpy(zero_copy_only=False)  # NaN where null
+            point = lengths == _POINT_WKB.itemsize
+            if np.count_nonzero(point) != np.count_nonzero(~np.isnan(lengths)):
+                return None
+            offsets = np.frombuffer(part.buffers()[1], dtype=np.int64, count=len(part) + 1, offset=part.offset * 8)
+            records = np.frombuffer(part.buffers()[2], dtype=np.uint8)[
+                offsets[:-1][point][:, None] + np.arange(_POINT_WKB.itemsize)].copy().view(_POINT_WKB).ravel()
+            if not ((records["order"] == 1) & (records["type"] == 1)).all():
+                return None
+            rows = at + np.flatnonzero(point)
+            x[rows], y[rows] = records["x"], records["y"]
+            at += len(part)
+    return x, y
+
+
 def _locate(wkb: pa.ChunkedArray, ids: pd.Series, path: Path, layer: str) -> _Located:
     """The customers' points from their WKB, :data:`GEOMETRY_CHUNK` features at a time: a point as it is, a
-    polygon's shapely ``point_on_surface``, none for a missing or empty geometry; lines are refused."""
+    polygon's shapely ``point_on_surface``, none for a missing or empty geometry (or a coordinate NaN); lines are
+    refused. A layer of plain 2D points is read from the bytes (:func:`_plain_points`)."""
     n = len(wkb)
+    plain = _plain_points(wkb)
+    if plain is not None:
+        x, y = plain
+        has = ~(np.isnan(x) | np.isnan(y))
+        # an empty point is stored as NaN, NaN: it becomes missing, so the file's bytes are not the points
+        unchanged = bool(np.count_nonzero(has) == n - wkb.null_count)
+        return _Located(x=x, y=y, has=has, from_polygons=0, unchanged=unchanged)
     x, y, has = np.full(n, np.nan), np.full(n, np.nan), np.zeros(n, dtype=bool)
     linear_rows, kinds, polygons, emptied = [], set(), 0, False
     for start in range(0, n, GEOMETRY_CHUNK):
@@ -327,9 +360,10 @@ def _locate(wkb: pa.ChunkedArray, ids: pd.Series, path: Path, layer: str) -> _Lo
         if areal.any():
             geom[areal] = shapely.point_on_surface(geom[areal])
         at = slice(start, start + geom.size)
-        has[at] = ~missing
         x[at][~missing] = shapely.get_x(geom[~missing])
         y[at][~missing] = shapely.get_y(geom[~missing])
+        has[at] = ~(np.isnan(x[at]) | np.isnan(y[at]))
+        emptied |= bool((has[at] != ~missing).any())  # a point with a NaN coordinate is none either
     if linear_rows:
         rows = np.concatenate(linear_rows)
         names = {1: "LineString", 2: "LinearRing", 5: "MultiLineString", 7: "GeometryCollection"}
