@@ -654,8 +654,8 @@ CHANGED = tuple(c for c in CHANGES if c not in ("unchanged", "removed"))
 
 def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> dict[str, write_io.Layer]:
     """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows in an Arrow file;
-    else the frame, with the file's WKB when it has it: see write_io.Encoded), then the flagged layers
-    and ``changes``, views of it (see write_io.View)."""
+    else the frame with its points' WKB: see write_io.Encoded), then the flagged layers and ``changes``,
+    views of it (see write_io.View)."""
     customers, x, y = result.customers, result.points.x, result.points.y
     layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
     for finding, name in cls.FLAGGED_LAYERS.items():
