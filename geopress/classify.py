@@ -108,12 +108,8 @@ def names_at(names: Sequence[str], index: ArrayLike, valid: ArrayLike | None = N
     codes = of_name[np.asarray(index, dtype=np.intp)] if len(names) else np.zeros(np.shape(index), dtype=np.intp)
     if valid is not None:
         codes = np.where(np.asarray(valid, dtype=bool), codes, -1)
-    return pd.Categorical.from_codes(codes.astype(_code_type(distinct.size)), categories=pd.Index(distinct, dtype="str"))
-
-
-def _code_type(n: int) -> type[np.signedinteger]:
-    """The smallest signed integer type that numbers ``n`` categories and -1 for missing."""
-    return next(t for t in (np.int8, np.int16, np.int32, np.int64) if n < np.iinfo(t).max)
+    # pandas keeps the codes in the smallest integer type that numbers the categories
+    return pd.Categorical.from_codes(codes, categories=pd.Index(distinct, dtype="str"))
 
 
 def status_names(codes: ArrayLike) -> pd.Categorical:
