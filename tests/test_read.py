@@ -114,14 +114,10 @@ def test_plain_points_read_from_the_bytes_are_shapelys(items, chunk):
     wkb = pa.chunked_array([pa.array(shapely.to_wkb(np.array(geoms, dtype=object)), type=pa.binary())])
     ids = pd.Series([f"C{i}" for i in range(len(geoms))])
     assert vector_io._plain_points(wkb) is not None  # read from the bytes
-    saved = vector_io.GEOMETRY_CHUNK
-    vector_io.GEOMETRY_CHUNK = chunk
-    try:
+    with mock.patch.object(vector_io, "GEOMETRY_CHUNK", chunk):
         fast = vector_io._locate(wkb, ids, "c.gpkg", "parcels")
         with mock.patch.object(vector_io, "_plain_points", return_value=None):
             slow = vector_io._locate(wkb, ids, "c.gpkg", "parcels")
-    finally:
-        vector_io.GEOMETRY_CHUNK = saved
     np.testing.assert_array_equal(fast.x, slow.x)
     np.testing.assert_array_equal(fast.y, slow.y)
     np.testing.assert_array_equal(fast.has, slow.has)

@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+from unittest import mock
+
 import numpy as np
 import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
 from pyproj import CRS
 
 from geopress import zones as zones_mod
@@ -93,12 +94,8 @@ def test_points_assigned_a_chunk_at_a_time_get_the_zones_of_all_at_once(grid_poi
     xy = np.array(grid_points + [(np.nan, np.nan)], dtype=float)
     crs = CRS.from_epsg(32631)
     whole = assign(shapely.points(xy), [WEST, EAST], [0, 1])
-    saved = zones_mod.POINTS_AT_A_TIME
-    zones_mod.POINTS_AT_A_TIME = chunk
-    try:
+    with mock.patch.object(zones_mod, "POINTS_AT_A_TIME", chunk):
         got = assign_xy(xy[:, 0], xy[:, 1], crs, [WEST, EAST], crs, [0, 1])
-    finally:
-        zones_mod.POINTS_AT_A_TIME = saved
     assert got.tolist() == whole.tolist()
 
 

@@ -266,11 +266,10 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
         floors = vals
 
     located = _locate(wkb, ids, path, layer)
-    frame = df
     if cfg.floors_field:
         # whole numbers (checked above) as a nullable integer column: written as an INTEGER field
         unknown = np.isnan(floors)
-        frame[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
+        df[cfg.floors_field] = pd.arrays.IntegerArray(np.where(unknown, 0, floors).astype(np.int64), unknown)
     missing = ~located.has
     if missing.any():
         warnings.warn(
@@ -282,7 +281,7 @@ def read_customers(cfg: CustomersConfig, *, mail: bool = True,
     log.info("read %d customers from %s layer %s (%d polygons, %d without geometry)", len(df), path, layer,
              located.from_polygons, int(missing.sum()))
     return Customers(
-        frame=frame, x=located.x, y=located.y, has_geometry=located.has, crs=crs, layer=layer,
+        frame=df, x=located.x, y=located.y, has_geometry=located.has, crs=crs, layer=layer,
         from_polygons=located.from_polygons, no_geometry=int(missing.sum()),
         wkb=wkb if located.unchanged else points_wkb(located.x, located.y),
     )
@@ -376,7 +375,7 @@ def _locate(wkb: pa.ChunkedArray, ids: pd.Series, path: Path, layer: str) -> _Lo
     # the file's WKB is what shapely would encode only for 2D points: 21 bytes each (byte order, type and
     # two doubles, as OGC's WKB lays them out), none where missing; an empty point became missing above
     lengths = pc.binary_length(wkb)
-    two_d = pc.all(pc.or_kleene(pc.equal(lengths, 21), pc.is_null(lengths))).as_py()
+    two_d = pc.all(pc.or_kleene(pc.equal(lengths, _POINT_WKB.itemsize), pc.is_null(lengths))).as_py()
     return _Located(x=x, y=y, has=has, from_polygons=polygons, unchanged=bool(two_d) and not polygons and not emptied)
 
 
