@@ -111,27 +111,41 @@ def _inward(fix: Fix) -> Fix:
 #: :func:`cluster_labels`), which bounds qhull's memory (about 700 bytes a place) and keeps every core busy
 STRIP_PLACES = 200_000
 
+#: the offsets (columns, rows) of the cells that can hold a point within the distance of a point of a given cell,
+#: one of each opposite pair (cells are a hair smaller than the distance over sqrt 2: see :class:`_Grid`)
+_NEIGHBOURS = [(0, 1), (0, 2)] + [(a, b) for a in (1, 2) for b in range(-2, 3)]
+#: eight directions, counterclockwise from +x, in which each cell's extreme points are found
+_DIRECTIONS = [(1, 0), (1, 1), (0, 1), (-1, 1), (-1, 0), (-1, -1), (0, -1), (1, -1)]
+#: the most points of pairs of cells examined at once when choosing the points for the triangulation
+_NEAR_CHUNK = 1 << 22
+
 
 def cluster_labels(x_ft: NDArray[np.float64], y_ft: NDArray[np.float64], distance_ft: float) -> NDArray[np.intp]:
     """Single-linkage labels of points in ft at ``distance_ft``: two points at most ``distance_ft`` apart share one,
     and so does a chain of them (DBSCAN's with ``min_samples = 1``). Labels count from 0 in order of each
-    cluster's first point.
+    cluster's first point. The coordinates must be finite.
 
-    The clusters are the connected components of the Delaunay triangulation's edges no longer than
-    ``distance_ft`` (scipy's qhull and csgraph). A Euclidean minimum spanning tree lies within the relative
-    neighbourhood graph, which lies within the Delaunay triangulation, and any two points at most ``distance_ft``
-    apart are joined by its path, whose every edge is at most that long: so the components are exactly those of the
-    points within ``distance_ft`` of each other. The triangulation gives about three edges a point whatever the
-    density, where a neighbour search finds every point within the distance (hundreds a customer in a dense
-    subdivision).
+    The points are first binned in square cells a hair smaller than ``distance_ft / sqrt(2)``, so the points of
+    one cell are all within the distance of each other and belong to one cluster. Two cells are linked when a
+    point of one is within the distance of a point of the other; only cells at most two columns and two rows
+    apart can be. A pair is settled at once when the boxes of their points are farther apart than the distance
+    (not linked), or when two of their extreme points (in the eight directions facing each other) are within it
+    (linked). Pairs still open whose cells are not yet joined by settled links are decided by the Delaunay
+    triangulation of the points that can matter, those within the distance of the other cell's box, and the
+    clusters are the connected components of the cells and their links (scipy's csgraph). In a dense
+    subdivision almost every pair is settled by its extreme points, and few points are triangulated.
 
-    Points at one place are triangulated once. More than :data:`STRIP_PLACES` places are split by x into strips
-    of that many, each triangulated with the places within ``distance_ft`` of it on either side: a spanning-tree
-    edge no longer than the distance has both ends in the widened strip of its left end, and stays an edge of
-    that strip's relative neighbourhood graph (the lune between its ends is empty of all points, so of the
-    strip's), hence of its triangulation; every edge kept joins two points within the distance. When qhull cannot
-    triangulate a set (fewer than three places, all on a line) or leaves a place out as too close to another for
-    its precision, the pairs within the distance come from a k-d tree instead.
+    The triangulation's edges no longer than ``distance_ft`` decide the open pairs exactly: a Euclidean minimum
+    spanning tree lies within the relative neighbourhood graph, which lies within the Delaunay triangulation, and
+    any two of the triangulated points at most ``distance_ft`` apart (the closest points of an open pair that is
+    linked are among them) are joined by its path, whose every edge is at most that long and joins two linked
+    cells. Points at one place are triangulated once. More than :data:`STRIP_PLACES` places are split by x into
+    strips of that many, each triangulated with the places within ``distance_ft`` of it on either side: a
+    spanning-tree edge no longer than the distance has both ends in the widened strip of its left end, and stays
+    an edge of that strip's relative neighbourhood graph (the lune between its ends is empty of all points, so of
+    the strip's), hence of its triangulation. When qhull cannot triangulate a set (fewer than three places, all
+    on a line) or leaves a place out as too close to another for its precision, the pairs within the distance
+    come from a k-d tree instead.
     """
     return _cluster_all([(x_ft, y_ft)], distance_ft)[0]
 
@@ -140,10 +154,8 @@ def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], 
                  ) -> list[NDArray[np.intp]]:
     """:func:`cluster_labels` of each set of points, in order. qhull releases the GIL, so the strips of every set
     are triangulated in threads, one per core, the largest first (scripts/README.md)."""
-    from scipy.sparse import coo_array
-    from scipy.sparse.csgraph import connected_components
-
-    sets = [_places(x, y) for x, y in points]
+    grids = [_Grid(np.column_stack([x, y]), distance_ft) for x, y in points]
+    sets = [_places(g.xy[g.open, 0], g.xy[g.open, 1]) for g in grids]
     strips = [(i, lo, hi) for i, (places, _) in enumerate(sets) for lo, hi in _strips(places[:, 0], distance_ft)]
     strips.sort(key=lambda t: t[1] - t[2])  # the largest first
 
@@ -160,17 +172,145 @@ def _cluster_all(points: list[tuple[NDArray[np.float64], NDArray[np.float64]]], 
     else:
         found = [short(t) for t in strips]
     out = []
-    for i, (places, at) in enumerate(sets):
+    for i, (g, (places, at)) in enumerate(zip(grids, sets)):
         edges = np.concatenate([e for (j, _, _), e in zip(strips, found) if j == i] or [np.zeros((0, 2), np.intp)])
-        n = places.shape[0]
-        graph = coo_array((np.ones(len(edges), dtype=np.int8), (edges[:, 0], edges[:, 1])), shape=(n, n))
-        labels = connected_components(graph, directed=False)[1][at.ravel()] if n else np.zeros(0, dtype=np.intp)
+        # a point at each place, and the cells its edges link
+        point = np.empty(places.shape[0], dtype=np.intp)
+        point[at] = g.open
+        labels = g.cluster(g.cell[point[edges]])
         # renumbered in order of each cluster's first point
         _, first = np.unique(labels, return_index=True)
         rank = np.empty(first.size, dtype=np.intp)
         rank[np.argsort(first)] = np.arange(first.size)
         out.append(rank[labels])
     return out
+
+
+def _components(n: int, edges: NDArray[np.intp]) -> NDArray[np.intp]:
+    """The connected component of each of ``n`` nodes joined by ``edges`` (pairs of node indices)."""
+    from scipy.sparse import coo_array
+    from scipy.sparse.csgraph import connected_components
+
+    graph = coo_array((np.ones(len(edges), dtype=np.int8), (edges[:, 0], edges[:, 1])), shape=(n, n))
+    return connected_components(graph, directed=False)[1]
+
+
+class _Grid:
+    """Points ``xy`` binned in cells for :func:`cluster_labels` at ``distance_ft``: each point's ``cell``, the
+    ``links`` between cells settled by their extreme points, and the points (``open``, indices into ``xy``) to
+    triangulate to decide the pairs of cells still open."""
+
+    def __init__(self, xy: NDArray[np.float64], distance_ft: float):
+        self.xy, self.distance_ft = xy, distance_ft
+        n = xy.shape[0]
+        self.links = np.zeros((0, 2), dtype=np.intp)
+        if n == 0:
+            self.cell, self.cells, self.open = np.zeros(0, np.intp), 0, np.zeros(0, np.intp)
+            return
+        # cells a hair smaller than distance / sqrt 2, by more than the rounding of coordinates this large, so two
+        # points in one cell are within the distance as it is measured (from the coordinates as given)
+        margin = distance_ft * 1e-9 + 16.0 * float(np.spacing(np.abs(xy).max()))
+        side = (distance_ft - margin) / np.sqrt(2.0)
+        ij = np.floor((xy - xy.min(axis=0)) / side) if side > 0 else None
+        if ij is None or ij.max() >= 2.0 ** 30:
+            # too many cells to number: a cell a point, all of them triangulated
+            self.cell, self.cells, self.open = np.arange(n), n, np.arange(n)
+            return
+        ij = ij.astype(np.int64)
+        width = int(ij[:, 1].max()) + 5  # a row number off the grid by 2 never lands on another column's cell
+        key = ij[:, 0] * width + ij[:, 1]
+        order = np.argsort(key, kind="stable")
+        sorted_key = key[order]
+        new = np.r_[True, sorted_key[1:] != sorted_key[:-1]]
+        starts = np.flatnonzero(new)
+        self.cells = starts.size
+        in_cell = np.cumsum(new) - 1
+        self.cell = np.empty(n, dtype=np.intp)
+        self.cell[order] = in_cell
+        self.starts, self.counts = starts, np.diff(np.r_[starts, n])
+        xs, ys = xy[order, 0], xy[order, 1]
+        extreme = _extremes(xs, ys, in_cell, starts)
+        self.box = (xs[extreme[4]], ys[extreme[6]], xs[extreme[0]], ys[extreme[2]])  # left, bottom, right, top
+        keys = sorted_key[starts]
+        links, open_pairs = [], []
+        for a, b in _NEIGHBOURS:
+            target = keys + (a * width + b)
+            at = np.minimum(np.searchsorted(keys, target), self.cells - 1)
+            one = np.flatnonzero(keys[at] == target)
+            other = at[one]
+            one, other = self._near_boxes(one, other)
+            linked = self._facing(xs, ys, extreme, one, other, int(np.round(np.arctan2(b, a) / (np.pi / 4))) % 8)
+            links.append(np.column_stack([one[linked], other[linked]]))
+            open_pairs.append(np.column_stack([one[~linked], other[~linked]]))
+        self.links = np.concatenate(links)
+        pairs = np.concatenate(open_pairs)
+        # pairs whose cells are already joined need no triangulation
+        joined = _components(self.cells, self.links)
+        pairs = pairs[joined[pairs[:, 0]] != joined[pairs[:, 1]]]
+        chosen = np.zeros(n, dtype=bool)
+        self._mark_near(chosen, xs, ys, pairs[:, 0], pairs[:, 1])
+        self._mark_near(chosen, xs, ys, pairs[:, 1], pairs[:, 0])
+        self.open = order[chosen]
+
+    def _facing(self, xs: NDArray[np.float64], ys: NDArray[np.float64], extreme: NDArray[np.intp],
+                one: NDArray[np.intp], other: NDArray[np.intp], k: int) -> NDArray[np.bool_]:
+        """Whether cells ``one`` and ``other`` (in direction ``k`` of :data:`_DIRECTIONS` from it) are linked by
+        their extreme points facing each other: in the direction and its two neighbours, and the opposite ones."""
+        linked = np.zeros(one.size, dtype=bool)
+        for ka in (k - 1, k, k + 1):
+            for kb in (k + 3, k + 4, k + 5):
+                p, q = extreme[ka % 8, one], extreme[kb % 8, other]
+                linked |= _length(xs[p] - xs[q], ys[p] - ys[q]) <= self.distance_ft
+        return linked
+
+    def _near_boxes(self, one: NDArray[np.intp], other: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+        """The pairs of cells whose points' boxes are within the distance of each other."""
+        left, bottom, right, top = self.box
+        gap_x = np.maximum(np.maximum(left[other] - right[one], left[one] - right[other]), 0.0)
+        gap_y = np.maximum(np.maximum(bottom[other] - top[one], bottom[one] - top[other]), 0.0)
+        near = _length(gap_x, gap_y) <= self.distance_ft
+        return one[near], other[near]
+
+    def _mark_near(self, chosen: NDArray[np.bool_], xs: NDArray[np.float64], ys: NDArray[np.float64],
+                   one: NDArray[np.intp], other: NDArray[np.intp]) -> None:
+        """Marks in ``chosen`` (by sorted position) the points of each cell ``one`` within the distance of the box
+        of the points of its cell ``other``: only they can be within the distance of one of its points."""
+        left, bottom, right, top = self.box
+        sizes = self.counts[one]
+        ends = np.cumsum(sizes)
+        cuts = np.r_[0, np.flatnonzero(np.diff(ends // _NEAR_CHUNK)) + 1, one.size]
+        for lo, hi in zip(cuts[:-1], cuts[1:]):
+            if lo == hi:
+                continue
+            n_i = sizes[lo:hi]
+            pair = np.repeat(np.arange(lo, hi), n_i)
+            pos = np.arange(n_i.sum()) + np.repeat(self.starts[one[lo:hi]] - (np.cumsum(n_i) - n_i), n_i)
+            o = other[pair]
+            gap_x = np.maximum(np.maximum(left[o] - xs[pos], xs[pos] - right[o]), 0.0)
+            gap_y = np.maximum(np.maximum(bottom[o] - ys[pos], ys[pos] - top[o]), 0.0)
+            chosen[pos[_length(gap_x, gap_y) <= self.distance_ft]] = True
+
+    def cluster(self, more: NDArray[np.intp]) -> NDArray[np.intp]:
+        """Each point's component over the cells, their settled links and the links ``more``."""
+        return _components(self.cells, np.concatenate([self.links, more]))[self.cell]
+
+
+def _extremes(x: NDArray[np.float64], y: NDArray[np.float64], group: NDArray[np.intp],
+              starts: NDArray[np.intp]) -> NDArray[np.intp]:
+    """Each group's extreme point in each of the :data:`_DIRECTIONS` (its first, where several tie), as positions,
+    of points in order of their ``group`` (non-decreasing, from 0, none skipped) that begin at ``starts``."""
+    out = np.empty((len(_DIRECTIONS), starts.size), dtype=np.intp)
+    for k, (a, b) in enumerate(_DIRECTIONS):
+        v = a * x + b * y
+        hit = np.flatnonzero(v == np.maximum.reduceat(v, starts)[group])
+        out[k] = hit[np.r_[True, group[hit][1:] != group[hit][:-1]]]
+    return out
+
+
+def _length(dx: NDArray[np.float64], dy: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The length of ``(dx, dy)``, as every distance here is measured (the same rounding everywhere, and growing
+    with each argument's magnitude, so a box's gap never measures longer than the points' distance it bounds)."""
+    return np.sqrt(dx * dx + dy * dy)
 
 
 def _places(x: NDArray[np.float64], y: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
@@ -213,7 +353,7 @@ def _short_edges(places: NDArray[np.float64], distance_ft: float) -> NDArray[np.
             edges = np.column_stack([np.r_[s[:, 0], s[:, 1], s[:, 2]], np.r_[s[:, 1], s[:, 2], s[:, 0]]])
             # lengths from the coordinates as given, as a neighbour search would measure them
             d = places[edges[:, 0]] - places[edges[:, 1]]
-            return edges[np.sqrt(d[:, 0] * d[:, 0] + d[:, 1] * d[:, 1]) <= distance_ft]
+            return edges[_length(d[:, 0], d[:, 1]) <= distance_ft]
     return cKDTree(places).query_pairs(distance_ft, output_type="ndarray").astype(np.intp).reshape(-1, 2)
 
 
@@ -225,6 +365,31 @@ def _snake(xy: NDArray[np.float64]) -> NDArray[np.intp]:
     left, width = xy[:, 0].min(), np.ptp(xy[:, 0])
     strip = np.minimum((xy[:, 0] - left) / (width or 1.0) * strips, strips - 1).astype(np.intp)
     return np.lexsort((np.where(strip % 2 == 0, xy[:, 1], -xy[:, 1]), strip))
+
+
+def _outline(x: NDArray[np.float64], y: NDArray[np.float64], part: NDArray[np.intp]) -> NDArray[np.bool_]:
+    """Which points can be vertices of the convex hull of their part (``part``: non-decreasing, from 0, none
+    skipped): all but those strictly inside the polygon of the part's extreme points in the eight
+    :data:`_DIRECTIONS` (Akl and Toussaint's heuristic), so the hull of the points kept is the hull of all.
+
+    The extreme points, taken in the directions' order, run counterclockwise round the hull; a point at least
+    1e-9 of the part's extent inside each of the polygon's edges of non-zero length is strictly inside it, far
+    beyond the rounding of the cross products that measure it.
+    """
+    if part.size == 0:
+        return np.zeros(0, dtype=bool)
+    corner = _extremes(x, y, part, np.flatnonzero(np.r_[True, part[1:] != part[:-1]]))
+    extent = np.maximum(x[corner[0]] - x[corner[4]], y[corner[2]] - y[corner[6]])[part]
+    inside = np.ones(x.size, dtype=bool)
+    for k in range(len(_DIRECTIONS)):
+        a, b = corner[k][part], corner[(k + 1) % len(_DIRECTIONS)][part]
+        ex, ey = x[b] - x[a], y[b] - y[a]
+        length = _length(ex, ey)
+        cross = ex * (y - y[a]) - ey * (x - x[a])
+        inside &= (length == 0) | (cross > 1e-9 * length * extent)
+    keep = ~inside
+    keep[corner.ravel()] = True
+    return keep
 
 
 @dataclass
@@ -275,9 +440,10 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
         taken = np.flatnonzero(np.isin(labels, keep))
         part = np.searchsorted(keep, labels[taken])
         by_part = np.argsort(part, kind="stable")  # shapely groups parts given in increasing order
-        members_of = sel[taken[by_part]]
+        members_of, part = sel[taken[by_part]], part[by_part]
+        outline = _outline(x[members_of], y[members_of], part)
         hulls = shapely.buffer(shapely.convex_hull(shapely.multipoints(
-            np.column_stack([x[members_of], y[members_of]]), indices=part[by_part])),
+            np.column_stack([x[members_of[outline]], y[members_of[outline]]]), indices=part[outline])),
             targets.distance_ft / 2.0 * k_to_units)
         for i, label in enumerate(keep):
             rows_i = sel[labels == label]

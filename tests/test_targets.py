@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import contextlib
 from unittest import mock
 
 import numpy as np
 import pytest
 import shapely
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from geopress import targets
@@ -159,10 +160,15 @@ def test_every_customer_is_within_the_window_across_the_range(ground, lo, span):
 
 def dbscan_labels(x, y, distance_ft):
     """The reference: scikit-learn's DBSCAN with ``min_samples = 1`` (single linkage at ``eps``), a
-    general-purpose library from the package registry, brute force so it shares no code path with the triangulation."""
+    general-purpose library from the package registry, on every pairwise distance, so it shares no code path with
+    the triangulation. The distances are scipy's ``cdist``, from the coordinates' differences: scikit-learn's own
+    Euclidean distances expand ``|a|^2 + |b|^2 - 2 a.b``, which at state-plane coordinates (2,000,000 ft) gave
+    25.0 ft^2 for two points 25.00024 ft^2 apart (the example below) and joined them at 5 ft."""
+    from scipy.spatial.distance import cdist
     from sklearn.cluster import DBSCAN
 
-    return DBSCAN(eps=distance_ft, min_samples=1, algorithm="brute").fit_predict(np.column_stack([x, y]))
+    xy = np.column_stack([x, y])
+    return DBSCAN(eps=distance_ft, min_samples=1, metric="precomputed").fit_predict(cdist(xy, xy))
 
 
 def assert_same_partition(a, b):
@@ -181,6 +187,7 @@ anywhere = st.floats(0.0, 200.0, allow_nan=False)
 @given(st.lists(st.tuples(grid | anywhere, grid | anywhere), min_size=1, max_size=60),
        st.sampled_from([5.0, 12.5, 25.0, 60.0]), st.sampled_from([0.0, 2_000_000.0]),
        st.sampled_from([targets.STRIP_PLACES, 3, 7]))
+@example([(0.0, 0.0), (5.0, 0.015625)], 5.0, 2_000_000.0, targets.STRIP_PLACES)  # 5.00002 ft apart: not joined
 def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offset, strip_places):
     xy = np.array(points) + offset
     # strips of 3 or 7 places: the split a set of more than STRIP_PLACES gets, on sets small enough to check
@@ -190,6 +197,25 @@ def test_clusters_are_those_of_dbscan_with_one_sample(points, distance_ft, offse
     # numbered from 0 in order of each cluster's first point
     _, first = np.unique(got, return_index=True)
     assert (got[np.sort(first)] == np.arange(first.size)).all()
+
+
+# clumps of up to 80 points, many in a cell of the grid that cluster_labels bins them in first
+clump = st.tuples(st.floats(0.0, 300.0), st.floats(0.0, 300.0), st.floats(0.5, 20.0), st.integers(1, 80))
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(clump, min_size=1, max_size=8), st.sampled_from([5.0, 25.0, 60.0]), st.integers(0, 2**32 - 1),
+       st.booleans())
+def test_dense_clusters_are_those_of_dbscan(clumps, distance_ft, seed, settle):
+    rng = np.random.default_rng(seed)
+    xy = np.concatenate([rng.normal((cx, cy), spread, (n, 2)) for cx, cy, spread, n in clumps])
+    # settle False: no pair of cells is linked by its extreme points, so the triangulation decides every pair
+    # the boxes leave open
+    unsettled = mock.patch.object(targets._Grid, "_facing",
+                                  lambda self, xs, ys, extreme, one, other, k: np.zeros(one.size, dtype=bool))
+    with contextlib.nullcontext() if settle else unsettled:
+        got = cluster_labels(xy[:, 0], xy[:, 1], distance_ft)
+    assert_same_partition(got, dbscan_labels(xy[:, 0], xy[:, 1], distance_ft))
 
 
 @pytest.mark.parametrize("x, y", [
@@ -205,6 +231,31 @@ def test_degenerate_points_cluster_as_dbscan_does(x, y):
         assert got.size == 0
         return
     assert_same_partition(got, dbscan_labels(x, y, 15.0))
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.lists(st.tuples(grid | anywhere, grid | anywhere), min_size=1, max_size=40), min_size=1, max_size=4),
+       st.sampled_from([0.0, 2_000_000.0]))
+def test_outline_keeps_the_convex_hull(parts, offset):
+    # shapely's (GEOS's) convex hull of each part, a general-purpose reference: the points kept give the same one,
+    # on grid ties, shared places, lines and single points
+    xy = np.array([p for ps in parts for p in ps]) + offset
+    part = np.repeat(np.arange(len(parts)), [len(ps) for ps in parts])
+    keep = targets._outline(xy[:, 0], xy[:, 1], part)
+    for i in range(len(parts)):
+        mine = part == i
+        whole = shapely.convex_hull(shapely.multipoints(xy[mine]))
+        assert shapely.convex_hull(shapely.multipoints(xy[mine & keep])).equals(whole)
+
+
+def test_outline_leaves_out_the_inside():
+    # 10,000 points spread evenly in a square: the polygon of the eight extremes holds nearly all of them
+    rng = np.random.default_rng(7)
+    xy = rng.uniform(0.0, 1000.0, (10_000, 2))
+    keep = targets._outline(xy[:, 0], xy[:, 1], np.zeros(10_000, dtype=np.intp))
+    assert keep.sum() < 1_000
+    whole = shapely.convex_hull(shapely.multipoints(xy))
+    assert shapely.convex_hull(shapely.multipoints(xy[keep])).equals(whole)
 
 
 @settings(max_examples=100, deadline=None)
