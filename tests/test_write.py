@@ -10,6 +10,8 @@ import pyarrow as pa
 import geopandas as gpd
 import pyogrio
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 import shapely
 
 from geopress.io import vector as vector_io
@@ -146,3 +148,55 @@ def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch
     # GDAL's own errors too: SQLite cannot create the file where its folder is missing
     with pytest.raises(OutputError, match=r"cannot write the GeoPackage \(sqlite3_open"):
         write_io.write_geopackage(tmp_path / "no-folder" / "out.gpkg", {"t": pd.DataFrame({"a": [1]})})
+
+
+# cells that test the CSV's quoting: commas, quotes, newlines, spaces, a formula's apostrophe, non-ASCII, empty
+list_text = st.one_of(st.none(), st.text(alphabet=st.sampled_from(list('ab ,"\n\'é€=;')), max_size=6),
+                      st.text(max_size=4).filter(lambda s: "\r" not in s))
+# floats as the lists hold them: rounded to 0.1 or 0.01, whole, -0.0, NaN
+list_float = st.one_of(st.integers(-20_000, 20_000).map(lambda i: i / 10),
+                       st.integers(-2_000_000, 2_000_000).map(lambda i: i / 100), st.just(-0.0), st.just(float("nan")))
+# and anything else: carriage returns, infinities, the tiny and the huge that print with an exponent
+any_text = st.one_of(list_text, st.text(alphabet=st.sampled_from(list("a\r\n,")), max_size=4))
+any_float = st.one_of(list_float, st.floats(allow_infinity=True), st.sampled_from([1e-5, 1e8, 1e10, 1e16, 1e300]))
+count = st.one_of(st.none(), st.integers(-2**40, 2**40))
+
+
+def list_frame(rows, categorical):
+    text, number, n, other = zip(*rows)
+    return pd.DataFrame({"owner": pd.array(text, dtype="str"), "worst_psi": np.array(number, dtype=np.float64),
+                         "customer_count": pd.array(n, dtype="Int64"),
+                         "zones": pd.Categorical(other) if categorical else pd.array(other, dtype="str"),
+                         "plain": np.arange(len(rows))})
+
+
+def assert_pandas_bytes(path, df):
+    # pandas' to_csv (the csv module, QUOTE_MINIMAL), a general-purpose reference: the same bytes
+    write_io.write_csv(path, df)
+    want = path.with_name("want.csv")
+    df.to_csv(want, index=False, encoding="utf-8-sig", lineterminator="\n")
+    assert path.read_bytes() == want.read_bytes()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(list_text, list_float, count, list_text), min_size=1, max_size=30), st.booleans())
+def test_a_lists_csv_is_made_by_arrow_byte_for_byte_as_pandas(tmp_path_factory, rows, categorical):
+    df = list_frame(rows, categorical)
+    assert write_io._csv_rows(df) is not None  # the fast path takes it
+    assert_pandas_bytes(tmp_path_factory.mktemp("csv") / "list.csv", df)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(any_text, any_float, count, any_text), min_size=1, max_size=10), st.booleans())
+def test_any_csv_is_byte_for_byte_pandas(tmp_path_factory, rows, categorical):
+    # values the fast path leaves to pandas, among others it takes
+    assert_pandas_bytes(tmp_path_factory.mktemp("csv") / "list.csv", list_frame(rows, categorical))
+
+
+def test_csv_fast_path_covers_the_mailing_lists_columns():
+    # the path that makes a mailing list's CSV with Arrow takes its columns (the test above: the same bytes)
+    df = pd.DataFrame({"owner": pd.array(["A, B", 'say "hi"', None], dtype="str"), "worst_psi": [80.0, 81.3, np.nan],
+                       "customer_count": [1, 2, 3], "confidence": pd.Categorical(["firm", None, "unrated"])})
+    body = write_io._csv_rows(df)
+    assert body is not None
+    assert bytes(body).decode() == 'A, B",80.0,1,firm\n'.replace('A, B"', '"A, B"') + '"say ""hi""",81.3,2,\n,,3,unrated\n'
