@@ -12,8 +12,11 @@ import gc
 import logging
 import os
 import shutil
+import threading
 import time
 import warnings
+from concurrent.futures import Future
+from concurrent.futures import TimeoutError as FutureTimeout
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -712,31 +715,95 @@ def run_json_path(config: Config) -> Path:
     return config.output.path.parent / "run.json"
 
 
+#: the step a run's timings give the hand-off's thread (see :func:`start_writing`); it overlaps the others
+HAND_OFF_THREAD = "hand the customers to the writer (thread)"
+
+
+class HandOff:
+    """The thread that hands the customers to the writer process (see :func:`start_writing`); use as a context
+    manager, inside the run's ``Worker`` and ``Staging``: leaving the block tells the thread to submit no job and
+    waits (at most ``timeout_s``) for it to end, so a run that stops early never leaves it writing a file beside
+    the outputs after the staging is cleared, nor starts the writer then. The thread is a daemon: the
+    interpreter's exit never waits for it."""
+
+    def __init__(self, timeout_s: float):
+        self.timeout_s = timeout_s
+        self.stopping = threading.Event()
+        self._future: Future = Future()
+        self._thread: threading.Thread | None = None
+
+    def start(self, fn: Callable[["HandOff"], runner.Job | None]) -> None:
+        """Run ``fn(self)`` in the thread; its value is the writer's job (None when stopping)."""
+        future = self._future
+        future.set_running_or_notify_cancel()
+
+        def target() -> None:
+            try:
+                future.set_result(fn(self))
+            except BaseException as exc:
+                future.set_exception(exc)
+
+        self._thread = threading.Thread(target=target, name="geopress-hand-off", daemon=True)
+        self._thread.start()
+
+    def job(self) -> runner.Job | None:
+        """The writer's job, once the thread has submitted it; what the thread raised; or OutputError when it
+        did not finish within ``timeout_s``."""
+        try:
+            return self._future.result(timeout=self.timeout_s)
+        except FutureTimeout:
+            raise OutputError(f"handing the customers to the writer process did not finish within "
+                              f"{self.timeout_s:g} s (output.child_timeout_s); check the disk and the machine's "
+                              "load, or raise output.child_timeout_s", key="output.child_timeout_s") from None
+
+    def __enter__(self) -> "HandOff":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.stopping.set()
+        if self._thread is not None and self._thread.ident is not None:
+            self._thread.join(self.timeout_s)
+
+
 @dataclass
 class Writing:
-    """The GeoPackage's customer layers as :func:`start_writing` handed them to the writer process: its job
-    (None when the run writes no GeoPackage), the GeoPackage's temporary file and the layers."""
+    """The GeoPackage's customer layers as :func:`start_writing` handed them to the writer process: the hand-off
+    whose thread submits the writer's job (None when the run writes no GeoPackage), the GeoPackage's temporary
+    file and the layers."""
 
-    job: runner.Job | None
+    hand_off: HandOff | None
     gpkg: Path | None
     first_layers: dict[str, write_io.Layer]
 
 
-def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker) -> Writing:
+def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker,
+                  hand_off: HandOff) -> Writing:
     """Start writing the GeoPackage's customer layers in ``worker``'s process, from ``result``'s customers as
-    they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile."""
+    they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile.
+
+    The customers travel to the writer as an Arrow file it reads a batch at a time, not pickled through a pipe.
+    Their Arrow table is made here; the file is written, and the writer's job submitted, by ``hand_off``'s
+    thread while the summaries are made (Arrow's writer releases the GIL, and compresses on the core the writer
+    process does not use yet). The thread touches no pandas object; :meth:`HandOff.job` waits for it."""
     out = result.config.output
     with clock.step("hand the customers to the writer"):
         write_io.ensure_dir(out.path.parent, "output.path")
         if not out.geopackage:
-            return Writing(job=None, gpkg=None, first_layers=customer_layers(result))
+            return Writing(hand_off=None, gpkg=None, first_layers=customer_layers(result))
         gpkg = stage.temp_for(out.path)
-        # the customers travel to the writer as an Arrow file it reads a batch at a time, not pickled through a pipe
-        table = stage.wait(out.path, lambda: write_io.arrow_file(stage.scratch(out.path, ".arrow"),
-                                                                 _layer_frame(result)))
-        first_layers = customer_layers(result, table)
-        job = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
-        return Writing(job=job, gpkg=gpkg, first_layers=first_layers)
+        file, table = write_io.arrow_table(stage.scratch(out.path, ".arrow"), _layer_frame(result))
+        first_layers = customer_layers(result, file)
+
+        def hand(h: HandOff) -> runner.Job | None:
+            t0 = time.perf_counter()
+            stage.wait(out.path, lambda: write_io.write_arrow_file(file, table))
+            clock.timings[HAND_OFF_THREAD] = round(time.perf_counter() - t0, 4)
+            if h.stopping.is_set():
+                return None
+            return worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+
+        hand_off.start(hand)
+        return Writing(hand_off=hand_off, gpkg=gpkg, first_layers=first_layers)
 
 
 def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writing: Writing,
@@ -748,7 +815,8 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writin
     out = cfg.output
     t0 = time.perf_counter()
     with clock.step("write outputs"):
-        first_layers, writer, gpkg = writing.first_layers, writing.job, writing.gpkg
+        first_layers, gpkg = writing.first_layers, writing.gpkg
+        writer = writing.hand_off.job() if writing.hand_off is not None else None
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         info = dict(result.info)
         files = _list_files(result, info)
@@ -942,13 +1010,14 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     with _cycle_collection_paused(), _recorded_warnings(shown), \
             nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext() as publication, \
             write_io.Staging(journal_for=cfg.output.path) as stage, \
-            runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker:  # stopped before the staging is discarded
+            runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker, \
+            HandOff(cfg.output.child_timeout_s) as hand_off:  # each ended before the one above it
         inputs = nightly.snapshot(cfg.input_paths())
         result, screening = screen(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
         with clock.step("compare with baseline"):
             newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
         # the customers are final: the writer process writes them while their summaries and lists are made here
-        writing = start_writing(result, clock, stage, worker) if write else None
+        writing = start_writing(result, clock, stage, worker, hand_off) if write else None
         summarise(result, screening, clock)
         nightly.check_unchanged(inputs)
         with clock.step("new mailing lists"):

@@ -163,6 +163,7 @@ STEPS = [
     (vector_io, "read_customers", "reading the customers"),
     (raster_io, "sample_terrain", "sampling the terrain"),
     (nightly, "track", "comparing with the baseline"),
+    (write_io, "write_arrow_file", "handing the customers over, in a thread"),
     (runner.Job, "result", "waiting for the child"),
     (write_io, "write_csv", "staging the mailing lists"),
     (planning, "report_html", "making the report"),
@@ -175,6 +176,9 @@ def test_sigterm_during_each_step_leaves_the_outputs_and_frees_the_lock(world, p
     monkeypatch.setattr(owner, name, _sigterm_then(getattr(owner, name)))
     res = run(world)
     assert "terminated (SIGTERM); earlier outputs are unchanged" in error_line(res, 143)
+    for thread in threading.enumerate():  # a hand-off thread still running would write its file after the run
+        if thread.name == "geopress-hand-off":
+            thread.join(30)
     assert snapshot(world.out.parent) == prior
     assert not lock_path(world.out).exists()
     monkeypatch.undo()
@@ -206,6 +210,18 @@ def test_a_hung_child_is_stopped_by_its_timeout(world, prior, monkeypatch):
     t0 = time.monotonic()
     line = assert_bad(run(world), "the writer process did not finish within 3 s (output.child_timeout_s)",
                       "was stopped")
+    assert time.monotonic() - t0 < 60 and "\n" not in line
+    assert snapshot(world.out.parent) == prior
+
+
+def test_a_hung_hand_off_is_stopped_by_its_timeout(world, prior, monkeypatch):
+    # the thread that writes the customers' Arrow file for the writer process never ends: the run waits for it
+    # no longer than child_timeout_s, says so on one line, and exits without waiting for the thread
+    monkeypatch.setattr(write_io, "write_arrow_file", lambda *a: time.sleep(600))
+    world.config_path.write_text(world.config_path.read_text() + "child_timeout_s = 3\n")
+    t0 = time.monotonic()
+    line = assert_bad(run(world), "handing the customers to the writer process did not finish within 3 s "
+                      "(output.child_timeout_s)")
     assert time.monotonic() - t0 < 60 and "\n" not in line
     assert snapshot(world.out.parent) == prior
 

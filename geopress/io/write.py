@@ -331,7 +331,22 @@ ARROW_BATCH_ROWS = 65_536
 def arrow_file(path: Path, layer: Encoded) -> ArrowFile:
     """Write the point layer ``layer`` as an Arrow IPC file at ``path``, LZ4-compressed, in batches of
     :data:`ARROW_BATCH_ROWS`, and return it as an :class:`ArrowFile` layer."""
+    file, table = arrow_table(path, layer)
+    write_arrow_file(file, table)
+    return file
+
+
+def arrow_table(path: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
+    """The point layer ``layer`` as an Arrow table, and the :class:`ArrowFile` layer it becomes once
+    :func:`write_arrow_file` has written it at ``path``."""
     table, geometry, crs = _point_table(layer)
+    return ArrowFile(path=path, geometry=geometry, crs=crs), table
+
+
+def write_arrow_file(file: ArrowFile, table: pa.Table) -> None:
+    """Write ``table`` as the Arrow IPC file of ``file`` (see :func:`arrow_file`). Arrow only, no pandas: it can
+    run in a thread beside code that reads the frame the table was made from."""
+    path = file.path
     try:
         # LZ4-compressed: a third of the bytes, so writing the file no longer waits on the disk (4,000,000
         # customers: 1.45 GB in 3.3 s uncompressed, 0.51 GB in 0.7 s; the writer reads it back in 0.3 s)
@@ -342,7 +357,6 @@ def arrow_file(path: Path, layer: Encoded) -> ArrowFile:
             out.write_table(table, max_chunksize=ARROW_BATCH_ROWS)
     except pa.ArrowIOError as exc:  # a full disk, say
         raise OSError(errno.EIO, str(exc)) from exc
-    return ArrowFile(path=path, geometry=geometry, crs=crs)
 
 
 def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
