@@ -40,7 +40,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from .classify import CODE, Criteria, names_at
 from .findings import BY_NAME, FINDINGS, FLAGGED_STATUSES
-from .tables import in_finding
+from .tables import in_finding, rows_of
 
 #: the confidence classes, most certain flag first
 CLASSES: tuple[str, ...] = ("firm", "borderline", "near_limit", "clear", "unrated")
@@ -149,7 +149,7 @@ def verification_list(customers: pd.DataFrame, rated: Mapping[str, tuple[ArrayLi
         margin, cls = rated[name]
         borderline = pd.Series(cls).eq("borderline").to_numpy(dtype=bool, na_value=False)
         sel = in_finding(customers, name) & borderline
-        part = pd.DataFrame(customers.loc[sel, [*keep, *after, "sigma_psi", "reason"]]).reset_index(drop=True)
+        part = rows_of(customers, [*keep, *after, "sigma_psi", "reason"], np.flatnonzero(sel)).reset_index(drop=True)
         part.insert(len(keep), "list", BY_NAME[name].finding.layer)
         part.insert(len(keep) + 1 + len(after), "margin_psi", np.asarray(margin, dtype=np.float64)[sel])
         parts.append(part)

@@ -101,6 +101,12 @@ def _texts(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return distinct, rank[code]
 
 
+def rows_of(frame: pd.DataFrame, columns: Sequence[str], rows: np.ndarray) -> pd.DataFrame:
+    """``frame[columns].iloc[rows]``, a column at a time: ``frame[columns]`` would first copy every row of those
+    columns (1.3 s for a few columns of 4,000,000 customers), where this copies only the rows taken."""
+    return pd.DataFrame({c: frame[c].iloc[rows] for c in columns}, columns=list(columns))
+
+
 def in_finding(customers: pd.DataFrame, finding: str) -> np.ndarray:
     """Whether each customer has ``finding``: its ``finding_<name>`` column, or (a frame without it, as an earlier
     run's) its status."""
@@ -146,8 +152,8 @@ def mailing_list(
     if rows.size == 0:
         return pd.DataFrame(columns=cols)
     # the id field may also be a mail field: select each column once
-    sub = customers[list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col, *([area] if area else [])]))
-                    ].iloc[rows]
+    sub = rows_of(customers, list(dict.fromkeys([id_field, *mail_fields, *letter_fields, "zone", col,
+                                                 *([area] if area else [])])), rows)
     n = len(sub)
     # vectorised group-by: sort the rows by address then id, so each address is a run with its ids in order
     ids = pc.fill_null(pa.array(sub[id_field].astype(str)), "nan")  # as str() prints a missing id
