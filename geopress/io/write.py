@@ -571,12 +571,11 @@ def _csv_rows(df: pd.DataFrame) -> memoryview | None:
     byte, made by Arrow's compute functions a column at a time instead of the csv module a cell at a time; or None
     when a column is one this does not cover (then pandas writes the file).
 
-    Covered: text without carriage returns (quoted where it holds a quote, comma or newline, a quote doubled),
-    integers, floats
-    (the shortest text that reads back the same, as numpy prints them: ``1.0``, ``-0.0``; NaN empty) of magnitudes
-    from 1e-4 to 1e8, where neither numpy nor Arrow writes an exponent (Arrow does from 1e10, numpy below 1e-4;
-    7.4 million values in that range, random and rounded to 0.1 and 0.01, printed alike), and missing values as
-    empty cells; at least two columns (the csv module writes a lone empty cell as ``""``).
+    Covered: text without carriage returns (quoted where it holds a quote, comma or newline, a quote doubled);
+    integers; floats of magnitudes from 1e-4 to 1e8 (the shortest text that reads back the same, as numpy prints
+    it: ``1.0``, ``-0.0``; NaN empty), where neither numpy nor Arrow writes an exponent (Arrow does from 1e10,
+    numpy below 1e-4); missing values as empty cells; at least two columns (the csv module writes a lone empty
+    cell as ``""``).
     """
     if df.shape[1] < 2 or len(df) == 0:
         return None
