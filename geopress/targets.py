@@ -213,8 +213,9 @@ class _Grid:
         side = (distance_ft - margin) / np.sqrt(2.0)
         ij = np.floor((xy - xy.min(axis=0)) / side) if side > 0 else None
         if ij is None or ij.max() >= 2.0 ** 30:
-            # too many cells to number: a cell a point, all of them triangulated
-            self.cell, self.cells, self.open = np.arange(n), n, np.arange(n)
+            # too many cells to number: a cell a place (points at one place are one cluster), all triangulated
+            self.cell = _places(xy[:, 0], xy[:, 1])[1]
+            self.cells, self.open = int(self.cell.max()) + 1, np.arange(n)
             return
         ij = ij.astype(np.int64)
         width = int(ij[:, 1].max()) + 5  # a row number off the grid by 2 never lands on another column's cell

@@ -233,6 +233,20 @@ def test_degenerate_points_cluster_as_dbscan_does(x, y):
     assert_same_partition(got, dbscan_labels(x, y, 15.0))
 
 
+@pytest.mark.parametrize("spread, distance_ft", [
+    (1_000_000.0, 1e-4),  # more than 2**30 cells a side: no cell is numbered
+    (2.0, 1e-12),         # a distance below the rounding of coordinates this large: no cell is small enough
+])
+def test_without_cells_every_point_is_triangulated(spread, distance_ft):
+    rng = np.random.default_rng(3)
+    xy = 2_000_000.0 + rng.uniform(0.0, spread, (40, 2))
+    xy[1] = xy[0] + [distance_ft / 2, 0.0]  # a pair within the distance (at one place, at the second spread)
+    xy[2] = xy[3]                             # and two customers at one place
+    grid = targets._Grid(xy, distance_ft)
+    assert grid.open.size == 40 and grid.cells == len({tuple(p) for p in xy.tolist()})
+    assert_same_partition(cluster_labels(xy[:, 0], xy[:, 1], distance_ft), dbscan_labels(xy[:, 0], xy[:, 1], distance_ft))
+
+
 @settings(max_examples=100, deadline=None)
 @given(st.lists(st.lists(st.tuples(grid | anywhere, grid | anywhere), min_size=1, max_size=40), min_size=1, max_size=4),
        st.sampled_from([0.0, 2_000_000.0]))
