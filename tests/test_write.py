@@ -117,18 +117,19 @@ def test_a_view_of_several_values_and_its_extent(tmp_path, frame):
 
 def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
     # the writer process gets the customers as an Arrow file it maps: the same layer as the frame gives
-    table = write_io.arrow_file(tmp_path / "customers.arrow", _encoded(frame))
+    file, table = write_io.arrow_table(tmp_path / "customers.arrow", _encoded(frame))
+    write_io.write_arrow_file(file, table)
     direct, mapped = tmp_path / "direct.gpkg", tmp_path / "mapped.gpkg"
     view = _view(frame, ("high",))
     write_io.write_geopackage(direct, {"customers": frame, "high": view})
-    write_io.write_geopackage(mapped, {"customers": table, "high": view})
+    write_io.write_geopackage(mapped, {"customers": file, "high": view})
     for name in ("customers", "high"):
         a = pyogrio.read_dataframe(direct, layer=name, fid_as_index=True)
         b = pyogrio.read_dataframe(mapped, layer=name, fid_as_index=True)
         pd.testing.assert_frame_equal(a, b)
     # a view selecting nothing is an empty point layer of the same fields
     none = _view(frame, ("nothing",))
-    write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": table, "none": none})
+    write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": file, "none": none})
     info = pyogrio.read_info(tmp_path / "none.gpkg", layer="none")
     assert info["features"] == 0 and info["geometry_type"] == "Point"
     assert list(info["fields"]) == list(pyogrio.read_info(direct, layer="customers")["fields"])

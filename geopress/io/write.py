@@ -293,7 +293,7 @@ class Encoded:
 class ArrowFile:
     """A point layer in an Arrow IPC file (WKB geometries in column ``geometry``, CRS ``crs``), which a
     writer in another process reads a batch at a time instead of receiving the rows (see
-    :func:`arrow_file`)."""
+    :func:`write_arrow_file`)."""
 
     path: Path
     geometry: str
@@ -328,14 +328,6 @@ GEOMETRY = "geometry"
 ARROW_BATCH_ROWS = 65_536
 
 
-def arrow_file(path: Path, layer: Encoded) -> ArrowFile:
-    """Write the point layer ``layer`` as an Arrow IPC file at ``path``, LZ4-compressed, in batches of
-    :data:`ARROW_BATCH_ROWS`, and return it as an :class:`ArrowFile` layer."""
-    file, table = arrow_table(path, layer)
-    write_arrow_file(file, table)
-    return file
-
-
 def arrow_table(path: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
     """The point layer ``layer`` as an Arrow table, and the :class:`ArrowFile` layer it becomes once
     :func:`write_arrow_file` has written it at ``path``."""
@@ -344,8 +336,8 @@ def arrow_table(path: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
 
 
 def write_arrow_file(file: ArrowFile, table: pa.Table) -> None:
-    """Write ``table`` as the Arrow IPC file of ``file`` (see :func:`arrow_file`). Arrow only, no pandas: it can
-    run in a thread beside code that reads the frame the table was made from."""
+    """Write ``table`` as the Arrow IPC file of ``file``, LZ4-compressed, in batches of :data:`ARROW_BATCH_ROWS`.
+    Arrow only, no pandas: it can run in a thread beside code that reads the frame the table was made from."""
     path = file.path
     try:
         # LZ4-compressed: a third of the bytes, so writing the file no longer waits on the disk (4,000,000
