@@ -61,16 +61,26 @@ def _distinct_per_group(column: pd.Series, order: np.ndarray, group_of_sorted: n
     """Per group: the distinct texts of ``column`` (missing ones left out) in the order of the sorted rows
     (``column`` taken in ``order``; ``group_of_sorted`` numbers their groups, ascending), ``"; "``-joined;
     missing for a group that has none."""
-    text = pa.array(column.astype("string")).cast(pa.large_string()).take(order)
-    encoded = pc.dictionary_encode(text)
-    code = encoded.indices.to_numpy(zero_copy_only=False)  # float, NaN where missing
-    positions = np.flatnonzero(~np.isnan(code))
-    pair = group_of_sorted[positions] * len(encoded.dictionary) + code[positions].astype(np.int64)
+    dictionary, code = _coded_text(column)
+    code = code[order]
+    positions = np.flatnonzero(code >= 0)
+    pair = group_of_sorted[positions] * len(dictionary) + code[positions]
     _, first = np.unique(pair, return_index=True)  # the first row of each (group, text), in account order
     keep = positions[np.sort(first)]
     counts = np.bincount(group_of_sorted[keep], minlength=n_groups)
-    joined = _join_lists(text.take(keep), np.r_[0, np.cumsum(counts)])
+    joined = _join_lists(dictionary.take(code[keep]), np.r_[0, np.cumsum(counts)])
     return pc.if_else(pa.array(counts > 0), joined, pa.scalar(None, pa.large_string()))
+
+
+def _coded_text(column: pd.Series) -> tuple[pa.Array, np.ndarray]:
+    """``column`` as text (as ``astype("string")`` prints it): its distinct texts and each row's index among
+    them, -1 where missing. A categorical of text (a target-area column) gives its categories and codes,
+    without making a text per row."""
+    if isinstance(column.dtype, pd.CategoricalDtype) and pd.api.types.is_string_dtype(column.cat.categories):
+        return (pa.array(column.cat.categories.astype(str), type=pa.large_string()),
+                column.cat.codes.to_numpy(dtype=np.int64))
+    encoded = pc.dictionary_encode(pa.array(column.astype("string")).cast(pa.large_string()))
+    return encoded.dictionary, pc.fill_null(encoded.indices, -1).to_numpy().astype(np.int64)
 
 
 def _group_key(column: pd.Series) -> pa.Array:
@@ -188,7 +198,7 @@ def mailing_list(
     out_order = out_order[np.argsort(severity, kind="stable")]
     missing = np.isnan(worst[out_order])
     out_order = np.r_[out_order[~missing], out_order[missing]]
-    out = sub[keys].iloc[order[starts[out_order]]].reset_index(drop=True)  # the address as its first id has it
+    out = rows_of(sub, keys, order[starts[out_order]]).reset_index(drop=True)  # the address as its first id has it
     out["accounts"] = pd.array(accounts.take(out_order), dtype="str")
     for field in letter_fields:
         joined = _distinct_per_group(sub[field], order, group_of_sorted, n_groups)
@@ -201,8 +211,10 @@ def mailing_list(
         best = np.full(n_groups, np.nan)
         best[margin.index.to_numpy()] = margin.to_numpy().round(2)
         # the address's class: the surest of its accounts' (firm, then borderline, then unrated)
-        classes = pd.array(rated[1][rows], dtype="str")  # the finding's rows only, not every customer's
-        rank = pd.Series(pd.Categorical(classes, categories=ADDRESS_CLASSES).codes).replace(-1, 99)
+        classes = rated[1] if isinstance(rated[1], pd.Categorical) else pd.Categorical(rated[1])
+        # each class's rank (99 for another class or none), from the codes of the finding's rows only
+        ranks = np.array([*(ADDRESS_CLASSES.index(c) if c in ADDRESS_CLASSES else 99 for c in classes.categories), 99])
+        rank = pd.Series(ranks[classes.codes[rows]])
         surest = rank.groupby(group, sort=False).min()
         code = np.full(n_groups, 99)
         code[surest.index.to_numpy()] = surest.to_numpy()

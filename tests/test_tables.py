@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from geopress.tables import WORST, mailing_lists, neutralise_frame
+from geopress.tables import FLAGGED_LAYERS, WORST, mailing_lists, neutralise_frame
 
 
 def _distinct_by_account(values: pd.Series, ids: pd.Series):
@@ -99,3 +99,45 @@ def test_lists_select_by_finding_and_carry_the_target_areas():
     upper = got["upper_floors"].to_dict("records")
     assert [(r["accounts"], r["worst_psi"]) for r in upper] == [("c", 28.0), ("d", 30.0)]
     assert pd.isna(upper[0]["target_area"]) and upper[1]["target_area"] == "T3"  # missing: c is in no such area
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_margins_classes_and_areas_match_a_plain_groupby(seed):
+    # margin_psi: the largest margin of an address's accounts; confidence: the surest class among them (firm,
+    # borderline, unrated; none when no account has one of those); target_area: the distinct areas in account
+    # order. The run gives classes and areas as categoricals; plain arrays of text must give the same lists.
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(1, 200))
+    df = pd.DataFrame({
+        "acct": [f"C{i:03d}" for i in rng.permutation(n)],
+        "addr": rng.choice(["1 Way", "2 Way", "3 Way", None], n),
+        "zone": rng.choice(["A", "B"], n),
+        "psi_max": rng.uniform(60, 120, n).round(1), "psi_min": rng.uniform(0, 60, n), "psi_top": np.nan,
+        "finding_above_hgl": False, "finding_low": rng.random(n) < 0.5, "finding_high": rng.random(n) < 0.5,
+        **{f"finding_{name}": False for name in FLAGGED_LAYERS if name not in ("low", "high")},
+        "target_area_high": rng.choice(["T2", "T10", None, "T1"], n),
+    })
+    margins = np.where(rng.random(n) < 0.1, np.nan, rng.uniform(-5, 5, n))
+    texts = rng.choice(["firm", "borderline", "unrated", "clear", None], n).astype(object)
+    plain = {name: (margins, texts) for name in FLAGGED_LAYERS}
+    coded = {name: (margins, pd.Categorical(texts, categories=["firm", "near_limit", "borderline", "clear", "unrated"]))
+             for name in plain}
+    got = mailing_lists(df, id_field="acct", mail_fields=["addr"], rated=plain)
+    as_run = mailing_lists(df.astype({"target_area_high": "category"}), id_field="acct", mail_fields=["addr"],
+                           rated=coded)
+    for name in got:
+        pd.testing.assert_frame_equal(got[name], as_run[name])
+    for status, name in (("high", "high_pressure"), ("low", "low_pressure")):
+        chosen = df[df[f"finding_{status}"]].assign(margin=margins[df[f"finding_{status}"]],
+                                                     cls=texts[df[f"finding_{status}"].to_numpy()])
+        for row in got[name].to_dict("records"):
+            at = chosen[chosen["addr"].isna()] if pd.isna(row["addr"]) else chosen[chosen["addr"] == row["addr"]]
+            assert row["accounts"] == "; ".join(sorted(at["acct"]))
+            want_margin = at["margin"].max()
+            assert (np.isnan(row["margin_psi"]) and np.isnan(want_margin)) or row["margin_psi"] == round(want_margin, 2)
+            surest = [c for c in ("firm", "borderline", "unrated") if c in set(at["cls"])]
+            assert (row["confidence"] if not pd.isna(row["confidence"]) else None) == (surest[0] if surest else None)
+            if status == "high":
+                areas = [a for a in at.sort_values("acct")["target_area_high"] if pd.notna(a)]
+                want_areas = "; ".join(dict.fromkeys(areas)) or None
+                assert (row["target_area"] if not pd.isna(row["target_area"]) else None) == want_areas
