@@ -721,56 +721,36 @@ HAND_OFF_THREAD = "hand the customers to the writer (thread)"
 
 class HandOff:
     """The thread that hands the customers to the writer process (see :func:`start_writing`); use as a context
-    manager, inside the run's ``Worker`` and ``Staging``: leaving the block tells the thread to stop (it submits
-    no job, writes no further part) and waits (at most ``timeout_s``) for it to end, so a run that stops early
-    never leaves it writing a file beside the outputs after the staging is cleared, nor starts the writer then.
-    The thread is a daemon: the interpreter's exit never waits for it."""
+    manager, inside the run's ``Worker`` and ``Staging``: leaving the block tells the thread to submit no job and
+    waits (at most ``timeout_s``) for it to end, so a run that stops early never leaves it writing a file beside
+    the outputs after the staging is cleared, nor starts the writer then. The thread is a daemon: the
+    interpreter's exit never waits for it."""
 
     def __init__(self, timeout_s: float):
         self.timeout_s = timeout_s
         self.stopping = threading.Event()
-        self._job: Future = Future()  # the writer's job, once submitted
-        self._done: Future = Future()  # the thread's end
+        self._future: Future = Future()
         self._thread: threading.Thread | None = None
 
-    def start(self, fn: Callable[["HandOff"], None]) -> None:
-        """Run ``fn(self)`` in the thread; it calls :meth:`submitted` with the writer's job (never, when
-        stopping)."""
-        for future in (self._job, self._done):
-            future.set_running_or_notify_cancel()
+    def start(self, fn: Callable[["HandOff"], runner.Job | None]) -> None:
+        """Run ``fn(self)`` in the thread; its value is the writer's job (None when stopping)."""
+        future = self._future
+        future.set_running_or_notify_cancel()
 
         def target() -> None:
             try:
-                fn(self)
+                future.set_result(fn(self))
             except BaseException as exc:
-                if not self._job.done():
-                    self._job.set_exception(exc)
-                self._done.set_exception(exc)
-            else:
-                if not self._job.done():
-                    self._job.set_result(None)
-                self._done.set_result(None)
+                future.set_exception(exc)
 
         self._thread = threading.Thread(target=target, name="geopress-hand-off", daemon=True)
         self._thread.start()
 
-    def submitted(self, job: runner.Job) -> None:
-        """Called by the thread once the writer's job is submitted."""
-        self._job.set_result(job)
-
     def job(self) -> runner.Job | None:
-        """The writer's job, once the thread has submitted it; what the thread raised before; or OutputError
-        when that took longer than ``timeout_s``."""
-        return self._wait(self._job)
-
-    def finished(self) -> None:
-        """Wait for the thread to end: every part handed over, or what the thread raised; OutputError when
-        that took longer than ``timeout_s``."""
-        self._wait(self._done)
-
-    def _wait(self, future: Future) -> Any:
+        """The writer's job, once the thread has submitted it; what the thread raised; or OutputError when it
+        did not finish within ``timeout_s``."""
         try:
-            return future.result(timeout=self.timeout_s)
+            return self._future.result(timeout=self.timeout_s)
         except FutureTimeout:
             raise OutputError(f"handing the customers to the writer process did not finish within "
                               f"{self.timeout_s:g} s (output.child_timeout_s); check the disk and the machine's "
@@ -802,38 +782,25 @@ def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker
     they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile.
 
     The customers travel to the writer as an Arrow file it reads a batch at a time, not pickled through a pipe.
-    Their Arrow table is made here; ``hand_off``'s thread writes the file's parts while the summaries are made
-    (Arrow's writer releases the GIL, and compresses on the core the writer process does not use yet), and
-    submits the writer's job once the first part is written, so the writer begins while the others are. The
-    thread touches no pandas object; :meth:`HandOff.job` waits for the job, :meth:`HandOff.finished` for
-    the last part."""
+    Their Arrow table is made here; the file is written, and the writer's job submitted, by ``hand_off``'s
+    thread while the summaries are made (Arrow's writer releases the GIL, and compresses on the core the writer
+    process does not use yet). The thread touches no pandas object; :meth:`HandOff.job` waits for it."""
     out = result.config.output
     with clock.step("hand the customers to the writer"):
         write_io.ensure_dir(out.path.parent, "output.path")
         if not out.geopackage:
             return Writing(hand_off=None, gpkg=None, first_layers=customer_layers(result))
         gpkg = stage.temp_for(out.path)
-        frame = _layer_frame(result)
-        parts = write_io.arrow_parts(len(frame.frame))
-        file, table = write_io.arrow_table([stage.scratch(out.path, ".arrow") for _ in range(parts)],
-                                           stage.scratch(out.path, ".failed"), frame)
-        temps = [stage.scratch(out.path, ".arrow") for _ in range(parts)]
+        file, table = write_io.arrow_table(stage.scratch(out.path, ".arrow"), _layer_frame(result))
         first_layers = customer_layers(result, file)
 
-        def hand(h: HandOff) -> None:
+        def hand(h: HandOff) -> runner.Job | None:
             t0 = time.perf_counter()
-            try:
-                for part, tmp in enumerate(temps):
-                    if h.stopping.is_set():
-                        break
-                    stage.wait(out.path, lambda: write_io.write_arrow_file(file, table, part, tmp))
-                    if part == 0 and not h.stopping.is_set():
-                        h.submitted(worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer",
-                                                  path=out.path))
-            finally:
-                if not file.paths[-1].exists():  # stopped or failed: the writer must not wait for the rest
-                    write_io.arrow_file_failed(file)
+            stage.wait(out.path, lambda: write_io.write_arrow_file(file, table))
             clock.timings[HAND_OFF_THREAD] = round(time.perf_counter() - t0, 4)
+            if h.stopping.is_set():
+                return None
+            return worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
 
         hand_off.start(hand)
         return Writing(hand_off=hand_off, gpkg=gpkg, first_layers=first_layers)
@@ -871,7 +838,6 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writin
             info["database"] = {"database": redact_dsn(out.database), "schema": out.schema}
             info["database"]["build_s"] = publication.build(database_layers(result))
         if writer is not None:
-            writing.hand_off.finished()  # a part that failed is said as itself, not as the writer's wait for it
             first = stage.wait(out.path, writer.result)
             advance()
             info["geopackage_layers_s"] = {**first,

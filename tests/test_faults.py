@@ -19,7 +19,6 @@ import sqlite3
 import subprocess
 import sys
 import textwrap
-import time
 from pathlib import Path
 
 import pytest
@@ -107,20 +106,6 @@ WRITERS = [("write_geopackage", 1), ("write_csv", 1), ("write_csv", 8), ("write_
 def test_fault_in_a_writer(world, prior, monkeypatch, writer, n, fault, code, text):
     monkeypatch.setattr(write_io, writer, fail_on_call(getattr(write_io, writer), n, fault))
     assert text in error_line(run(world), code)
-    assert snapshot(world.out.parent) == prior
-    monkeypatch.undo()
-    then_a_good_run_leaves_no_temporary(world)
-
-
-@pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "No space left on device"), (bug, 1, "injected fault")])
-def test_fault_in_a_later_part_of_the_hand_off(world, prior, monkeypatch, fault, code, text):
-    # the world's 20 customers go to the writer process in parts of 3 here, and the writer has begun on the first
-    # when the third fails: the run says the fault itself, at once, not the writer's wait for the missing part
-    monkeypatch.setattr(write_io, "ARROW_PART_ROWS", 3)
-    monkeypatch.setattr(write_io, "write_arrow_file", fail_on_call(write_io.write_arrow_file, 3, fault))
-    t0 = time.monotonic()
-    assert text in error_line(run(world), code)
-    assert time.monotonic() - t0 < 120
     assert snapshot(world.out.parent) == prior
     monkeypatch.undo()
     then_a_good_run_leaves_no_temporary(world)

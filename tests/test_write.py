@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import sqlite3
-import time
 
 import numpy as np
 import pandas as pd
@@ -116,24 +115,10 @@ def test_a_view_of_several_values_and_its_extent(tmp_path, frame):
     assert sorted(got["account"]) == sorted(frame.loc[frame["status"].isin(["high", "low"]), "account"])
 
 
-def _arrow_file(tmp_path, frame):
-    """``frame`` as an ArrowFile of as many parts as write_io.ARROW_PART_ROWS gives, and its table."""
-    parts = write_io.arrow_parts(len(frame))
-    return write_io.arrow_table([tmp_path / f"customers-{k}.arrow" for k in range(parts)], tmp_path / "failed",
-                                _encoded(frame))
-
-
-@pytest.mark.parametrize("part_rows", [None, 1, 3])
-def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame, monkeypatch, part_rows):
-    # the writer process gets the customers as Arrow files it reads a batch at a time: the same layer as the
-    # frame gives, whether in one part or in several (of 1 and 3 rows, in batches of 2)
-    if part_rows:
-        monkeypatch.setattr(write_io, "ARROW_PART_ROWS", part_rows)
-        monkeypatch.setattr(write_io, "ARROW_BATCH_ROWS", 2)
-    file, table = _arrow_file(tmp_path, frame)
-    assert len(file.paths) == (1 if part_rows is None else -(-len(frame) // part_rows))
-    for k in range(len(file.paths)):
-        write_io.write_arrow_file(file, table, k, tmp_path / "part.tmp")
+def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
+    # the writer process gets the customers as an Arrow file it maps: the same layer as the frame gives
+    file, table = write_io.arrow_table(tmp_path / "customers.arrow", _encoded(frame))
+    write_io.write_arrow_file(file, table)
     direct, mapped = tmp_path / "direct.gpkg", tmp_path / "mapped.gpkg"
     view = _view(frame, ("high",))
     write_io.write_geopackage(direct, {"customers": frame, "high": view})
@@ -148,40 +133,6 @@ def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame, monkeypatch, p
     info = pyogrio.read_info(tmp_path / "none.gpkg", layer="none")
     assert info["features"] == 0 and info["geometry_type"] == "Point"
     assert list(info["fields"]) == list(pyogrio.read_info(direct, layer="customers")["fields"])
-
-
-def test_the_writer_waits_for_each_part_and_stops_when_told(tmp_path, frame, monkeypatch):
-    # the writer process begins on the first part while the others are written: it waits for each, and stops
-    # with an OutputError, not a hang, once the hand-off says the rest will not come
-    import threading
-
-    from geopress.errors import OutputError
-
-    monkeypatch.setattr(write_io, "ARROW_PART_ROWS", 2)
-    file, table = _arrow_file(tmp_path, frame)
-    assert len(file.paths) >= 3
-    write_io.write_arrow_file(file, table, 0, tmp_path / "part.tmp")
-
-    def the_rest():
-        try:
-            for k in range(1, len(file.paths)):
-                time.sleep(0.2)
-                write_io.write_arrow_file(file, table, k, tmp_path / "part.tmp")
-        finally:  # as the run's hand-off does: a failure here must not leave the writer waiting
-            if not file.paths[-1].exists():
-                write_io.arrow_file_failed(file)
-
-    later = threading.Thread(target=the_rest)
-    later.start()
-    write_io.write_geopackage(tmp_path / "late.gpkg", {"customers": file})
-    later.join()
-    assert len(pyogrio.read_dataframe(tmp_path / "late.gpkg", layer="customers")) == len(frame)
-    file.paths[-1].unlink()
-    threading.Timer(0.2, write_io.arrow_file_failed, [file]).start()
-    t0 = time.monotonic()
-    with pytest.raises(OutputError):
-        write_io.write_geopackage(tmp_path / "cut.gpkg", {"customers": file})
-    assert time.monotonic() - t0 < 10
 
 
 def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch):

@@ -32,7 +32,7 @@ import time
 from glob import escape as glob_escape
 from pathlib import Path
 from dataclasses import dataclass
-from typing import Any, Callable, Iterator, Mapping, Sequence
+from typing import Any, Callable, Mapping
 
 import geopandas as gpd
 import numpy as np
@@ -291,14 +291,11 @@ class Encoded:
 
 @dataclass(frozen=True)
 class ArrowFile:
-    """A point layer in Arrow IPC files (WKB geometries in column ``geometry``, CRS ``crs``), which a writer
-    in another process reads a batch at a time instead of receiving the rows: the rows in order, in
-    ``paths``, each part written whole (see :func:`write_arrow_file`) before it appears under its name, so the
-    writer can begin on the first part while the others are written. ``failed`` appears instead when the
-    parts will not all come."""
+    """A point layer in an Arrow IPC file (WKB geometries in column ``geometry``, CRS ``crs``), which a
+    writer in another process reads a batch at a time instead of receiving the rows (see
+    :func:`write_arrow_file`)."""
 
-    paths: tuple[Path, ...]
-    failed: Path
+    path: Path
     geometry: str
     crs: str | None
 
@@ -329,70 +326,29 @@ GEOMETRY = "geometry"
 
 #: rows per record batch of an :class:`ArrowFile`: the writer process holds one batch at a time
 ARROW_BATCH_ROWS = 65_536
-#: rows per part of an :class:`ArrowFile` (16 batches): the writer process begins once the first is written
-ARROW_PART_ROWS = 16 * ARROW_BATCH_ROWS
 
 
-def arrow_parts(rows: int) -> int:
-    """How many parts an :class:`ArrowFile` of ``rows`` rows has (one at least)."""
-    return max(1, -(-rows // ARROW_PART_ROWS))
-
-
-def arrow_table(paths: Sequence[Path], failed: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
+def arrow_table(path: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
     """The point layer ``layer`` as an Arrow table, and the :class:`ArrowFile` layer it becomes once
-    :func:`write_arrow_file` has written its parts at ``paths`` (:func:`arrow_parts` of them)."""
+    :func:`write_arrow_file` has written it at ``path``."""
     table, geometry, crs = _point_table(layer)
-    return ArrowFile(paths=tuple(paths), failed=failed, geometry=geometry, crs=crs), table
+    return ArrowFile(path=path, geometry=geometry, crs=crs), table
 
 
-def write_arrow_file(file: ArrowFile, table: pa.Table, part: int, tmp: Path) -> None:
-    """Write part ``part`` of ``file`` (``table``'s rows from ``part * ARROW_PART_ROWS`` on, at most
-    :data:`ARROW_PART_ROWS`) at ``tmp``, LZ4-compressed, in batches of :data:`ARROW_BATCH_ROWS`, then rename
-    it to its path. Arrow only, no pandas: it can run in a thread beside code that reads the frame the table
-    was made from."""
+def write_arrow_file(file: ArrowFile, table: pa.Table) -> None:
+    """Write ``table`` as the Arrow IPC file of ``file``, LZ4-compressed, in batches of :data:`ARROW_BATCH_ROWS`.
+    Arrow only, no pandas: it can run in a thread beside code that reads the frame the table was made from."""
+    path = file.path
     try:
         # LZ4-compressed: a third of the bytes, so writing the file no longer waits on the disk (4,000,000
         # customers: 1.45 GB in 3.3 s uncompressed, 0.51 GB in 0.7 s; the writer reads it back in 0.3 s)
         # categoricals stay dictionary-encoded (one dictionary per column, shared by every batch): GDAL writes
         # the text they stand for
         options = pa.ipc.IpcWriteOptions(compression="lz4")
-        rows = table.slice(part * ARROW_PART_ROWS, ARROW_PART_ROWS)
-        with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as out:
-            out.write_table(rows, max_chunksize=ARROW_BATCH_ROWS)
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as out:
+            out.write_table(table, max_chunksize=ARROW_BATCH_ROWS)
     except pa.ArrowIOError as exc:  # a full disk, say
         raise OSError(errno.EIO, str(exc)) from exc
-    os.rename(tmp, file.paths[part])  # whole under its name: the writer process reads a part once it is there
-
-
-def arrow_file_failed(file: ArrowFile) -> None:
-    """Tell the writer process that ``file``'s parts will not all come (it stops waiting for them)."""
-    try:
-        file.failed.touch()
-    except OSError:  # the writer is stopped with the run anyway; this only spares it the wait
-        log.warning("could not write %s", file.failed)
-
-
-def _arrow_batches(file: ArrowFile) -> tuple[pa.Schema, Iterator[pa.RecordBatch]]:
-    """The schema of ``file`` and its batches, in order, each part read once it is in place."""
-    with pa.OSFile(str(file.paths[0])) as source:
-        schema = pa.ipc.open_file(source).schema
-
-    def batches() -> Iterator[pa.RecordBatch]:
-        for path in file.paths:
-            while not path.exists():
-                if file.failed.exists():
-                    raise OutputError("the customers were not all handed over", path=path)
-                time.sleep(PART_POLL_S)
-            with pa.OSFile(str(path)) as source:
-                reader = pa.ipc.open_file(source)
-                for i in range(reader.num_record_batches):
-                    yield reader.get_batch(i)
-
-    return schema, batches()
-
-
-#: how often the writer process looks for the next part of an :class:`ArrowFile`
-PART_POLL_S = 0.01
 
 
 def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
@@ -445,15 +401,12 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
         elif isinstance(layer, ArrowFile):
             # read a batch at a time and given to GDAL as a stream, so this process holds one batch, not the
             # whole table (1.45 GB uncompressed at 4,000,000 customers)
-            schema, batches = _arrow_batches(layer)
-            try:
-                _write_arrow_points(path, name, pa.RecordBatchReader.from_batches(schema, batches), layer.geometry,
-                                    layer.crs)
-            except RuntimeError as exc:  # pyogrio's word for the stream's error: a part that never came
-                if layer.failed.exists():
-                    raise OutputError("the customers were not all handed over", path=path) from exc
-                raise
-            points[name] = (schema.empty_table(), layer.geometry, layer.crs)
+            with pa.OSFile(str(layer.path)) as source:
+                reader = pa.ipc.open_file(source)
+                batches = (reader.get_batch(i) for i in range(reader.num_record_batches))
+                _write_arrow_points(path, name, pa.RecordBatchReader.from_batches(reader.schema, batches),
+                                    layer.geometry, layer.crs)
+            points[name] = (reader.schema.empty_table(), layer.geometry, layer.crs)
         elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
             _write_point_layer(path, name, layer)
             points[name] = layer
