@@ -87,6 +87,19 @@ def test_points_wkb_is_what_shapely_encodes(xy):
     assert vector_io.points_wkb(x, y).to_pylist() == expected
 
 
+@settings(max_examples=150, deadline=None)
+@given(st.one_of(
+    st.lists(st.text(alphabet="ab0 \u00e9", max_size=3) | st.none(), max_size=12).map(
+        lambda v: pd.Series(v, dtype=pd.StringDtype(na_value=np.nan))),  # text as read_layer gives it
+    st.lists(st.text(alphabet="ab0", max_size=2), max_size=12).map(lambda v: pd.Series(v, dtype=object)),
+    st.lists(st.integers(-3, 3), max_size=12).map(lambda v: pd.Series(v, dtype=np.int64)),
+    st.lists(st.sampled_from([0.0, -0.0, 1.5, np.nan]), max_size=12).map(lambda v: pd.Series(v, dtype=float)),
+))
+def test_has_duplicates_agrees_with_pandas_duplicated(values):
+    # pandas' own duplicated (a hash table) is the reference, missing values counting as one value
+    assert vector_io.has_duplicates(values) == bool(values.duplicated().any())
+
+
 @pytest.mark.filterwarnings("ignore::geopress.errors.GeometryWarning")  # the missing one is reported
 def test_customers_decoded_a_chunk_at_a_time_are_the_same(tmp_path, monkeypatch):
     geoms = [POINT, shapely.box(0, 0, 2, 2), None, shapely.Point(), shapely.Point(30, 40, 5), shapely.Point(7, 8),

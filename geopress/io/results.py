@@ -13,7 +13,7 @@ import shapely
 
 from ..errors import InputError
 from ..tables import neutralise_frame
-from .vector import _fmt_list
+from .vector import _fmt_list, has_duplicates
 from .write import Staging, ensure_dir, write_csv
 
 #: the layer of a run's GeoPackage that holds every customer.
@@ -75,7 +75,7 @@ def read_run_customers(path: Path, id_field: str | None = None, *, key: str = "c
                          f"there: {_fmt_list(fields, 20)}; pass --id-field with the id field both runs have",
                          path=path, key=err_key)
     gdf = read_run_layer(path, fields, required=[id_key, *RUN_COLUMNS], key=key, hint=hint)
-    if gdf[id_key].duplicated().any():
+    if has_duplicates(gdf[id_key]):
         raise InputError(f"field '{id_key}' ({whence}) has duplicate values, so it cannot match customers; "
                          "pass --id-field with a field that is unique in both runs", path=path, key=err_key)
     return gdf, id_key
