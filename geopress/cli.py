@@ -25,6 +25,7 @@ from typing import Callable
 import click
 
 from . import pipeline
+from ._compat import keep_freed_memory
 from ._version import __version__
 from .config import load_config
 from .errors import GeopressError, InputError, OutputError
@@ -439,4 +440,5 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
 
 def main(argv: list[str] | None = None) -> None:
     """Console-script entry point."""
+    keep_freed_memory()
     cli.main(args=argv, prog_name="geopress", obj={})
