@@ -93,13 +93,11 @@ def keep_freed_memory() -> None:
     Arrow allocates from the C library (its default, mimalloc, hands large blocks back to the system at
     once), and glibc takes every block from its heap (no block of its own mapping, which goes back to the
     system when freed), never shrinks that heap, and keeps one heap for all threads (what the target
-    areas' threads free is then reused by the run's own thread, not kept apart in theirs). Memory new to
-    a process costs the kernel a page fault and a page of zeros; on virtual machines that return freed
-    pages to their host, it costs the host's work too. Measured on the bench machine (scripts/README.md):
-    at 4,000,000 customers a quarter less time and a fifth less CPU for a run; at 10,000,000 a peak of
-    7.7 to 7.9 GB for all processes (7.3 GB with one heap for all threads) against 6.2 to 6.4 GB before.
-    For a process that runs geopress only (the command line); a Python session that imports geopress
-    keeps its own allocators.
+    areas' threads free can then serve the run's own thread). Memory new to a process costs the kernel a
+    page fault and a page of zeros; on virtual machines that return freed pages to their host, it costs
+    the host's work too. The price is a higher peak: scripts/README.md has what it bought and what it
+    costs. For a process that runs geopress only (the command line); a Python session that imports
+    geopress keeps its own allocators.
     """
     global _KEEPING
     import pyarrow as pa
