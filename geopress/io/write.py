@@ -535,22 +535,37 @@ def _crs_text(crs: Any) -> str | None:
     return f"EPSG:{epsg}" if epsg else crs.to_wkt("WKT1_GDAL")
 
 
-def write_csv(path: Path, df: pd.DataFrame) -> None:
-    """UTF-8 CSV with a byte-order mark, a header, no index.
+#: rows of a CSV made at a time: the text of one slice of rows is all a CSV holds beside its frame
+CSV_CHUNK_ROWS = 131_072
+
+
+def write_csv(path: Path, df: pd.DataFrame, prepare: Callable[[pd.DataFrame], pd.DataFrame] | None = None) -> None:
+    """UTF-8 CSV with a byte-order mark, a header, no index; ``prepare(rows)`` first, when given, maps each slice of
+    rows (a function of each row alone, such as :func:`geopress.tables.neutralise_frame`).
 
     The mark is how a spreadsheet on Windows tells UTF-8 from its ANSI code
     page: without it "Zoë" opens as "ZoÃ«". Readers that know UTF-8 skip it
     (Python: ``encoding="utf-8-sig"``; pandas.read_csv does by itself).
+
+    The rows are made :data:`CSV_CHUNK_ROWS` at a time (:func:`_csv_rows`), so a list of millions of rows never
+    holds all its text at once; where a slice has a value that way does not cover, pandas writes the whole file.
     """
-    body = _csv_rows(df)
-    if body is None:
-        df.to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\n")
-        return
-    header = io.StringIO()
-    csv.writer(header, lineterminator="\n").writerow([str(c) for c in df.columns])
-    with open(path, "wb") as fh:
-        fh.write(header.getvalue().encode("utf-8-sig"))
-        fh.write(body)
+    def prepared(rows: pd.DataFrame) -> pd.DataFrame:
+        return rows if prepare is None else prepare(rows)
+
+    if df.shape[1] >= 2 and len(df) > 0:
+        header = io.StringIO()
+        csv.writer(header, lineterminator="\n").writerow([str(c) for c in df.columns])
+        with open(path, "wb") as fh:
+            fh.write(header.getvalue().encode("utf-8-sig"))
+            for start in range(0, len(df), CSV_CHUNK_ROWS):
+                body = _csv_rows(prepared(df.iloc[start:start + CSV_CHUNK_ROWS]))
+                if body is None:
+                    break
+                fh.write(body)
+            else:
+                return
+    prepared(df).to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\n")
 
 
 #: characters that make the csv module (pandas' writer) quote a cell, with QUOTE_MINIMAL and "\\n" ending lines (a
@@ -622,7 +637,7 @@ def _csv_cells(column: pd.Series) -> pa.Array | None:
 def write_list_csv(path: Path, df: pd.DataFrame) -> None:
     """A mailing list as CSV (:func:`write_csv`), each text cell a spreadsheet would run as a formula
     given a leading apostrophe (:func:`geopress.tables.neutralise_frame`)."""
-    write_csv(path, neutralise_frame(df))
+    write_csv(path, df, neutralise_frame)
 
 
 #: rows of one worksheet in an .xlsx workbook (Excel's limit; from memory)
