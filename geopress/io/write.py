@@ -553,18 +553,17 @@ def write_csv(path: Path, df: pd.DataFrame, prepare: Callable[[pd.DataFrame], pd
     def prepared(rows: pd.DataFrame) -> pd.DataFrame:
         return rows if prepare is None else prepare(rows)
 
-    if df.shape[1] >= 2 and len(df) > 0:
-        header = io.StringIO()
-        csv.writer(header, lineterminator="\n").writerow([str(c) for c in df.columns])
-        with open(path, "wb") as fh:
-            fh.write(header.getvalue().encode("utf-8-sig"))
-            for start in range(0, len(df), CSV_CHUNK_ROWS):
-                body = _csv_rows(prepared(df.iloc[start:start + CSV_CHUNK_ROWS]))
-                if body is None:
-                    break
-                fh.write(body)
-            else:
-                return
+    header = io.StringIO()
+    csv.writer(header, lineterminator="\n").writerow([str(c) for c in df.columns])
+    with open(path, "wb") as fh:
+        fh.write(header.getvalue().encode("utf-8-sig"))
+        for start in range(0, len(df), CSV_CHUNK_ROWS):  # no rows: the header alone, as pandas writes it
+            body = _csv_rows(prepared(df.iloc[start:start + CSV_CHUNK_ROWS]))
+            if body is None:
+                break
+            fh.write(body)
+        else:
+            return
     prepared(df).to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\n")
 
 
