@@ -250,6 +250,24 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
     return value, round(time.perf_counter() - t0, 4)
 
 
+def _zones_beside_terrain(cfg: Config, clock: _Clock, cust: vector_io.Customers, zones: vector_io.Zones,
+                          shift: datum_io.DatumShift) -> tuple[np.ndarray, raster_io.TerrainResult]:
+    """Each customer's zone polygon (:func:`geopress.zones.assign_xy`) and ground (``sample_terrain``), the zone
+    join in a thread while this one samples: both read only the customers' coordinates, and shapely, GDAL and
+    numpy release the GIL for most of their work (scripts/README.md has what it saves). The join's seconds go
+    in the timings as "assign zones (thread)". An error of either is raised once both have finished."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="geopress-zones") as pool:
+        joining = pool.submit(_timed, assign_xy, cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority)
+        # leaving the block waits for the join, an error here too: no thread is left reading the customers
+        terrain = raster_io.sample_terrain(cfg.terrain, cust.x, cust.y, cust.crs, shift,
+                                           count=clock.counter("sample terrain", "customers"))
+    zi, seconds = joining.result()
+    clock.timings["assign zones (thread)"] = seconds
+    return zi, terrain
+
+
 @dataclass
 class Screening:
     """What :func:`summarise` takes from :func:`screen` beside the :class:`Result`."""
@@ -381,18 +399,18 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
             joined = engine_dask.assign_and_sample(cust, zones, cfg.terrain, shift, scheduler=scheduler,
                                                    partitions=partitions)
     # ---
-    with clock.step("assign zones"):
-        zi = joined.zone_index if joined else assign_xy(cust.x, cust.y, cust.crs, zones.polygons, zones.crs,
-                                                        zones.priority)
+    with clock.step("sample terrain"):
+        if joined:
+            zi, terrain = joined.zone_index, joined.terrain
+        else:
+            zi, terrain = _zones_beside_terrain(cfg, clock, cust, zones, shift)
+    with clock.step("check zones and terrain"):
         zoned = zi >= 0
         zone = cls.names_at(zones.zone_ids, zi, zoned)
         zone_code = _zone_codes(zi, zones, [s.zone for s in cfg.zones.sources])
         hgl_high = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(crit.psi_per_ft)[0])
         hgl_low = _zone_values(zi, zones, cfg, lambda s: s.hgl_range(crit.psi_per_ft)[1])
         hgl_unc = _zone_values(zi, zones, cfg, lambda s: s.hgl_uncertainty_ft)
-    with clock.step("sample terrain"):
-        terrain = joined.terrain if joined else raster_io.sample_terrain(
-            cfg.terrain, cust.x, cust.y, cust.crs, shift, count=clock.counter("sample terrain", "customers"))
         ground = terrain.ground_ft
         # the guards first: too few customers on the terrain is a CRS or extent problem, said as such
         ground_table = apply_guards(cfg, terrain, zone_code, int(np.count_nonzero(cust.has_geometry)), cust.crs,

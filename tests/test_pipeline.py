@@ -9,6 +9,8 @@ import json
 import sqlite3
 import subprocess
 import sys
+import threading
+import time
 from pathlib import Path
 
 import numpy as np
@@ -884,3 +886,56 @@ def test_a_run_pauses_the_cycle_collector_and_restores_it(world, monkeypatch):
         assert not gc.isenabled()  # left as the caller had it
     finally:
         gc.enable()
+
+
+def test_the_zone_join_runs_while_the_terrain_is_sampled(world, monkeypatch):
+    # each waits for the other to have started: one after the other, the first would time out
+    joining, sampling = threading.Event(), threading.Event()
+    real_join, real_sample = pipeline.assign_xy, pipeline.raster_io.sample_terrain
+
+    def join(*args):
+        joining.set()
+        assert sampling.wait(timeout=30), "the sampling never started beside the zone join"
+        return real_join(*args)
+
+    def sample(*args, **kwargs):
+        sampling.set()
+        assert joining.wait(timeout=30), "the zone join never started beside the sampling"
+        return real_sample(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "assign_xy", join)
+    monkeypatch.setattr(pipeline.raster_io, "sample_terrain", sample)
+    res = geopress.run(world.config_path)
+    monkeypatch.undo()
+    alone = geopress.run(world.config_path, write=False)
+    screened = [c for c in res.customers.columns if c not in ("previous_status", "change")]  # the second run has a baseline
+    pd.testing.assert_frame_equal(res.customers[screened], alone.customers[screened])
+    assert "assign zones (thread)" in res.info["timings_s"]
+
+
+@pytest.mark.parametrize("failing", ["join", "sample"])
+def test_an_error_beside_the_zone_join_waits_for_both(world, monkeypatch, failing):
+    # an error of either is raised only once the other has finished: no thread is left reading the customers
+    finished = []
+    real_join, real_sample = pipeline.assign_xy, pipeline.raster_io.sample_terrain
+
+    def join(*args):
+        time.sleep(0.1 if failing == "join" else 0.6)  # the one that fails, first
+        if failing == "join":
+            raise InputError("broken zone join", key="zones.path")
+        finished.append("join")
+        return real_join(*args)
+
+    def sample(*args, **kwargs):
+        time.sleep(0.1 if failing == "sample" else 0.6)
+        if failing == "sample":
+            raise InputError("broken sampling", key="terrain.paths")
+        finished.append("sample")
+        return real_sample(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "assign_xy", join)
+    monkeypatch.setattr(pipeline.raster_io, "sample_terrain", sample)
+    with pytest.raises(InputError, match=f"broken {'zone join' if failing == 'join' else 'sampling'}"):
+        geopress.run(world.config_path, write=False)
+    assert finished == ["sample" if failing == "join" else "join"]
+    assert not [t for t in threading.enumerate() if t.name.startswith("geopress-zones")]
