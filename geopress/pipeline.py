@@ -15,7 +15,7 @@ import shutil
 import threading
 import time
 import warnings
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
@@ -256,6 +256,8 @@ def _zones_beside_terrain(cfg: Config, clock: _Clock, cust: vector_io.Customers,
     join in a thread while this one samples: both read only the customers' coordinates, and shapely, GDAL and
     numpy release the GIL for most of their work (scripts/README.md has what it saves). The join's seconds go
     in the timings as "assign zones (thread)". An error of either is raised once both have finished."""
+    from concurrent.futures import ThreadPoolExecutor
+
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="geopress-zones") as pool:
         joining = pool.submit(_timed, assign_xy, cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority)
         # leaving the block waits for the join, an error here too: no thread is left reading the customers
@@ -281,8 +283,6 @@ class Screening:
     sigma: np.ndarray
     finding_counts: dict[str, int]
     area_info: dict[str, Any]
-    #: each zone's best HGL (geopress.planning.best_hgl_table), for the zone summary
-    best_hgl: pd.DataFrame
 
 
 def screen(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str = "local", scheduler: Any = None,
@@ -434,57 +434,42 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
                              psi_top=p.psi_top, floors=floors, criteria=crit, findings=found, levels=levels)
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
-    status = cls.status_names(codes)
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="geopress-best-hgl") as pool:
-        # each zone's best HGL needs only the zones, ground, floors and statuses: a thread works them out while
-        # this one finds the target areas and makes the table (leaving the block waits for it, an error here too)
-        best = pool.submit(_timed, planning.best_hgl_table, _for_best_hgl(cfg, cust, zone, ground, status), cfg)
-        with clock.step("target areas"):
-            areas, area_layer, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
-        with clock.step("customer table"):
-            frame = cust.frame
-            id_field = cfg.customers.id_field
-            extra = [c for c in frame.columns if c != id_field]
-            data = {
-                id_field: _values(frame[id_field]),
-                "zone": zone,
-                "ground_ft": ground,
-                "hgl_high_ft": hgl_high,
-                "hgl_low_ft": hgl_low,
-                "psi_max": p.psi_max,
-                "psi_min": p.psi_min,
-                "psi_top": p.psi_top,
-                **levels,
-                "status": status,
-                "reason": reason,
-                "margin_psi": margin,
-                "sigma_psi": sigma,
-                "confidence": confidence.classes(codes, margin, sigma),
-                **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
-                **{AREA_COLUMNS[name]: areas.member[name] for name in cls.FINDINGS},
-            }
-            for c in extra:
-                data[c] = _values(frame[c])
-            customers = pd.DataFrame(data)
-            counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
-            finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
-    best_hgl, clock.timings["best HGL (thread)"] = best.result()
+    with clock.step("target areas"):
+        areas, area_layer, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
+    with clock.step("customer table"):
+        frame = cust.frame
+        id_field = cfg.customers.id_field
+        extra = [c for c in frame.columns if c != id_field]
+        data = {
+            id_field: _values(frame[id_field]),
+            "zone": zone,
+            "ground_ft": ground,
+            "hgl_high_ft": hgl_high,
+            "hgl_low_ft": hgl_low,
+            "psi_max": p.psi_max,
+            "psi_min": p.psi_min,
+            "psi_top": p.psi_top,
+            **levels,
+            "status": cls.status_names(codes),
+            "reason": reason,
+            "margin_psi": margin,
+            "sigma_psi": sigma,
+            "confidence": confidence.classes(codes, margin, sigma),
+            **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
+            **{AREA_COLUMNS[name]: areas.member[name] for name in cls.FINDINGS},
+        }
+        for c in extra:
+            data[c] = _values(frame[c])
+        customers = pd.DataFrame(data)
+        counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
+        finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     result = Result(config=cfg, customers=customers, points=Points(x=cust.x, y=cust.y, crs=cust.crs, wkb=cust.wkb),
                     zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={}, plan=plan, areas=area_layer)
     return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
                              ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
-                             finding_counts=finding_counts, area_info=area_info, best_hgl=best_hgl)
-
-
-def _for_best_hgl(cfg: Config, cust: vector_io.Customers, zone: Any, ground: np.ndarray, status: Any) -> pd.DataFrame:
-    """The customers' columns :func:`geopress.planning.best_hgl_table` reads: zone, ground, status and floors."""
-    columns = {"zone": zone, "ground_ft": ground, "status": status}
-    floors_field = cfg.customers.floors_field
-    if floors_field:
-        columns[floors_field] = _values(cust.frame[floors_field])
-    return pd.DataFrame(columns)
+                             finding_counts=finding_counts, area_info=area_info)
 
 
 def summarise(result: Result, s: Screening, clock: _Clock) -> None:
@@ -507,8 +492,9 @@ def summarise(result: Result, s: Screening, clock: _Clock) -> None:
             shown, rated, id_field=id_field, fields=[*cfg.customers.mail_fields, *cfg.customers.letter_fields]), units)
         summary = summary.merge(confidence.zone_counts(customers["zone"], customers["confidence"],
                                                        [s.zone for s in cfg.zones.sources]), on="zone", how="left")
-        # -- planning: best HGL per zone (geopress.planning), worked out while the customers were screened --
-        summary = summary.merge(s.best_hgl, on="zone", how="left")
+    # -- planning: serviceable band and best HGL per zone (geopress.planning) --
+    with clock.step("best HGL"):
+        summary = summary.merge(planning.best_hgl_table(customers, cfg), on="zone", how="left")
     readings = by_zone = None
     if cfg.readings is not None:  # read after the customers' results: they never depend on the readings
         with clock.step("check field readings"):

@@ -939,31 +939,3 @@ def test_an_error_beside_the_zone_join_waits_for_both(world, monkeypatch, failin
         geopress.run(world.config_path, write=False)
     assert finished == ["sample" if failing == "join" else "join"]
     assert not [t for t in threading.enumerate() if t.name.startswith("geopress-zones")]
-
-
-def test_best_hgl_is_worked_out_while_the_target_areas_are_found(crafted, monkeypatch):
-    from geopress import planning
-
-    # each waits for the other to have started: one after the other, the first would time out
-    best_started, areas_started = threading.Event(), threading.Event()
-    real_best, real_areas = planning.best_hgl_table, pipeline._target_areas
-
-    def best(*args):
-        best_started.set()
-        assert areas_started.wait(timeout=30), "the target areas never started beside the best HGL"
-        return real_best(*args)
-
-    def areas(*args):
-        areas_started.set()
-        assert best_started.wait(timeout=30), "the best HGL never started beside the target areas"
-        return real_areas(*args)
-
-    monkeypatch.setattr(planning, "best_hgl_table", best)
-    monkeypatch.setattr(pipeline, "_target_areas", areas)
-    res = run_crafted(crafted)
-    monkeypatch.undo()
-    assert "best HGL (thread)" in res.info["timings_s"]
-    # the columns the thread was given give what the whole table gives
-    whole = real_best(res.customers, res.config)
-    pd.testing.assert_frame_equal(res.zone_summary[whole.columns].reset_index(drop=True), whole)
-    assert res.zone_summary["best_high_water_ft_from"].notna().any()
