@@ -10,13 +10,17 @@ same of openpyxl, which the report extra also brings, for the mailing lists'
 .xlsx copies. :func:`import_dask` returns the ``dask`` extra's modules or
 raises MissingExtraError. :func:`release_freed_heap` returns freed heap pages to the
 system where the C library can (glibc), and does nothing elsewhere;
-:func:`keep_freed_memory` makes a process keep them instead, for its own reuse.
+:func:`keep_freed_memory` makes a process keep them instead, for its own reuse;
+:func:`writer_first` makes its runs give the CPU to their writer process once it has the customers.
 """
 
 from __future__ import annotations
 
 import ctypes
 import importlib.util
+import os
+import sys
+import threading
 from types import ModuleType
 
 from .errors import MissingExtraError
@@ -108,3 +112,37 @@ def keep_freed_memory() -> None:
         _MALLOPT(_M_TRIM_THRESHOLD, 2**31 - 1)
         _MALLOPT(_M_ARENA_MAX, 1)
     _KEEPING = True
+
+
+#: the nice value a run's own thread takes once its writer process has the customers (:func:`writer_first`)
+BEHIND_THE_WRITER_NICE = 10
+#: whether this process's runs give the CPU to their writer (:func:`writer_first`)
+_WRITER_FIRST = False
+
+
+def writer_first() -> None:
+    """Make this process's runs give the CPU to their writer process once it has the customers.
+
+    From then on the writer's GeoPackage (GDAL inserting the customers and building their spatial index, in two
+    threads) sets when a run ends, while the run's own work (summaries, lists, report) ends well before it and
+    then waits; on two cores the three contend. :func:`behind_the_writer` then lowers the priority of the run's
+    thread, Linux's per-thread nice value, so the writer goes first and the run's work fills the gaps
+    (scripts/README.md has what it saves). A nice value cannot be raised again without privilege, so this is
+    for a process that runs geopress only and exits (the command line), on Linux only; a Python session that
+    imports geopress keeps its priority.
+    """
+    global _WRITER_FIRST
+    _WRITER_FIRST = sys.platform.startswith("linux")
+
+
+def behind_the_writer() -> None:
+    """Lower the calling thread's priority to :data:`BEHIND_THE_WRITER_NICE` (never raise it), when this process
+    was set to :func:`writer_first`; otherwise, or where the system refuses, leave it as it is."""
+    if not _WRITER_FIRST:
+        return
+    thread = threading.get_native_id()
+    try:
+        if os.getpriority(os.PRIO_PROCESS, thread) < BEHIND_THE_WRITER_NICE:
+            os.setpriority(os.PRIO_PROCESS, thread, BEHIND_THE_WRITER_NICE)
+    except OSError:  # a container's seccomp filter, say: the run goes on at its priority
+        pass

@@ -25,7 +25,7 @@ from typing import Callable
 import click
 
 from . import pipeline
-from ._compat import keep_freed_memory
+from ._compat import keep_freed_memory, writer_first
 from ._version import __version__
 from .config import load_config
 from .errors import GeopressError, InputError, OutputError
@@ -441,4 +441,5 @@ def demo_cmd(ctx: click.Context, out_dir: Path) -> None:
 def main(argv: list[str] | None = None) -> None:
     """Console-script entry point."""
     keep_freed_memory()
+    writer_first()
     cli.main(args=argv, prog_name="geopress", obj={})

@@ -6,6 +6,7 @@ import csv
 import errno
 import gc
 import json
+import os
 import sqlite3
 import subprocess
 import sys
@@ -939,3 +940,56 @@ def test_an_error_beside_the_zone_join_waits_for_both(world, monkeypatch, failin
         geopress.run(world.config_path, write=False)
     assert finished == ["sample" if failing == "join" else "join"]
     assert not [t for t in threading.enumerate() if t.name.startswith("geopress-zones")]
+
+
+@pytest.mark.parametrize("writer_first", [True, False])
+def test_a_command_run_gives_the_cpu_to_its_writer(world, monkeypatch, writer_first):
+    # the command line's policy (_compat.writer_first): once the writer process has the customers, the run's
+    # thread takes a lower priority (Linux's per-thread nice value); a Python session's run keeps its own. The run
+    # goes in a thread of its own, so the nice value it may set stays there.
+    from geopress import _compat
+
+    if not sys.platform.startswith("linux"):
+        pytest.skip("per-thread nice values are Linux's")
+    monkeypatch.setattr(_compat, "_WRITER_FIRST", writer_first)
+    seen, failed = {}, []
+    real_track, real_summarise = pipeline.nightly.track, pipeline.summarise
+
+    def nice() -> int:
+        return os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+
+    def track(*args, **kwargs):
+        seen["before the writer"] = nice()
+        return real_track(*args, **kwargs)
+
+    def summarise(*args, **kwargs):
+        seen["after"] = nice()
+        return real_summarise(*args, **kwargs)
+
+    def run() -> None:
+        try:
+            geopress.run(world.config_path)
+        except BaseException as exc:  # noqa: BLE001 - reported below, in the test's thread
+            failed.append(exc)
+
+    monkeypatch.setattr(pipeline.nightly, "track", track)
+    monkeypatch.setattr(pipeline, "summarise", summarise)
+    start = nice()
+    thread = threading.Thread(target=run)
+    thread.start()
+    thread.join(timeout=120)
+    assert not thread.is_alive() and not failed, failed
+    lowered = max(start, _compat.BEHIND_THE_WRITER_NICE) if writer_first else start
+    assert seen == {"before the writer": start, "after": lowered}
+    assert nice() == start  # this thread's priority is untouched
+
+
+def test_the_command_line_gives_the_cpu_to_its_writer(monkeypatch):
+    from geopress import cli as cli_module
+
+    called = []
+    monkeypatch.setattr(cli_module, "writer_first", lambda: called.append("writer_first"))
+    monkeypatch.setattr(cli_module, "keep_freed_memory", lambda: called.append("keep_freed_memory"))
+    with pytest.raises(SystemExit) as exit_info:
+        cli_module.main(["--help"])
+    assert exit_info.value.code == 0 and sorted(called) == ["keep_freed_memory", "writer_first"]
