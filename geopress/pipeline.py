@@ -1036,8 +1036,8 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
             newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
         # the customers are final: the writer process writes them while their summaries and lists are made here
         writing = start_writing(result, clock, stage, worker, hand_off) if write else None
-        if writing is not None:
-            behind_the_writer()  # the writer sets the run's end from here (a command's process only: _compat)
+        if writing is not None and writing.hand_off is not None:
+            behind_the_writer()  # the writer process sets the run's end from here (a command's process only: _compat)
         summarise(result, screening, clock)
         nightly.check_unchanged(inputs)
         with clock.step("new mailing lists"):
