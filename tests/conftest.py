@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import os
+import sys
 import textwrap
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -209,3 +212,31 @@ def postgis_server():
         yield server
     finally:
         postgis_support.remove(server)
+
+
+def thread_nice() -> int:
+    """The calling thread's nice value (Linux keeps one per thread)."""
+    return os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+
+
+def run_in_its_own_thread(config_path: Path) -> None:
+    """``geopress.run(config_path)`` in a thread of its own, so a nice value it sets stays there; raises what the run
+    raised. Skips where nice values are not per thread (other systems than Linux)."""
+    import geopress
+
+    if not sys.platform.startswith("linux"):
+        pytest.skip("per-thread nice values are Linux's")
+    failed: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            geopress.run(config_path)
+        except BaseException as exc:  # noqa: BLE001 - raised below, in the caller's thread
+            failed.append(exc)
+
+    thread = threading.Thread(target=run)
+    thread.start()
+    thread.join(timeout=120)
+    assert not thread.is_alive(), "the run did not end within 120 s"
+    if failed:
+        raise failed[0]

@@ -6,7 +6,6 @@ import csv
 import errno
 import gc
 import json
-import os
 import sqlite3
 import subprocess
 import sys
@@ -42,6 +41,8 @@ from conftest import (
     customer_records,
     pixel_centre,
     plane,
+    run_in_its_own_thread,
+    thread_nice,
     write_layer,
     write_raster,
 )
@@ -945,43 +946,28 @@ def test_an_error_beside_the_zone_join_waits_for_both(world, monkeypatch, failin
 @pytest.mark.parametrize("writer_first", [True, False])
 def test_a_command_run_gives_the_cpu_to_its_writer(world, monkeypatch, writer_first):
     # the command line's policy (_compat.writer_first): once the writer process has the customers, the run's
-    # thread takes a lower priority (Linux's per-thread nice value); a Python session's run keeps its own. The run
-    # goes in a thread of its own, so the nice value it may set stays there.
+    # thread takes a lower priority (Linux's per-thread nice value); a Python session's run keeps its own
     from geopress import _compat
 
-    if not sys.platform.startswith("linux"):
-        pytest.skip("per-thread nice values are Linux's")
     monkeypatch.setattr(_compat, "_WRITER_FIRST", writer_first)
-    seen, failed = {}, []
+    seen = {}
     real_track, real_summarise = pipeline.nightly.track, pipeline.summarise
 
-    def nice() -> int:
-        return os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
-
     def track(*args, **kwargs):
-        seen["before the writer"] = nice()
+        seen["before the writer"] = thread_nice()
         return real_track(*args, **kwargs)
 
     def summarise(*args, **kwargs):
-        seen["after"] = nice()
+        seen["after"] = thread_nice()
         return real_summarise(*args, **kwargs)
-
-    def run() -> None:
-        try:
-            geopress.run(world.config_path)
-        except BaseException as exc:  # noqa: BLE001 - reported below, in the test's thread
-            failed.append(exc)
 
     monkeypatch.setattr(pipeline.nightly, "track", track)
     monkeypatch.setattr(pipeline, "summarise", summarise)
-    start = nice()
-    thread = threading.Thread(target=run)
-    thread.start()
-    thread.join(timeout=120)
-    assert not thread.is_alive() and not failed, failed
+    start = thread_nice()
+    run_in_its_own_thread(world.config_path)
     lowered = max(start, _compat.BEHIND_THE_WRITER_NICE) if writer_first else start
     assert seen == {"before the writer": start, "after": lowered}
-    assert nice() == start  # this thread's priority is untouched
+    assert thread_nice() == start  # this thread's priority is untouched
 
 
 def test_the_command_line_gives_the_cpu_to_its_writer(monkeypatch):

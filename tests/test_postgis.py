@@ -20,7 +20,7 @@ import pytest
 import shapely
 
 import postgis_support
-from conftest import BASE_CONFIG
+from conftest import BASE_CONFIG, run_in_its_own_thread, thread_nice
 from geopress import pipeline
 from geopress.io import postgis as postgis_io
 from nightly_support import assert_bad, invoke, run, snapshot
@@ -487,38 +487,20 @@ def test_readings_from_the_database_give_the_same_field_check(world, db):
 
 def test_publishing_alone_keeps_the_runs_priority(world, db, monkeypatch):
     # with no GeoPackage there is no writer process to go first: the command's policy (_compat.writer_first) leaves
-    # the run's thread as it is. The run goes in a thread of its own, so a nice value set there would stay there.
-    import os
-    import threading
-
-    import geopress
+    # the run's thread as it is
     from geopress import _compat
 
-    if not sys.platform.startswith("linux"):
-        pytest.skip("per-thread nice values are Linux's")
     world.config_path.write_text(db.config().replace(f'schema = "{db.schema}"\n',
                                                      f'schema = "{db.schema}"\ngeopackage = false\n'))
     monkeypatch.setattr(_compat, "_WRITER_FIRST", True)
-    seen, failed = [], []
+    seen = []
     real = pipeline.summarise
 
-    def nice() -> int:
-        return os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
-
     def summarise(*args, **kwargs):
-        seen.append(nice())
+        seen.append(thread_nice())
         return real(*args, **kwargs)
 
-    def run_it() -> None:
-        try:
-            geopress.run(world.config_path)
-        except BaseException as exc:  # noqa: BLE001 - reported below, in the test's thread
-            failed.append(exc)
-
     monkeypatch.setattr(pipeline, "summarise", summarise)
-    start = nice()
-    thread = threading.Thread(target=run_it)
-    thread.start()
-    thread.join(timeout=120)
-    assert not thread.is_alive() and not failed, failed
+    start = thread_nice()
+    run_in_its_own_thread(world.config_path)
     assert seen == [start] and len(db.read("customers")) == 20
