@@ -32,6 +32,28 @@ def test_read_layer_gives_the_frame_pyogrio_reads(tmp_path):
     assert wkb.to_pylist() == [shapely.to_wkb(g) if g is not None else None for g in expected.geometry]
 
 
+@pytest.mark.parametrize("one_chunk_bytes", [None, 40])
+def test_text_and_wkb_read_in_batches_come_in_one_chunk(tmp_path, monkeypatch, one_chunk_bytes):
+    # pandas takes rows of an Arrow column of many chunks by joining them all first; read in batches of 3 rows,
+    # the customers' text and WKB still come in one chunk each, the same values as pyogrio reads. With a chunk's
+    # limit below the column's bytes, text is made large_string first (still one chunk) and the WKB stays in batches.
+    n = 10
+    records = {"account": [f"A{i}" for i in range(n)], "owner": [None if i == 4 else f"Owner {i}" for i in range(n)],
+               "floors": list(range(n))}
+    path = write_layer(tmp_path / "c.gpkg", "parcels", records, [shapely.Point(i, 2 * i) for i in range(n)])
+    monkeypatch.setattr(vector_io, "READ_BATCH_ROWS", 3)
+    if one_chunk_bytes is not None:
+        monkeypatch.setattr(vector_io, "ONE_CHUNK_BYTES", one_chunk_bytes)
+    cust = vector_io.read_customers(CustomersConfig(path=path, layer="parcels", id_field="account",
+                                                    mail_fields=("owner",)))
+    expected = pyogrio.read_dataframe(path, layer="parcels", use_arrow=True)
+    for column in ("account", "owner"):
+        assert cust.frame[column].array._pa_array.num_chunks == 1
+        pd.testing.assert_series_equal(cust.frame[column], expected[column])
+    assert cust.wkb.num_chunks == (1 if one_chunk_bytes is None else 4)
+    assert cust.wkb.to_pylist() == [shapely.to_wkb(g) for g in expected.geometry]
+
+
 def test_a_layer_without_geometry_is_an_input_error(tmp_path):
     path = tmp_path / "c.gpkg"
     pyogrio.write_dataframe(pd.DataFrame({"account": ["A1"]}), path, layer="table", driver="GPKG")

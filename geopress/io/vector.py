@@ -95,6 +95,38 @@ def layer_info(path: Path, layer: str) -> dict:
 _TEXT = {pa.string(): pd.StringDtype(na_value=np.nan), pa.large_string(): pd.StringDtype(na_value=np.nan)}.get
 
 
+#: the features read in one Arrow batch (pyogrio's default)
+READ_BATCH_ROWS = 65_536
+#: the most bytes (values and offsets) one chunk of Arrow's ``string`` or ``binary`` can hold: its offsets are 32-bit
+ONE_CHUNK_BYTES = 2**31 - 1
+
+
+def _one_chunk(column: pa.ChunkedArray) -> pa.ChunkedArray:
+    """``column`` in one chunk; text beyond :data:`ONE_CHUNK_BYTES` as ``large_string``, anything else that large
+    as it is.
+
+    Columns come as read, one chunk per batch, and pandas takes rows of an Arrow column with Arrow's ``take``,
+    which first joins all its chunks: a copy of the whole column for every take, of no rows too, and a run takes
+    rows of the customers' text for every list (scripts/README.md has what it cost). The WKB is joined too: a
+    batch's buffers are freed only once none of its columns is left, so keeping it in batches would keep the
+    text's batches as well.
+    """
+    if column.num_chunks <= 1:
+        return column
+    if column.nbytes > ONE_CHUNK_BYTES:
+        if not pa.types.is_string(column.type):
+            return column
+        column = column.cast(pa.large_string())
+    return pa.chunked_array([column.combine_chunks()], type=column.type)
+
+
+def _pandas(table: pa.Table) -> pd.DataFrame:
+    """``table`` as pandas, its text as Arrow-backed strings in one chunk each (:func:`_one_chunk`)."""
+    columns = [_one_chunk(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
+               for c in table.columns]
+    return pa.Table.from_arrays(columns, names=table.column_names).to_pandas(types_mapper=_TEXT)
+
+
 def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[int, int | None], None] | None = None,
                total: int | None = None, geometry: bool = True) -> tuple[pd.DataFrame, pa.ChunkedArray]:
     """The ``columns`` and geometry of a layer, errors translated, and its geometries as the file's WKB.
@@ -108,7 +140,8 @@ def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[i
     total)`` is told the features read after each.
     """
     try:
-        with pyogrio.open_arrow(path, layer=layer, columns=columns, use_pyarrow=True) as (meta, reader):
+        with pyogrio.open_arrow(path, layer=layer, columns=columns, use_pyarrow=True,
+                                batch_size=READ_BATCH_ROWS) as (meta, reader):
             batches, done = [], 0
             for batch in reader:
                 batches.append(batch)
@@ -119,9 +152,9 @@ def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[i
         name = meta["geometry_name"] or "wkb_geometry"
         if name not in table.column_names:
             raise InputError(f"layer '{layer}' has no geometry; it must hold points or polygons", path=path, key="geometry")
-        wkb = table[name]
+        wkb = _one_chunk(table[name])
         frame = (_frame(table.drop_columns([name]), wkb, meta["crs"]) if geometry
-                 else table.drop_columns([name]).to_pandas(types_mapper=_TEXT))
+                 else _pandas(table.drop_columns([name])))
     except InputError:
         raise
     except Exception as exc:
@@ -132,7 +165,7 @@ def read_layer(path: Path, layer: str, columns: list[str], *, count: Callable[[i
 def _frame(attributes: pa.Table, wkb: pa.ChunkedArray, crs) -> gpd.GeoDataFrame:
     """A layer's attributes (Arrow) and its WKB as a GeoDataFrame, as :func:`read_layer` gives it."""
     geometry = shapely.from_wkb(wkb.to_numpy(zero_copy_only=False))
-    return gpd.GeoDataFrame(attributes.to_pandas(types_mapper=_TEXT), geometry=gpd.GeoSeries(geometry, crs=crs))
+    return gpd.GeoDataFrame(_pandas(attributes), geometry=gpd.GeoSeries(geometry, crs=crs))
 
 
 def _read_database(src, key: str, wanted: dict[str, str], count=None, columns: list[str] | None = None,
@@ -143,8 +176,8 @@ def _read_database(src, key: str, wanted: dict[str, str], count=None, columns: l
     from . import postgis
 
     got = postgis.read_source(src, key, wanted, count=count, columns=columns)
-    frame = _frame(got.table, got.wkb, got.crs) if geometry else got.table.to_pandas(types_mapper=_TEXT)
-    return frame, got.wkb, got.crs, got.name, got.where
+    frame = _frame(got.table, got.wkb, got.crs) if geometry else _pandas(got.table)
+    return frame, _one_chunk(got.wkb), got.crs, got.name, got.where
 
 
 def check_fields(path: Path, layer: str, info: dict, wanted: dict[str, str]) -> None:
