@@ -15,7 +15,7 @@ import shutil
 import threading
 import time
 import warnings
-from concurrent.futures import Future
+from concurrent.futures import Future, ThreadPoolExecutor
 from concurrent.futures import TimeoutError as FutureTimeout
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
@@ -256,8 +256,6 @@ def _zones_beside_terrain(cfg: Config, clock: _Clock, cust: vector_io.Customers,
     join in a thread while this one samples: both read only the customers' coordinates, and shapely, GDAL and
     numpy release the GIL for most of their work (scripts/README.md has what it saves). The join's seconds go
     in the timings as "assign zones (thread)". An error of either is raised once both have finished."""
-    from concurrent.futures import ThreadPoolExecutor
-
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="geopress-zones") as pool:
         joining = pool.submit(_timed, assign_xy, cust.x, cust.y, cust.crs, zones.polygons, zones.crs, zones.priority)
         # leaving the block waits for the join, an error here too: no thread is left reading the customers

@@ -122,8 +122,7 @@ def _one_chunk(column: pa.ChunkedArray) -> pa.ChunkedArray:
 
 def _pandas(table: pa.Table) -> pd.DataFrame:
     """``table`` as pandas, its text as Arrow-backed strings in one chunk each (:func:`_one_chunk`)."""
-    columns = [_one_chunk(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
-               for c in table.columns]
+    columns = [_one_chunk(c) if _TEXT(c.type) is not None else c for c in table.columns]
     return pa.Table.from_arrays(columns, names=table.column_names).to_pandas(types_mapper=_TEXT)
 
 
