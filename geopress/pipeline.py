@@ -114,7 +114,7 @@ class Result:
     # set by geopress.nightly.track: the baseline's customers this run lacks, and the new_* mailing lists
     removed: pd.DataFrame | None = None
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
-    #: the target areas (geopress.targets), polygons in the customers' CRS
+    #: the target areas (geopress.targets), polygons in the customers' CRS; set by summarise
     areas: gpd.GeoDataFrame | None = None
 
     def located(self) -> gpd.GeoDataFrame:
@@ -280,6 +280,8 @@ class Screening:
     levels: dict[str, np.ndarray]
     sigma: np.ndarray
     finding_counts: dict[str, int]
+    areas: targets_mod.Areas
+    area_crs: pyproj.CRS
     area_info: dict[str, Any]
 
 
@@ -433,7 +435,7 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
     with clock.step("target areas"):
-        areas, area_layer, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
+        areas, area_crs, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
     with clock.step("customer table"):
         frame = cust.frame
         id_field = cfg.customers.id_field
@@ -464,18 +466,20 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
     with clock.step("wait for the service band"):
         plan, clock.timings["service band (child process)"] = band.result()
     result = Result(config=cfg, customers=customers, points=Points(x=cust.x, y=cust.y, crs=cust.crs, wkb=cust.wkb),
-                    zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={}, plan=plan, areas=area_layer)
+                    zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={}, plan=plan)
     return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
                              ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
-                             finding_counts=finding_counts, area_info=area_info)
+                             finding_counts=finding_counts, areas=areas, area_crs=area_crs, area_info=area_info)
 
 
 def summarise(result: Result, s: Screening, clock: _Clock) -> None:
-    """Add to ``result`` (from :func:`screen`) what is made from its customers: the zone summary with the best
-    control ranges, the mailing lists, the field check and what run.json records. Reads only the field
+    """Add to ``result`` (from :func:`screen`) what is made from its customers: the target areas' layer, the zone
+    summary with the best control ranges, the mailing lists, the field check and what run.json records. Reads only the field
     readings; leaves the customers as they are."""
     cfg, customers, cust, p, levels, sigma = result.config, result.customers, s.customers, s.pressures, s.levels, s.sigma
     crit, id_field, zones, shift, terrain, plan = cfg.criteria, cfg.customers.id_field, s.zones, s.shift, s.terrain, result.plan
+    with clock.step("target areas' addresses"):
+        result.areas = _area_layer(cfg, cust, s.areas, s.area_crs)
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -553,37 +557,44 @@ def _projected(x: np.ndarray, y: np.ndarray, crs: pyproj.CRS) -> tuple[np.ndarra
 
 def _target_areas(cfg: Config, cust: vector_io.Customers, zone_code: np.ndarray, ground: np.ndarray,
                   floors: np.ndarray, p: Any, codes: np.ndarray, found: dict[str, np.ndarray],
-                  ) -> tuple[targets_mod.Areas, gpd.GeoDataFrame, dict[str, Any]]:
-    """The target areas (geopress.targets) of a run: the areas, their layer in the customers' CRS, and what
-    run.json records of them."""
+                  ) -> tuple[targets_mod.Areas, pyproj.CRS, dict[str, Any]]:
+    """The target areas (geopress.targets) of a run, without their addresses (:func:`_area_layer`): the areas,
+    the CRS they were clustered in, and what run.json records of them."""
     crit = cfg.criteria
     names = [s.zone for s in cfg.zones.sources]
     low = {s.zone: s.hgl_range(crit.psi_per_ft)[1] for s in cfg.zones.sources}
     x, y, ft_per_unit, crs = _projected(cust.x, cust.y, cust.crs)
-    mail = list(cfg.customers.mail_fields)
-    if not mail:
-        address = np.arange(len(ground))
-    else:  # a code per mailing address, for the customers an area can hold only (-1 for the others)
-        address = np.full(len(ground), -1, dtype=np.intp)
-        rows = np.flatnonzero(np.logical_or.reduce([found[f] for f in FLAGGED_STATUSES])) if cfg.targets.enabled \
-            else np.zeros(0, dtype=np.intp)
-        if rows.size:
-            address[rows] = cust.frame[mail].iloc[rows].groupby(mail, dropna=False, sort=False).ngroup().to_numpy()
     top = np.where(floors > 1, ground + (floors - 1) * crit.floor_height_ft, ground)  # NaN floors: one story
     areas = targets_mod.target_areas(
         x=x, y=y, ft_per_unit=ft_per_unit, zone=zone_code, zone_names=names,
         zone_low_hgl_ft=np.array([low[n] for n in names]), ground_ft=ground, top_ft=top,
         pressures={"psi_min": p.psi_min, "psi_max": p.psi_max, "psi_top": p.psi_top}, found=found,
-        ok=codes == cls.CODE["ok"], address=address, criteria=crit, targets=cfg.targets)
-    layer = gpd.GeoDataFrame(areas.table, geometry="geometry", crs=crs)
-    if not crs.equals(cust.crs):
-        layer = layer.to_crs(cust.crs)
+        ok=codes == cls.CODE["ok"], criteria=crit, targets=cfg.targets)
+    table = areas.table
     info = {"enabled": cfg.targets.enabled, "distance_ft": cfg.targets.distance_ft,
             "min_customers": cfg.targets.min_customers,
-            "clustered_in": crs.to_string(), "areas": int(len(layer)),
-            "by_finding": {f: int((layer["finding"] == f).sum()) for f in FLAGGED_STATUSES},  # the findings that get areas
-            "customers_in_areas": int(layer["customers"].sum())}
-    return areas, layer, info
+            "clustered_in": crs.to_string(), "areas": int(len(table)),
+            "by_finding": {f: int((table["finding"] == f).sum()) for f in FLAGGED_STATUSES},  # the findings that get areas
+            "customers_in_areas": int(table["customers"].sum())}
+    return areas, crs, info
+
+
+def _area_layer(cfg: Config, cust: vector_io.Customers, areas: targets_mod.Areas, crs: pyproj.CRS) -> gpd.GeoDataFrame:
+    """The target areas' layer, in the customers' CRS, with each area's distinct mailing addresses (every
+    customer its own address when there are no mail fields)."""
+    mail = list(cfg.customers.mail_fields)
+    if not mail:
+        address = np.arange(len(cust.frame))
+    else:  # a code per mailing address of the areas' customers (-1 for the others, never read)
+        address = np.full(len(cust.frame), -1, dtype=np.intp)
+        taken = np.zeros(len(cust.frame), dtype=bool)
+        for r in areas.rows:
+            taken[r] = True
+        rows = np.flatnonzero(taken)
+        if rows.size:
+            address[rows] = cust.frame[mail].iloc[rows].groupby(mail, dropna=False, sort=False).ngroup().to_numpy()
+    layer = gpd.GeoDataFrame(targets_mod.with_addresses(areas, address), geometry="geometry", crs=crs)
+    return layer if crs.equals(cust.crs) else layer.to_crs(cust.crs)
 
 
 def terrain_accuracy(cfg: Config) -> dict[str, Any]:

@@ -395,30 +395,52 @@ def _outline(x: NDArray[np.float64], y: NDArray[np.float64], part: NDArray[np.in
 
 @dataclass
 class Areas:
-    """The target areas (``table``: one row per area, :data:`COLUMNS`, sorted by customers served, most first)
-    and, per finding, each customer's area id (missing where none)."""
+    """The target areas: ``table``, one row per area, sorted by customers served, most first, with
+    :data:`COLUMNS` but ``addresses`` (:func:`with_addresses` adds it); per finding, each customer's area id
+    (missing where none); and each area's customers (``rows``, in the table's order)."""
 
     table: pd.DataFrame
     member: dict[str, pd.api.extensions.ExtensionArray]
+    rows: list[NDArray[np.intp]]
+
+
+def with_addresses(areas: Areas, address: NDArray[np.intp]) -> pd.DataFrame:
+    """``areas``' table with :data:`COLUMNS`: each area's count of distinct mailing addresses added, from
+    ``address``, a code per customer (equal codes, one address; codes from 0 up). Only the areas' customers'
+    codes are read, so the others may be anything.
+
+    Apart from :func:`target_areas` because the addresses change no area: a run counts them after its
+    customers have gone to the writer."""
+    seen = np.zeros(max((int(address[r].max()) + 1 for r in areas.rows if r.size), default=0), dtype=bool)
+    counts = []
+    for r in areas.rows:  # a flag per code seen: no sort or hash of the codes (millions in an area)
+        codes = address[r]
+        seen[codes] = True
+        counts.append(int(np.count_nonzero(seen)))
+        seen[codes] = False
+    table = areas.table.copy()
+    table.insert(COLUMNS.index("addresses"), "addresses", np.array(counts, dtype=np.int64))
+    return table
 
 
 def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit: float, zone: NDArray[np.intp],
                  zone_names: list[str], zone_low_hgl_ft: NDArray[np.float64], ground_ft: NDArray[np.float64],
                  top_ft: NDArray[np.float64], pressures: Mapping[str, NDArray[np.float64]],
-                 found: Mapping[str, NDArray[np.bool_]], ok: NDArray[np.bool_], address: NDArray[np.intp],
-                 criteria, targets: TargetCriteria) -> Areas:
+                 found: Mapping[str, NDArray[np.bool_]], ok: NDArray[np.bool_], criteria,
+                 targets: TargetCriteria) -> Areas:
     """The target areas of every finding and zone.
 
     ``x``/``y`` are the customers' coordinates in a projected CRS (``ft_per_unit`` ft per unit), ``zone`` each
     customer's index into ``zone_names`` (-1: none) and ``zone_low_hgl_ft`` each zone's low HGL; ``top_ft`` the
     top floor's elevation (the ground for one story); ``pressures`` the psi columns of :data:`geopress.findings.WORST`
-    by name; ``found`` each finding's customers; ``ok`` the customers with status ok; ``address`` a code per
-    customer's mailing address (equal codes, one address).
+    by name; ``found`` each finding's customers; ``ok`` the customers with status ok. The table has no
+    ``addresses`` yet: see :func:`with_addresses`.
     """
     k_to_units = 1.0 / ft_per_unit
     rows = []
     members = {finding: np.full(x.size, -1, dtype=np.intp) for finding in FINDINGS}
     ok_rows = np.flatnonzero(ok & (zone >= 0))
+    ok_by_x: dict[int, tuple[NDArray[np.intp], NDArray[np.float64]]] = {}  # per zone: its ok customers by x
     # a storage level's shortfall (a finding that is no status) is fixed at the tank, not by a zone-level PRV or
     # booster over an area: it gets none
     groups = [] if not targets.enabled else [
@@ -435,9 +457,11 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
         keep = np.flatnonzero(sizes >= targets.min_customers)
         if keep.size == 0:
             continue
-        zone_ok = ok_rows[zone[ok_rows] == z]
-        order = np.argsort(x[zone_ok], kind="stable")
-        ok_sorted, ok_x = zone_ok[order], x[zone_ok][order]
+        if z not in ok_by_x:
+            zone_ok = ok_rows[zone[ok_rows] == z]
+            order = np.argsort(x[zone_ok], kind="stable")
+            ok_by_x[z] = zone_ok[order], x[zone_ok][order]
+        ok_sorted, ok_x = ok_by_x[z]
         taken = np.flatnonzero(np.isin(labels, keep))
         part = np.searchsorted(keep, labels[taken])
         by_part = np.argsort(part, kind="stable")  # shapely groups parts given in increasing order
@@ -462,7 +486,6 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
             worst_values = pressures[worst_col][rows_i]
             rows.append({
                 "finding": finding, "zone": zname, "customers": int(rows_i.size),
-                "addresses": int(np.unique(address[rows_i]).size),
                 "ground_ft_min": _tenth(np.nanmin(ground_ft[rows_i])),
                 "ground_ft_max": _tenth(np.nanmax(ground_ft[rows_i])),
                 "served_ft_max": _tenth(served_max),
@@ -480,9 +503,10 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     rows.sort(key=lambda r: (-r["customers"], rank[r["finding"]], r["zone"], r["_first"]))
     for n, r in enumerate(rows, start=1):
         r["area"] = f"T{n}"
-        members[r["finding"]][r.pop("_rows")] = n - 1
+        members[r["finding"]][r["_rows"]] = n - 1
         del r["_first"]
     ids = [r["area"] for r in rows]
     member = {f: names_at(ids or [""], np.maximum(m, 0), m >= 0) for f, m in members.items()}
-    table = pd.DataFrame(rows, columns=list(COLUMNS))
-    return Areas(table=table, member=member)
+    area_rows = [r.pop("_rows") for r in rows]
+    table = pd.DataFrame(rows, columns=[c for c in COLUMNS if c != "addresses"])
+    return Areas(table=table, member=member, rows=area_rows)

@@ -15,7 +15,7 @@ from geopress import targets
 from geopress.classify import Criteria
 from geopress.findings import FINDINGS
 from geopress.pressure import static_psi
-from geopress.targets import TargetCriteria, cluster_labels, feasible_hgl, target_areas
+from geopress.targets import COLUMNS, TargetCriteria, cluster_labels, feasible_hgl, target_areas, with_addresses
 
 # the worked example of shared REFERENCES.md (university water-distribution course notes, confirmed):
 # HGL_min = highest elevation + 2.31 * P_min = 95 + 2.31 * 30 = 164.3 ft; HGL_max = lowest + 2.31 * P_max =
@@ -33,13 +33,14 @@ def areas(x, y, ground, finding="high", *, ok=None, top=None, zone=None, low_hgl
     ok = np.zeros(n, bool) if ok is None else np.asarray(ok, bool)
     found = {f: (~ok if f == finding else np.zeros(n, bool)) for f in FINDINGS}
     psi = static_psi(np.full(n, 200.0), ground, criteria.psi_per_ft)
-    return target_areas(
+    got = target_areas(
         x=x, y=y, ft_per_unit=1.0, zone=np.zeros(n, np.intp) if zone is None else np.asarray(zone, np.intp),
         zone_names=["Z", "Y"], zone_low_hgl_ft=np.array([low_hgl, low_hgl]), ground_ft=ground,
         top_ft=ground if top is None else np.asarray(top, float),
-        pressures={"psi_min": psi, "psi_max": psi, "psi_top": psi}, found=found, ok=ok,
-        address=np.arange(n) if address is None else np.asarray(address), criteria=criteria,
+        pressures={"psi_min": psi, "psi_max": psi, "psi_top": psi}, found=found, ok=ok, criteria=criteria,
         targets=TargetCriteria(distance_ft=distance_ft, min_customers=min_customers))
+    got.table = with_addresses(got, np.arange(n) if address is None else np.asarray(address))
+    return got
 
 
 def test_settings_on_a_plane_are_the_textbook_closed_forms():
@@ -121,7 +122,8 @@ def test_no_areas_when_they_are_off():
                        zone_low_hgl_ft=np.array([1e6]), ground_ft=x, top_ft=x,
                        pressures={c: x for c in ("psi_min", "psi_max", "psi_top")},
                        found={f: np.full(x.size, f == "high") for f in FINDINGS}, ok=np.zeros(x.size, bool),
-                       address=np.arange(x.size), criteria=EXAMPLE, targets=TargetCriteria(enabled=False))
+                       criteria=EXAMPLE, targets=TargetCriteria(enabled=False))
+    assert with_addresses(got, np.arange(x.size)).columns.tolist() == list(COLUMNS)
     assert got.table.empty and all(m.isna().all() for m in got.member.values())
 
 
@@ -130,6 +132,18 @@ def test_areas_per_zone_and_finding_and_distinct_addresses():
     got = areas(x, np.zeros(6), np.full(6, 50.0), zone=[0, 0, 0, 1, 1, 1], address=[7, 7, 8, 9, 9, 9],
                 min_customers=3).table
     assert sorted(zip(got["zone"], got["customers"], got["addresses"])) == [("Y", 3, 1), ("Z", 3, 2)]
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 30), st.integers(0, 5)), min_size=1, max_size=60))
+def test_addresses_are_the_distinct_codes_of_each_areas_customers(points):
+    # customers on a 10 ft grid, clustered at 10 ft; each area's addresses against numpy's own distinct count
+    x = np.array([10.0 * p[0] for p in points])
+    codes = np.array([p[1] for p in points])
+    got = areas(x, np.zeros(x.size), np.full(x.size, 50.0), distance_ft=10.0, min_customers=1, address=codes)
+    assert got.table.columns.tolist() == list(COLUMNS)
+    assert got.table["addresses"].tolist() == [np.unique(codes[r]).size for r in got.rows]
+    assert sorted(np.concatenate(got.rows).tolist()) == list(range(x.size))  # every customer in one area
 
 
 @settings(max_examples=60, deadline=None)
