@@ -104,7 +104,7 @@ class Result:
     #: wall-clock seconds of the whole run
     elapsed_s: float = 0.0
     outputs: list[Path] = field(default_factory=list)
-    #: the service_band / band_limits layers and the report's terrain (geopress.planning)
+    #: the service_band / band_limits layers and the report's terrain (geopress.planning); set by summarise
     plan: planning.Plan | None = None
     #: per finding, each customer's margin from its threshold (display unit) and class: the mailing lists' ``rated``
     rated: dict[str, tuple[np.ndarray, Any]] | None = None
@@ -283,14 +283,16 @@ class Screening:
     areas: targets_mod.Areas
     area_crs: pyproj.CRS
     area_info: dict[str, Any]
+    #: the service band's job in its own process (see :func:`screen`)
+    band: runner.Job
 
 
-def screen(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str = "local", scheduler: Any = None,
-           partitions: int | None = None) -> tuple[Result, Screening]:
+def screen(config: Config, clock: _Clock, band_worker: runner.Worker, *, engine: str = "local",
+           scheduler: Any = None, partitions: int | None = None) -> tuple[Result, Screening]:
     """Read the inputs and screen every customer (writing nothing): the result's customers with their
-    pressures, statuses, findings and target areas, its counts, and the service band, which ``worker``'s
-    process computes meanwhile. Its summaries and lists come from :func:`summarise`. ``engine`` as in
-    :func:`run`.
+    pressures, statuses, findings and target areas, and its counts. The service band is computed meanwhile in
+    ``band_worker``'s process, which :func:`summarise` waits for and then stops; the summaries and lists come
+    from there too. ``engine`` as in :func:`run`.
     """
     cfg = config
     with clock.step("read zones"):
@@ -299,7 +301,7 @@ def screen(config: Config, clock: _Clock, worker: runner.Worker, *, engine: str 
         overlap_info = _warn_overlaps(zones)
         shift = datum_shift(cfg, crs)
     # the service band needs only the zones and the DEM: the child process computes it meanwhile
-    band = worker.submit(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
+    band = band_worker.submit(_timed, planning.service_bands, cfg, zones, crs, shift, what="service band")
     return _screen(cfg, clock, zones, overlap_info, shift, band, engine=engine, scheduler=scheduler,
                    partitions=partitions)
 
@@ -463,13 +465,12 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
         customers = pd.DataFrame(data)
         counts = {s: int(n) for s, n in zip(cls.STATUSES, np.bincount(codes, minlength=len(cls.STATUSES)))}
         finding_counts = {name: int(np.count_nonzero(found[name])) for name in cls.FINDINGS}
-    with clock.step("wait for the service band"):
-        plan, clock.timings["service band (child process)"] = band.result()
     result = Result(config=cfg, customers=customers, points=Points(x=cust.x, y=cust.y, crs=cust.crs, wkb=cust.wkb),
-                    zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={}, plan=plan)
+                    zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={})
     return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
                              ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
-                             finding_counts=finding_counts, areas=areas, area_crs=area_crs, area_info=area_info)
+                             finding_counts=finding_counts, areas=areas, area_crs=area_crs, area_info=area_info,
+                             band=band)
 
 
 def summarise(result: Result, s: Screening, clock: _Clock) -> None:
@@ -477,7 +478,7 @@ def summarise(result: Result, s: Screening, clock: _Clock) -> None:
     summary with the best control ranges, the mailing lists, the field check and what run.json records. Reads only the field
     readings; leaves the customers as they are."""
     cfg, customers, cust, p, levels, sigma = result.config, result.customers, s.customers, s.pressures, s.levels, s.sigma
-    crit, id_field, zones, shift, terrain, plan = cfg.criteria, cfg.customers.id_field, s.zones, s.shift, s.terrain, result.plan
+    crit, id_field, zones, shift, terrain = cfg.criteria, cfg.customers.id_field, s.zones, s.shift, s.terrain
     with clock.step("target areas' addresses"):
         result.areas = _area_layer(cfg, cust, s.areas, s.area_crs)
     with clock.step("summarise"):
@@ -501,6 +502,10 @@ def summarise(result: Result, s: Screening, clock: _Clock) -> None:
     if cfg.readings is not None:  # read after the customers' results: they never depend on the readings
         with clock.step("check field readings"):
             readings, by_zone = field_check(cfg, zones, shift)
+    with clock.step("wait for the service band"):  # computed since the zones were read, beside all of the above
+        plan, clock.timings["service band (child process)"] = s.band.result()
+        s.band.worker.close()  # its one job is done: its memory goes back before the report's
+    result.plan = plan
     info = {
         "geopress_version": __version__,
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
@@ -1019,7 +1024,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
 
     Notes
     -----
-    The run's side work goes to a child process (:mod:`geopress.runner`, from multiprocessing's
+    The run's side work goes to child processes (:mod:`geopress.runner`, from multiprocessing's
     fork server): a script that calls ``run`` must do so under ``if __name__ == "__main__":``.
     """
     if engine not in ENGINES:
@@ -1037,10 +1042,12 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
     with _cycle_collection_paused(), _recorded_warnings(shown), \
             nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext() as publication, \
             write_io.Staging(journal_for=cfg.output.path) as stage, \
+            runner.Worker(timeout_s=cfg.output.child_timeout_s) as band_worker, \
             runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker, \
             HandOff(cfg.output.child_timeout_s) as hand_off:  # each ended before the one above it
         inputs = nightly.snapshot(cfg.input_paths())
-        result, screening = screen(cfg, clock, worker, engine=engine, scheduler=scheduler, partitions=partitions)
+        result, screening = screen(cfg, clock, band_worker, engine=engine, scheduler=scheduler,
+                                   partitions=partitions)
         with clock.step("compare with baseline"):
             newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
         # the customers are final: the writer process writes them while their summaries and lists are made here

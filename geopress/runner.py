@@ -1,8 +1,8 @@
-"""The run's second process: one spawned child that does the side work, a job at a time.
+"""The run's child processes: each a :class:`Worker`, a spawned child that does side work, a job at a time.
 
-A run keeps both cores busy by giving a child process two jobs: the service band while the
-customers are read and sampled, then writing the GeoPackage's customers while their summaries, the
-mailing lists and the report are made.
+A run keeps both cores busy with two of them: one computes the service band while the customers
+are read and screened, the other writes the GeoPackage's customers while their summaries, the
+mailing lists and the report are made. Apart, the writer never waits for the band.
 
 The child is never a fork of this process, which already runs threads (numpy's BLAS, Arrow's
 allocator, GDAL's pool): it comes from multiprocessing's ``forkserver``, a server process
@@ -32,6 +32,7 @@ import ctypes
 import logging
 import multiprocessing
 import multiprocessing.forkserver
+import multiprocessing.reduction
 import os
 import signal
 import sys
@@ -54,6 +55,8 @@ SINGLE_THREADED = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM
                    "JE_ARROW_MALLOC_CONF": "background_thread:false"}
 #: what the child sends back: ("ok", value) or ("raised", (exception, traceback text))
 _OK, _RAISED = "ok", "raised"
+#: how multiprocessing's Connection.send pickles: the child's recv unpickles what submit sends as bytes
+_PICKLER = multiprocessing.reduction.ForkingPickler
 #: Linux's prctl option that sends the child a signal when its parent dies (linux/prctl.h)
 _PR_SET_PDEATHSIG = 1
 #: seconds between the parent's checks that a busy child is still alive
@@ -64,7 +67,8 @@ class Worker:
     """One child process that runs the jobs :meth:`submit` gives it; use as a context manager.
 
     The child is started in the background (the fork server's first start imports the run's
-    modules, about a second), so creating a Worker returns at once. ``timeout_s`` bounds every
+    modules, about a second), so creating a Worker returns at once, and so does submitting a job to a
+    child still starting. ``timeout_s`` bounds every
     wait: for the child to start, and for each job's result. Leaving the block (or
     :meth:`close`) stops the child, whatever it is doing, and reaps it.
     """
@@ -76,6 +80,9 @@ class Worker:
         self._proc = _CONTEXT.Process(target=_serve, args=(self._child_end, os.getpid()), name="geopress-worker",
                                       daemon=True)
         self._start_error: BaseException | None = None
+        self._lock = threading.Lock()
+        self._started = False  # under _lock: the starting thread has done what it does
+        self._pending: bytes | None = None  # under _lock: a job submitted before the child started
         self._starter = threading.Thread(target=self._start, name="geopress-worker-start", daemon=True)
         self._starter.start()
         self._job: Job | None = None
@@ -88,6 +95,18 @@ class Worker:
             self._start_error = exc
         finally:
             self._child_end.close()
+            with self._lock:
+                self._started = True
+                pending, self._pending = self._pending, None
+            if pending is not None and self._start_error is None:
+                self._send(pending)
+
+    def _send(self, data: bytes) -> None:
+        """Send a pickled job; a child that died meanwhile is found by the job's wait (:meth:`Job.result`)."""
+        try:
+            self._conn.send_bytes(data)
+        except (BrokenPipeError, ConnectionResetError, EOFError, OSError):
+            pass
 
     def _ready(self, what: str, path: Path | None) -> None:
         self._starter.join(self.timeout_s)
@@ -103,17 +122,22 @@ class Worker:
     def submit(self, fn: Callable[..., Any], *args: Any, what: str, path: Path | None = None) -> "Job":
         """Send ``fn(*args)`` (a module-level function, pickled by name) to the child and return at once.
 
-        ``what`` names the job in errors ("the writer process ..."), ``path`` the file they name.
+        Pickled here, so the child gets the arguments as they are now. A child still starting gets the job
+        from the thread that starts it, so the caller never waits for the start; the job's wait
+        (:meth:`Job.result`) raises what kept the child from starting. ``what`` names the job in errors
+        ("the writer process ..."), ``path`` the file they name.
         """
-        self._ready(what, path)
         if self._job is not None and not self._job.done:
             raise RuntimeError(f"the {self._job.what} job is still running")
+        data = bytes(_PICKLER.dumps((fn, args)))
         job = Job(self, what, path)
-        try:
-            self._conn.send((fn, args))
-        except (BrokenPipeError, ConnectionResetError, EOFError):
-            job._died()  # raises OutputError
         self._job = job
+        with self._lock:
+            if not self._started:
+                self._pending = data
+                return job
+        self._ready(what, path)
+        self._send(data)
         return job
 
     def close(self) -> None:
@@ -142,7 +166,8 @@ class Job:
 
     def result(self) -> Any:
         """Wait (at most the worker's ``timeout_s`` from the submission) and return the job's value,
-        or raise what the child raised; OutputError when the child dies or the time runs out."""
+        or raise what the child raised; OutputError when the child does not start, dies or the time runs out."""
+        self.worker._ready(self.what, self.path)
         conn, proc = self.worker._conn, self.worker._proc
         deadline = self.started + self.worker.timeout_s
         while True:

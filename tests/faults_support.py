@@ -58,3 +58,28 @@ def hang_and_tell(*args):
 
 def output_error(*args):
     raise OutputError("cannot write (injected); check free space and permissions", path="out.gpkg")
+
+
+#: the file :func:`write_and_say_so` leaves beside the GeoPackage it starts writing
+WRITER_STARTED = ".writer-started"
+
+
+def write_and_say_so(path, layers):
+    """The writer's job, which first leaves :data:`WRITER_STARTED` beside ``path``."""
+    from geopress.io import write as write_io
+
+    Path(path).with_name(WRITER_STARTED).touch()
+    return write_io.write_in_child(path, layers)
+
+
+def band_once_the_writer_writes(cfg, *args):
+    """The service band, computed once the writer has started (at most 60 s later)."""
+    from geopress import planning
+
+    marker = cfg.output.path.with_name(WRITER_STARTED)
+    deadline = time.monotonic() + 60
+    while not marker.exists():
+        if time.monotonic() > deadline:
+            raise RuntimeError("the writer never started while the service band was computed")
+        time.sleep(0.05)
+    return planning.service_bands(cfg, *args)

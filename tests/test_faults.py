@@ -151,9 +151,10 @@ def test_a_failure_while_the_writer_process_works_stops_it(world, prior, monkeyp
     monkeypatch.setattr(write_io, "write_in_child", faults_support.hang_and_tell)
     monkeypatch.setattr(write_io, "write_csv", bug)
     assert "injected fault" in error_line(run(world), 1)
-    assert len(workers) == 1
-    with pytest.raises(ProcessLookupError):
-        os.kill(workers[0].pid, 0)  # reaped: not even a zombie
+    assert len(workers) == 2  # the service band's and the writer's
+    for worker in workers:
+        with pytest.raises(ProcessLookupError):
+            os.kill(worker.pid, 0)  # reaped: not even a zombie
     assert snapshot(world.out.parent) == prior
 
 

@@ -24,6 +24,7 @@ from affine import Affine
 import pyproj
 from pyproj import Transformer
 
+import faults_support
 import geopress
 from geopress import pipeline
 from geopress.cli import cli
@@ -913,6 +914,18 @@ def test_the_zone_join_runs_while_the_terrain_is_sampled(world, monkeypatch):
     screened = [c for c in res.customers.columns if c not in ("previous_status", "change")]  # the second run has a baseline
     pd.testing.assert_frame_equal(res.customers[screened], alone.customers[screened])
     assert "assign zones (thread)" in res.info["timings_s"]
+
+
+def test_the_writer_starts_while_the_service_band_is_computed(world, monkeypatch):
+    # the band waits (60 s at most) for the writer's job to start: a writer queued behind the band would fail it
+    monkeypatch.setattr(pipeline.planning, "service_bands", faults_support.band_once_the_writer_writes)
+    monkeypatch.setattr(write_io, "write_in_child", faults_support.write_and_say_so)
+    res = geopress.run(world.config_path)
+    (world.out.parent / faults_support.WRITER_STARTED).unlink()
+    monkeypatch.undo()
+    alone = geopress.run(world.config_path, write=False)
+    assert res.info["service_band"] == alone.info["service_band"]
+    assert res.plan.bands.geometry.geom_equals_exact(alone.plan.bands.geometry, 0).all()
 
 
 @pytest.mark.parametrize("failing", ["join", "sample"])

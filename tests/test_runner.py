@@ -63,3 +63,27 @@ def test_one_job_at_a_time():
         worker.submit(time.sleep, 60, what="first")
         with pytest.raises(RuntimeError, match="the first job is still running"):
             worker.submit(math.sqrt, 4.0, what="second")
+
+
+def test_a_job_submitted_while_the_child_starts_does_not_wait_for_it(monkeypatch):
+    # the start held back 2 s: submit returns at once, and the job, pickled then, runs once the child is up
+    real = runner.start_server
+    monkeypatch.setattr(runner, "start_server", lambda: (time.sleep(2), real()))
+    values = [9.0]
+    with runner.Worker(timeout_s=60) as worker:
+        t0 = time.monotonic()
+        job = worker.submit(math.fsum, values, what="test")
+        assert time.monotonic() - t0 < 1.0  # not the 2 s start
+        values.append(1.0)  # after the submit: the child gets the list as it was
+        assert job.result() == 9.0
+
+
+def test_a_child_that_cannot_start_fails_the_job(monkeypatch):
+    def refused():
+        raise OSError("Resource temporarily unavailable")
+
+    monkeypatch.setattr(runner, "start_server", refused)
+    with runner.Worker(timeout_s=60) as worker:
+        # raised by the submit when the start has already failed, else by the wait
+        with pytest.raises(OutputError, match="the service band process could not start .Resource temporarily"):
+            worker.submit(math.sqrt, 4.0, what="service band").result()
