@@ -1,12 +1,18 @@
 """Wall time and peak memory of a command, for the benchmarks (Linux: /proc and wait4).
 
-geopress runs a second process (the service band, the GeoPackage writer)
+geopress runs child processes (the service band, the GeoPackage writer)
 beside a fork server, and a process tree's pages may be shared, so the
 resident set size of one process says too little and the sum over processes
 too much. :func:`measure` reports both the
 peak RSS of the largest process (``wait4``) and the peak proportional set
 size of the whole process tree (a page shared by n processes counts 1/n in
 each, so the sum is the memory the tree really holds), sampled every 50 ms.
+
+Sampling is not free: each read of ``/proc/PID/smaps_rollup`` walks that process's
+page tables, and it slowed a run of ``geopress`` (four processes) at 1,000,000
+customers by about 3 s of 8 (scripts/README.md). So a timed run is measured with
+``sample=False`` (wall time and the largest process's peak RSS from ``wait4``,
+which cost nothing), and the PSS comes from runs of its own.
 """
 
 from __future__ import annotations
@@ -26,7 +32,7 @@ GB = 1024 * 1024  # KiB per GiB
 class Measured:
     wall_s: float
     rss_gb: float  # the largest process's peak resident set size
-    pss_gb: float  # the process tree's peak proportional set size, sampled
+    pss_gb: float  # the process tree's peak proportional set size, sampled (NaN when not sampled)
     exit_code: int
     stdout: str = ""
 
@@ -58,8 +64,8 @@ def _pss_kib(pids: list[int]) -> int:
     return kib
 
 
-def measure(cmd: Sequence[str], env: Mapping[str, str] | None = None) -> Measured:
-    """Run ``cmd`` to its end and measure it."""
+def measure(cmd: Sequence[str], env: Mapping[str, str] | None = None, *, sample: bool = True) -> Measured:
+    """Run ``cmd`` to its end and measure it; ``sample=False`` leaves out the PSS sampling (see above)."""
     import tempfile
 
     out = tempfile.TemporaryFile(mode="w+")  # a file, not a pipe: a chatty child never blocks on it
@@ -68,18 +74,20 @@ def measure(cmd: Sequence[str], env: Mapping[str, str] | None = None) -> Measure
     peak = [0]
     stop = threading.Event()
 
-    def sample() -> None:
+    def sample_pss() -> None:
         while not stop.wait(0.05):
             peak[0] = max(peak[0], _pss_kib(_tree(proc.pid)))
 
-    sampler = threading.Thread(target=sample, daemon=True)
-    sampler.start()
+    sampler = threading.Thread(target=sample_pss, daemon=True)
+    if sample:
+        sampler.start()
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
     stop.set()
-    sampler.join()
+    if sample:
+        sampler.join()
     proc.returncode = os.waitstatus_to_exitcode(status)
     out.seek(0)
     text = out.read()
     out.close()
-    return Measured(wall, usage.ru_maxrss / GB, peak[0] / GB, proc.returncode, text)
+    return Measured(wall, usage.ru_maxrss / GB, peak[0] / GB if sample else float("nan"), proc.returncode, text)

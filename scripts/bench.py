@@ -21,8 +21,9 @@ geopress and the script both sample the containing pixel (``method =
 the bench checks they do. It prints, per N, the median wall time of each
 variant, their ratios to the floor, the time per customer, peak memory two
 ways (see _measure.py: the resident set size of the largest process, and the
-proportional set size of all its processes together), geopress's time per
-step, and the in-process throughput of the bilinear kernel.
+proportional set size of all its processes together, sampled in runs of its
+own before the timed ones, since sampling slows what it measures), geopress's
+time per step, and the in-process throughput of the bilinear kernel.
 
     python scripts/bench.py                                  # N = 1,000,000
     python scripts/bench.py --n 1000000 4000000 10000000     # the scale targets
@@ -325,7 +326,8 @@ def bench_database(work: Path, n: int, repeat: int, dsn: str, floor_s: float) ->
         for variant in list(runs) if i % 2 == 0 else list(runs)[::-1]:
             child, tag = tags[variant]
             env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-            m = measure([sys.executable, __file__, "--child", child, "--work", str(work), "--postgis", dsn], env)
+            m = measure([sys.executable, __file__, "--child", child, "--work", str(work), "--postgis", dsn], env,
+                        sample=False)
             if m.exit_code != 0:
                 sys.exit(f"{variant} failed with exit code {m.exit_code}")
             seconds = float(next(line.split()[1] for line in m.stdout.splitlines() if line.startswith(tag + " ")))
@@ -346,15 +348,16 @@ def bench_database(work: Path, n: int, repeat: int, dsn: str, floor_s: float) ->
 VARIANTS = ("first", "rerun", "floor", "script")
 
 
-def run_child(variant: str, work: Path) -> Measured:
-    """One variant in a fresh process, measured (see _measure.py); the floor's time is its write alone."""
+def run_child(variant: str, work: Path, *, sample: bool = False) -> Measured:
+    """One variant in a fresh process, measured (see _measure.py: ``sample`` for the PSS, which slows what it
+    measures); the floor's time is its write alone."""
     import shutil
 
     if variant == "first":
         shutil.rmtree(work / "out-geopress", ignore_errors=True)
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     child = {"first": "geopress", "rerun": "geopress", "floor": "floor", "script": "baseline"}[variant]
-    m = measure([sys.executable, __file__, "--child", child, "--work", str(work)], env)
+    m = measure([sys.executable, __file__, "--child", child, "--work", str(work)], env, sample=sample)
     if m.exit_code != 0:
         sys.exit(f"{variant} failed with exit code {m.exit_code}")
     if variant == "floor":
@@ -399,27 +402,32 @@ def kernel_rate(work: Path, repeat: int) -> float:
 
 
 def bench_one(work: Path, n: int, repeat: int, with_script: bool) -> dict[str, float]:
-    """Every variant at ``n`` customers, alternating; prints and returns the medians (s) and the peak PSS (GB)."""
+    """geopress's first run and re-run and the floor once each for their peak PSS only, then every variant at ``n``
+    customers, alternating, timed without sampling memory. Prints and returns the medians (s) and geopress's peak
+    PSS (GB)."""
     prepare(work, n)
     variants = [v for v in VARIANTS if v != "script" or with_script]
-    run_child("first", work)  # outputs in place for the first re-run, and the floor's table
+    pss = {}
+    for variant in ("first", "rerun", "floor"):  # the first run leaves the outputs the re-run and the floor need
+        m = run_child(variant, work, sample=True)
+        pss[variant] = m.pss_gb
+        print(f"N={n:,} memory {variant:7s} peak PSS of all its processes {m.pss_gb:5.2f} GB (took {m.wall_s:.2f} s "
+              "while sampled; not timed)", flush=True)
     runs: dict[str, list[Measured]] = {v: [] for v in variants}
     for i in range(repeat):
         for variant in variants if i % 2 == 0 else variants[::-1]:
             m = run_child(variant, work)
             runs[variant].append(m)
-            print(f"N={n:,} run {i + 1} {variant:7s} {m.wall_s:8.2f} s  peak RSS {m.rss_gb:5.2f} GB  peak PSS of all "
-                  f"its processes {m.pss_gb:5.2f} GB", flush=True)
+            print(f"N={n:,} run {i + 1} {variant:7s} {m.wall_s:8.2f} s  peak RSS {m.rss_gb:5.2f} GB", flush=True)
     if with_script:
         compare_statuses(work)
     med = {v: statistics.median(m.wall_s for m in r) for v, r in runs.items()}
-    pss = {v: max(m.pss_gb for m in r) for v, r in runs.items()}
     rss = {v: max(m.rss_gb for m in r) for v, r in runs.items()}
     steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
     print(f"\n{n:,} customers" + (", statuses identical in geopress and the script" if with_script else ""))
     for v in variants:
-        print(f"  {v:7s} median {med[v]:8.2f} s  {1e6 * med[v] / n:6.2f} us per customer  peak RSS {rss[v]:.2f} GB  "
-              f"peak PSS {pss[v]:.2f} GB")
+        print(f"  {v:7s} median {med[v]:8.2f} s  {1e6 * med[v] / n:6.2f} us per customer  peak RSS {rss[v]:.2f} GB"
+              + (f"  peak PSS {pss[v]:.2f} GB" if v in pss else ""))
     for v in ("first", "rerun"):
         # each pair of runs follows back to back, so it shares the machine's load more than the medians do
         pairs = [g.wall_s / f.wall_s for g, f in zip(runs[v], runs["floor"])]
