@@ -1043,7 +1043,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
             nightly.guarded_outputs(cfg, output_targets(cfg)) if write else nullcontext() as publication, \
             write_io.Staging(journal_for=cfg.output.path) as stage, \
             runner.Worker(timeout_s=cfg.output.child_timeout_s) as band_worker, \
-            runner.Worker(timeout_s=cfg.output.child_timeout_s) as worker, \
+            runner.Worker(timeout_s=cfg.output.child_timeout_s) if write else nullcontext() as worker, \
             HandOff(cfg.output.child_timeout_s) as hand_off:  # each ended before the one above it
         inputs = nightly.snapshot(cfg.input_paths())
         result, screening = screen(cfg, clock, band_worker, engine=engine, scheduler=scheduler,

@@ -105,7 +105,7 @@ class Worker:
         """Send a pickled job; a child that died meanwhile is found by the job's wait (:meth:`Job.result`)."""
         try:
             self._conn.send_bytes(data)
-        except (BrokenPipeError, ConnectionResetError, EOFError, OSError):
+        except OSError:  # a broken pipe or a reset connection
             pass
 
     def _ready(self, what: str, path: Path | None) -> None:

@@ -411,10 +411,10 @@ def with_addresses(areas: Areas, address: NDArray[np.intp]) -> pd.DataFrame:
 
     Apart from :func:`target_areas` because the addresses change no area: a run counts them after its
     customers have gone to the writer."""
-    seen = np.zeros(max((int(address[r].max()) + 1 for r in areas.rows if r.size), default=0), dtype=bool)
+    per_area = [address[r] for r in areas.rows]
+    seen = np.zeros(max((int(codes.max()) + 1 for codes in per_area if codes.size), default=0), dtype=bool)
     counts = []
-    for r in areas.rows:  # a flag per code seen: no sort or hash of the codes (millions in an area)
-        codes = address[r]
+    for codes in per_area:  # a flag per code seen: no sort or hash of the codes (millions in an area)
         seen[codes] = True
         counts.append(int(np.count_nonzero(seen)))
         seen[codes] = False
