@@ -39,6 +39,7 @@ longest run of steps within a tolerance of the minimum
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -151,16 +152,31 @@ def best_range(ground_ft: ArrayLike, floors: ArrayLike, range_ft: float, criteri
     ``lower_ft`` and ``upper_ft`` bound the levels considered (what the source can do); the range and
     its count are then the best within them. NaN ends when no level within them serves any customer.
     """
-    fc = flagged_count(ground_ft, floors, range_ft, criteria)
+    return best_ranges(flagged_count(ground_ft, floors, range_ft, criteria), [(lower_ft, upper_ft)])[0]
+
+
+def best_ranges(fc: FlaggedCount, bounds: Sequence[tuple[float, float]]) -> list[BestRange]:
+    """:func:`best_range` of the customers of ``fc`` within each ``(lower_ft, upper_ft)`` of ``bounds``, from one
+    sweep of the breakpoints.
+
+    The sweep holds every pair's finite bounds as breakpoints too: a level that is no interval's end splits a
+    gap into a gap, a point and a gap that all hold the same intervals, so it changes no other pair's range.
+    """
     n = fc.customers
     if fc.hi.size == 0:
-        return BestRange(np.nan, np.nan, n, n)
-    bounds = [b for b in (lower_ft, upper_ft) if np.isfinite(b)]
-    xs = np.unique(np.concatenate([fc.lo, fc.hi, bounds]))
+        return [BestRange(np.nan, np.nan, n, n) for _ in bounds]
+    ends = [b for pair in bounds for b in pair if np.isfinite(b)]
+    xs = np.unique(np.concatenate([fc.lo, fc.hi, ends]))
     at_point = n - fc.at(xs)
     # intervals holding the open gap (x_j, x_j+1): lo <= x_j and hi >= x_j+1, i.e. hi > x_j
     in_gap = (np.searchsorted(fc.lo, xs[:-1], side="right")
               - np.searchsorted(fc.hi, xs[:-1], side="right"))
+    return [_best_within(xs, at_point, in_gap, n, lower_ft, upper_ft) for lower_ft, upper_ft in bounds]
+
+
+def _best_within(xs: NDArray[np.float64], at_point: NDArray[np.int64], in_gap: NDArray[np.int64], n: int,
+                 lower_ft: float, upper_ft: float) -> BestRange:
+    """The best range within the bounds, from the intervals holding each breakpoint ``xs`` and each gap."""
     # the sequence point, gap, point, ..., point along H; -1 outside the bounds
     cover = np.empty(2 * xs.size - 1, dtype=np.int64)
     cover[0::2] = np.where((xs >= lower_ft) & (xs <= upper_ft), at_point, -1)

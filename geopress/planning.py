@@ -23,7 +23,7 @@ import shapely
 from pyproj import CRS, Transformer
 
 from . import band as band_mod
-from .besthgl import BestRange, Dial, best_range, flagged_count, robust_tolerance, settable
+from .besthgl import BestRange, Dial, best_ranges, flagged_count, robust_tolerance, settable
 from .classify import FLAGGED_LAYERS
 from .config import Config
 from .io import raster as raster_io
@@ -248,18 +248,18 @@ def best_hgl_table(customers: pd.DataFrame, cfg: Config) -> pd.DataFrame:
         row: dict[str, Any] = {"zone": src.zone, **{c: np.nan for c in BEST_COLUMNS}}
         high, low = src.hgl_range(crit.psi_per_ft)
         ground, floors = ground_all[sel], floors_all[sel]
-        best = best_range(ground, floors, high - low, crit)
         control = control_of(src, cfg)
+        lower, upper = control.lower_ft, control.upper_ft
+        # the zone's intervals sorted once, and swept once for the exact optimum and the one within the bounds
+        fc = flagged_count(ground, floors, high - low, crit)
+        best, bounded = best_ranges(fc, [(-np.inf, np.inf), (lower, upper)])
         key = {"high_water_ft": "best_high_water_ft", "setting_psi": "best_setting_psi",
                "discharge_hgl_ft": "best_discharge_hgl_ft"}[control.key]
         row[f"{key}_from"], row[f"{key}_to"] = control.to_control(best.from_ft), control.to_control(best.to_ft)
         row["flagged_now"] = int(flagged_all[sel].sum())
         row["flagged_at_best"] = best.flagged
-        lower, upper = control.lower_ft, control.upper_ft
-        bounded = best_range(ground, floors, high - low, crit, lower_ft=lower, upper_ft=upper)
         tolerance = robust_tolerance(best.customers, op.robust_percent, op.robust_customers)
-        steps = settable(flagged_count(ground, floors, high - low, crit), bounded, control.dial,
-                         tolerance=tolerance, lower_ft=lower, upper_ft=upper)
+        steps = settable(fc, bounded, control.dial, tolerance=tolerance, lower_ft=lower, upper_ft=upper)
         row.update({
             "control": control.key, "control_step": control.dial.c_step,
             "control_min": control.to_control(lower) if np.isfinite(lower) else np.nan,

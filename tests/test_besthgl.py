@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from geopress import classify as cls
-from geopress.besthgl import best_range, ok_intervals
+from geopress.besthgl import best_range, best_ranges, flagged_count as count_of, ok_intervals
 from geopress.classify import Criteria
 from geopress.findings import FLAGGED_STATUSES
 from geopress.config import config_from_dict
@@ -81,6 +81,29 @@ def test_exact_sweep_matches_brute_force(ground, floors, range_q):
     widest = max(b - a for a, b in runs)
     assert res.to_ft - res.from_ft == widest
     assert res.from_ft == min(a for a, b in runs if b - a == widest)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    ground=st.lists(st.integers(min_value=0, max_value=400), min_size=1, max_size=25),
+    floors=st.lists(st.sampled_from([1, 1, 2, 3, 6]), min_size=25, max_size=25),
+    range_q=st.integers(min_value=0, max_value=160),
+    ends=st.lists(st.tuples(st.integers(min_value=0, max_value=800), st.integers(min_value=0, max_value=800)),
+                  min_size=1, max_size=4),
+)
+def test_one_sweep_for_several_bounds_gives_each_bounds_own_range(ground, floors, range_q, ends):
+    """best_ranges puts every pair's bounds into one sweep: the others' bounds must change no pair's range."""
+    g = 1000.0 + np.asarray(ground, dtype=np.float64) * 0.25
+    fl = np.asarray(floors[: len(g)], dtype=np.float64)
+    r = range_q * 0.25
+    # quarter-foot bounds within and around the levels that serve anyone (1060 to 1260 ft), and unbounded
+    pairs = [(-np.inf, np.inf), *((1000.0 + min(a, b) * 0.25, 1000.0 + max(a, b) * 0.25) for a, b in ends)]
+    fc = count_of(g, fl, r, EXACT)
+    together = best_ranges(fc, pairs)
+    for pair, got in zip(pairs, together):
+        alone = best_ranges(fc, [pair])[0]
+        assert (got.flagged, got.customers, got.from_inclusive) == (alone.flagged, alone.customers, alone.from_inclusive)
+        assert np.array_equal([got.from_ft, got.to_ft], [alone.from_ft, alone.to_ft], equal_nan=True)
 
 
 def test_dense_sweep_with_default_psi_per_ft():
