@@ -687,8 +687,8 @@ def _r(value: float) -> float | None:
 CHANGED = tuple(c for c in CHANGES if c not in ("unchanged", "removed"))
 
 
-def customer_layers(result: Result, table: write_io.ArrowFile | None = None) -> dict[str, write_io.Layer]:
-    """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows in an Arrow file;
+def customer_layers(result: Result, table: write_io.ArrowPipe | None = None) -> dict[str, write_io.Layer]:
+    """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows sent through a pipe;
     else the frame with its points' WKB: see write_io.Encoded), then the flagged layers and ``changes``,
     views of it (see write_io.View)."""
     customers, x, y = result.customers, result.points.x, result.points.y
@@ -813,26 +813,31 @@ def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker
     """Start writing the GeoPackage's customer layers in ``worker``'s process, from ``result``'s customers as
     they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile.
 
-    The customers travel to the writer as an Arrow file it reads a batch at a time, not pickled through a pipe.
-    Their Arrow table is made here; the file is written, and the writer's job submitted, by ``hand_off``'s
-    thread while the summaries are made (Arrow's writer releases the GIL, and compresses on the core the writer
-    process does not use yet). The thread touches no pandas object; :meth:`HandOff.job` waits for it."""
+    The customers travel to the writer as an Arrow stream through a named pipe in the staging folder, which it
+    reads a batch at a time as GDAL takes them: not pickled, not inherited, not written to disk. Their Arrow
+    table is made here; ``hand_off``'s thread makes the pipe, submits the writer's job and sends the table while
+    the summaries are made (it waits on the writer without the GIL). The thread touches no pandas object;
+    :meth:`HandOff.job` waits for it."""
     out = result.config.output
     with clock.step("hand the customers to the writer"):
         write_io.ensure_dir(out.path.parent, "output.path")
         if not out.geopackage:
             return Writing(hand_off=None, gpkg=None, first_layers=customer_layers(result))
         gpkg = stage.temp_for(out.path)
-        file, table = write_io.arrow_table(stage.scratch(out.path, ".arrow"), _layer_frame(result))
-        first_layers = customer_layers(result, file)
+        pipe, table = write_io.arrow_pipe(stage.scratch(out.path, ".arrows"), _layer_frame(result))
+        first_layers = customer_layers(result, pipe)
 
         def hand(h: HandOff) -> runner.Job | None:
             t0 = time.perf_counter()
-            stage.wait(out.path, lambda: write_io.write_arrow_file(file, table))
-            clock.timings[HAND_OFF_THREAD] = round(time.perf_counter() - t0, 4)
+            stage.wait(out.path, lambda: write_io.make_pipe(pipe))
             if h.stopping.is_set():
                 return None
-            return worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+            job = worker.submit(write_io.write_in_child, gpkg, first_layers, what="writer", path=out.path)
+            # whether every row went or not, the job's wait says how the writer ended (it counts the rows)
+            stage.wait(out.path, lambda: write_io.send_arrow(pipe, table, reader_alive=job.running,
+                                                             stop=h.stopping, timeout_s=h.timeout_s))
+            clock.timings[HAND_OFF_THREAD] = round(time.perf_counter() - t0, 4)
+            return job
 
         hand_off.start(hand)
         return Writing(hand_off=hand_off, gpkg=gpkg, first_layers=first_layers)
@@ -848,7 +853,6 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writin
     t0 = time.perf_counter()
     with clock.step("write outputs"):
         first_layers, gpkg = writing.first_layers, writing.gpkg
-        writer = writing.hand_off.job() if writing.hand_off is not None else None
         write_io.ensure_dir(out.mailing_dir, "output.mailing_dir")
         info = dict(result.info)
         files = _list_files(result, info)
@@ -869,6 +873,8 @@ def write_outputs(result: Result, clock: _Clock, stage: write_io.Staging, writin
         if publication is not None:  # built in one open transaction, swapped in below
             info["database"] = {"database": redact_dsn(out.database), "schema": out.schema}
             info["database"]["build_s"] = publication.build(database_layers(result))
+        # the hand-off ends once the writer has read every customer, near the end of its customers layer
+        writer = writing.hand_off.job() if writing.hand_off is not None else None
         if writer is not None:
             first = stage.wait(out.path, writer.result)
             advance()

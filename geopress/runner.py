@@ -22,8 +22,8 @@ Guarantees:
   the kernel kills it when the server, which exits with this process, dies (Linux:
   ``PR_SET_PDEATHSIG``); it ignores Ctrl-C and SIGTERM, which this process handles by stopping it.
 
-Arguments and results are pickled through a pipe; the few large tables a job needs travel as
-Arrow IPC files the child reads a batch at a time (see :mod:`geopress.io.write`).
+Arguments and results are pickled through a pipe; the customers the writer needs travel as an
+Arrow IPC stream through a named pipe the child reads a batch at a time (see :mod:`geopress.io.write`).
 """
 
 from __future__ import annotations
@@ -31,6 +31,7 @@ from __future__ import annotations
 import ctypes
 import logging
 import multiprocessing
+import multiprocessing.connection
 import multiprocessing.forkserver
 import multiprocessing.reduction
 import os
@@ -119,6 +120,14 @@ class Worker:
     def pid(self) -> int | None:
         return self._proc.pid
 
+    def alive(self) -> bool:
+        """Whether the child is starting or running: False once it could not start or has exited. It only looks
+        at the child's sentinel, reading nothing, so any thread may ask while another waits for a job."""
+        with self._lock:
+            if not self._started:
+                return True
+        return self._start_error is None and not multiprocessing.connection.wait([self._proc.sentinel], 0)
+
     def submit(self, fn: Callable[..., Any], *args: Any, what: str, path: Path | None = None) -> "Job":
         """Send ``fn(*args)`` (a module-level function, pickled by name) to the child and return at once.
 
@@ -193,6 +202,15 @@ class Job:
         exc, child_traceback = value
         exc.add_note(f"raised in the {self.what} process {proc.pid}:\n{child_traceback}")
         raise exc
+
+    def running(self) -> bool:
+        """Whether the job may still be running: False once the child has answered (its value or its error) or
+        is gone. It only looks at the pipe and the child's sentinel, reading nothing, so another thread may ask
+        before :meth:`result` is called."""
+        try:
+            return self.worker.alive() and not self.worker._conn.poll(0)
+        except (OSError, EOFError):  # the worker was closed
+            return False
 
     def _died(self) -> None:
         self.done = True

@@ -97,8 +97,8 @@ def after_partial_write(real, fault):
 
 
 #: the writers of the run's own process: the GeoPackage's later layers, the CSVs, run.json, and (in a thread) the
-#: Arrow file that hands the customers to the writer process
-WRITERS = [("write_geopackage", 1), ("write_csv", 1), ("write_csv", 8), ("write_json", 1), ("write_arrow_file", 1)]
+#: Arrow stream that hands the customers to the writer process
+WRITERS = [("write_geopackage", 1), ("write_csv", 1), ("write_csv", 8), ("write_json", 1), ("send_arrow", 1)]
 
 
 @pytest.mark.parametrize("fault, code, text", [(disk_full, 2, "No space left on device"), (bug, 1, "injected fault")])

@@ -163,7 +163,7 @@ STEPS = [
     (vector_io, "read_customers", "reading the customers"),
     (raster_io, "sample_terrain", "sampling the terrain"),
     (nightly, "track", "comparing with the baseline"),
-    (write_io, "write_arrow_file", "handing the customers over, in a thread"),
+    (write_io, "send_arrow", "handing the customers over, in a thread"),
     (runner.Job, "result", "waiting for the child"),
     (write_io, "write_csv", "staging the mailing lists"),
     (planning, "report_html", "making the report"),
@@ -215,9 +215,9 @@ def test_a_hung_child_is_stopped_by_its_timeout(world, prior, monkeypatch):
 
 
 def test_a_hung_hand_off_is_stopped_by_its_timeout(world, prior, monkeypatch):
-    # the thread that writes the customers' Arrow file for the writer process never ends: the run waits for it
+    # the thread that sends the customers to the writer process never ends: the run waits for it
     # no longer than child_timeout_s, says so on one line, and exits without waiting for the thread
-    monkeypatch.setattr(write_io, "write_arrow_file", lambda *a: time.sleep(600))
+    monkeypatch.setattr(write_io, "send_arrow", lambda *a, **k: time.sleep(600))
     world.config_path.write_text(world.config_path.read_text() + "child_timeout_s = 3\n")
     t0 = time.monotonic()
     line = assert_bad(run(world), "handing the customers to the writer process did not finish within 3 s "

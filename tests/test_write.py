@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import sqlite3
+import threading
+import time
 from unittest.mock import patch
 
 import numpy as np
@@ -15,6 +17,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 import shapely
 
+from geopress.errors import OutputError
 from geopress.io import vector as vector_io
 from geopress.io import write as write_io
 from geopress.tables import neutralise_frame
@@ -117,29 +120,83 @@ def test_a_view_of_several_values_and_its_extent(tmp_path, frame):
     assert sorted(got["account"]) == sorted(frame.loc[frame["status"].isin(["high", "low"]), "account"])
 
 
-def test_a_layer_from_an_arrow_file_is_the_frame(tmp_path, frame):
-    # the writer process gets the customers as an Arrow file it maps: the same layer as the frame gives
-    file, table = write_io.arrow_table(tmp_path / "customers.arrow", _encoded(frame))
-    write_io.write_arrow_file(file, table)
-    direct, mapped = tmp_path / "direct.gpkg", tmp_path / "mapped.gpkg"
+def _send_in_thread(pipe, table, **kwargs):
+    """Send ``table`` through ``pipe`` from a thread, as a run does; returns the thread and its result holder."""
+    sent = []
+    stop = kwargs.pop("stop", threading.Event())
+    thread = threading.Thread(target=lambda: sent.append(write_io.send_arrow(
+        pipe, table, reader_alive=lambda: True, stop=stop, timeout_s=30)))
+    thread.start()
+    return thread, sent
+
+
+def test_a_layer_sent_through_a_pipe_is_the_frame(tmp_path, frame):
+    # the writer process gets the customers through a named pipe: the same layer as the frame gives
+    pipe, table = write_io.arrow_pipe(tmp_path / "customers.arrows", _encoded(frame))
+    direct, piped = tmp_path / "direct.gpkg", tmp_path / "piped.gpkg"
     view = _view(frame, ("high",))
     write_io.write_geopackage(direct, {"customers": frame, "high": view})
-    write_io.write_geopackage(mapped, {"customers": file, "high": view})
+    write_io.make_pipe(pipe)
+    thread, sent = _send_in_thread(pipe, table)
+    write_io.write_geopackage(piped, {"customers": pipe, "high": view})
+    thread.join(30)
+    assert sent == [True]
     for name in ("customers", "high"):
         a = pyogrio.read_dataframe(direct, layer=name, fid_as_index=True)
-        b = pyogrio.read_dataframe(mapped, layer=name, fid_as_index=True)
+        b = pyogrio.read_dataframe(piped, layer=name, fid_as_index=True)
         pd.testing.assert_frame_equal(a, b)
     # a view selecting nothing is an empty point layer of the same fields
     none = _view(frame, ("nothing",))
-    write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": file, "none": none})
+    thread, sent = _send_in_thread(pipe, table)
+    write_io.write_geopackage(tmp_path / "none.gpkg", {"customers": pipe, "none": none})
+    thread.join(30)
     info = pyogrio.read_info(tmp_path / "none.gpkg", layer="none")
     assert info["features"] == 0 and info["geometry_type"] == "Point"
     assert list(info["fields"]) == list(pyogrio.read_info(direct, layer="customers")["fields"])
 
 
-def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch):
-    from geopress.errors import OutputError
+def test_a_stream_cut_short_is_an_output_error_not_a_shorter_layer(tmp_path, frame, monkeypatch):
+    # the sender stops after the first batch and ends the stream cleanly: the writer counts the rows
+    monkeypatch.setattr(write_io, "ARROW_BATCH_ROWS", 2)
+    pipe, table = write_io.arrow_pipe(tmp_path / "customers.arrows", _encoded(frame))
+    write_io.make_pipe(pipe)
+    stop = threading.Event()
+    real = pa.ipc.RecordBatchStreamWriter.write_batch
 
+    def one_then_stop(self, batch):
+        real(self, batch)
+        stop.set()
+
+    monkeypatch.setattr(pa.ipc.RecordBatchStreamWriter, "write_batch", one_then_stop)
+    thread, sent = _send_in_thread(pipe, table, stop=stop)
+    with pytest.raises(OutputError, match=rf"reached the writer incomplete \(2 of {len(frame)} rows\)"):
+        write_io.write_geopackage(tmp_path / "cut.gpkg", {"customers": pipe})
+    thread.join(30)
+    assert sent == [False]
+
+
+def test_a_sender_gives_up_on_a_writer_that_never_opens_the_pipe(tmp_path, frame):
+    pipe, table = write_io.arrow_pipe(tmp_path / "customers.arrows", _encoded(frame))
+    write_io.make_pipe(pipe)
+    t0 = time.monotonic()
+    assert not write_io.send_arrow(pipe, table, reader_alive=lambda: False, stop=threading.Event(), timeout_s=30)
+    assert not write_io.send_arrow(pipe, table, reader_alive=lambda: True, stop=threading.Event(), timeout_s=0.2)
+    assert time.monotonic() - t0 < 10
+
+
+def test_a_sender_whose_writer_goes_away_stops_without_an_error(tmp_path, frame, monkeypatch):
+    monkeypatch.setattr(write_io, "ARROW_BATCH_ROWS", 100)
+    big = pd.concat([frame] * 20000, ignore_index=True)  # more than the pipe holds
+    pipe, table = write_io.arrow_pipe(tmp_path / "customers.arrows", _encoded(big))
+    write_io.make_pipe(pipe)
+    thread, sent = _send_in_thread(pipe, table)
+    with open(pipe.path, "rb") as reader:  # reads a little, then goes away
+        reader.read(1000)
+    thread.join(30)
+    assert sent == [False]
+
+
+def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch):
     def full(*args):
         raise sqlite3.OperationalError("database or disk is full")
 

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import csv
 import errno
+import fcntl
 import io
 import json
 import logging
@@ -28,6 +29,7 @@ import os
 import shutil
 import sqlite3
 import tempfile
+import threading
 import time
 from glob import escape as glob_escape
 from pathlib import Path
@@ -290,14 +292,17 @@ class Encoded:
 
 
 @dataclass(frozen=True)
-class ArrowFile:
-    """A point layer in an Arrow IPC file (WKB geometries in column ``geometry``, CRS ``crs``), which a
-    writer in another process reads a batch at a time instead of receiving the rows (see
-    :func:`write_arrow_file`)."""
+class ArrowPipe:
+    """A point layer that reaches a writer in another process through a named pipe (a FIFO) at ``path``, as an
+    Arrow IPC stream of ``rows`` rows (WKB geometries in column ``geometry``, CRS ``crs``): the run sends it
+    (:func:`send_arrow`) while the writer reads it a batch at a time and hands each batch to GDAL. The writer
+    starts on the first batch, holds one batch, and nothing goes to disk; it checks that every row came, since a
+    sender that stopped early ends the stream as cleanly as one that finished."""
 
     path: Path
     geometry: str
     crs: str | None
+    rows: int
 
 
 @dataclass(frozen=True)
@@ -316,39 +321,73 @@ class Polygons:
     frame: gpd.GeoDataFrame
 
 
-#: a layer to write: a frame, a point layer with its WKB or in an Arrow file, a view of an earlier point layer,
+#: a layer to write: a frame, a point layer with its WKB or through a pipe, a view of an earlier point layer,
 #: a polygon layer, or styles
-Layer = pd.DataFrame | Encoded | ArrowFile | View | Polygons | Styles
+Layer = pd.DataFrame | Encoded | ArrowPipe | View | Polygons | Styles
 
 
 #: the geometry column of an :class:`Encoded` layer as written
 GEOMETRY = "geometry"
 
-#: rows per record batch of an :class:`ArrowFile`: the writer process holds one batch at a time
+#: rows per record batch of an :class:`ArrowPipe`: the writer process holds one batch at a time
 ARROW_BATCH_ROWS = 65_536
+#: bytes a pipe buffers (Linux's F_SETPIPE_SZ, at most /proc/sys/fs/pipe-max-size, 1 MiB by default there): with
+#: the default 64 KiB the sender would wait on the writer for every 64 KiB
+PIPE_BYTES = 1 << 20
+_F_SETPIPE_SZ = 1031  # linux/fcntl.h: F_LINUX_SPECIFIC_BASE + 7
+#: seconds between the sender's checks for the writer opening the pipe
+_OPEN_POLL_S = 0.005
 
 
-def arrow_table(path: Path, layer: Encoded) -> tuple[ArrowFile, pa.Table]:
-    """The point layer ``layer`` as an Arrow table, and the :class:`ArrowFile` layer it becomes once
-    :func:`write_arrow_file` has written it at ``path``."""
+def arrow_pipe(path: Path, layer: Encoded) -> tuple[ArrowPipe, pa.Table]:
+    """The point layer ``layer`` as an Arrow table, and the :class:`ArrowPipe` at ``path`` it is sent through."""
     table, geometry, crs = _point_table(layer)
-    return ArrowFile(path=path, geometry=geometry, crs=crs), table
+    return ArrowPipe(path=path, geometry=geometry, crs=crs, rows=table.num_rows), table
 
 
-def write_arrow_file(file: ArrowFile, table: pa.Table) -> None:
-    """Write ``table`` as the Arrow IPC file of ``file``, LZ4-compressed, in batches of :data:`ARROW_BATCH_ROWS`.
-    Arrow only, no pandas: it can run in a thread beside code that reads the frame the table was made from."""
-    path = file.path
+def make_pipe(pipe: ArrowPipe) -> None:
+    """Make the FIFO of ``pipe``, readable and writable by this user only."""
+    os.mkfifo(pipe.path, 0o600)
+
+
+def send_arrow(pipe: ArrowPipe, table: pa.Table, *, reader_alive: Callable[[], bool], stop: threading.Event,
+               timeout_s: float) -> bool:
+    """Send ``table`` through the FIFO of ``pipe`` (:func:`make_pipe`) once the writer has opened it, in batches of
+    :data:`ARROW_BATCH_ROWS`. Arrow only, no pandas: it runs in a thread beside code that reads the frame the
+    table was made from, and waits on the writer without the GIL.
+
+    True when every row was sent. False, having sent all or part, when the writer is gone or done without it
+    (``reader_alive()`` false before it opened the pipe, or a broken pipe later), did not open it within
+    ``timeout_s``, or ``stop`` was set: the writer's own job then says what went wrong, or nobody waits for it.
+    Other OSErrors propagate.
+    """
+    deadline = time.monotonic() + timeout_s
+    while True:  # opened without blocking: a writer that never opens the pipe cannot hold this thread
+        try:
+            fd = os.open(pipe.path, os.O_WRONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+            break
+        except OSError as exc:
+            if exc.errno != errno.ENXIO:  # ENXIO: nobody reads it yet
+                raise
+        if stop.is_set() or not reader_alive() or time.monotonic() > deadline:
+            return False
+        time.sleep(_OPEN_POLL_S)
     try:
-        # LZ4-compressed: a third of the bytes, so writing the file no longer waits on the disk (4,000,000
-        # customers: 1.45 GB in 3.3 s uncompressed, 0.51 GB in 0.7 s; the writer reads it back in 0.3 s)
-        # categoricals stay dictionary-encoded (one dictionary per column, shared by every batch): GDAL writes
-        # the text they stand for
-        options = pa.ipc.IpcWriteOptions(compression="lz4")
-        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema, options=options) as out:
-            out.write_table(table, max_chunksize=ARROW_BATCH_ROWS)
-    except pa.ArrowIOError as exc:  # a full disk, say
-        raise OSError(errno.EIO, str(exc)) from exc
+        # buffered: a write the pipe takes only in part is finished by the file object, not left short
+        with os.fdopen(fd, "wb", buffering=PIPE_BYTES) as sink:  # closes fd, whatever happens below
+            os.set_blocking(fd, True)
+            try:
+                fcntl.fcntl(fd, _F_SETPIPE_SZ, PIPE_BYTES)
+            except OSError:  # a lower limit on this system: the default buffer works, only slower
+                pass
+            with pa.ipc.new_stream(sink, table.schema) as out:
+                for batch in table.to_batches(max_chunksize=ARROW_BATCH_ROWS):
+                    if stop.is_set():
+                        return False
+                    out.write_batch(batch)
+    except BrokenPipeError:  # the writer is gone: its job says why
+        return False
+    return True
 
 
 def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
@@ -398,15 +437,9 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
         elif isinstance(layer, Polygons):
             pyogrio.write_dataframe(layer.frame, path, layer=name, driver="GPKG", use_arrow=True,
                                     geometry_type="Polygon", layer_options={"SPATIAL_INDEX": "YES"})
-        elif isinstance(layer, ArrowFile):
-            # read a batch at a time and given to GDAL as a stream, so this process holds one batch, not the
-            # whole table (1.45 GB uncompressed at 4,000,000 customers)
-            with pa.OSFile(str(layer.path)) as source:
-                reader = pa.ipc.open_file(source)
-                batches = (reader.get_batch(i) for i in range(reader.num_record_batches))
-                _write_arrow_points(path, name, pa.RecordBatchReader.from_batches(reader.schema, batches),
-                                    layer.geometry, layer.crs)
-            points[name] = (reader.schema.empty_table(), layer.geometry, layer.crs)
+        elif isinstance(layer, ArrowPipe):
+            schema = _write_from_pipe(path, name, layer)
+            points[name] = (schema.empty_table(), layer.geometry, layer.crs)
         elif isinstance(layer, Encoded) or (isinstance(layer, gpd.GeoDataFrame) and _all_points(layer)):
             _write_point_layer(path, name, layer)
             points[name] = layer
@@ -419,6 +452,29 @@ def _write_layers(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     return seconds
 
 
+def _write_from_pipe(path: Path, name: str, pipe: ArrowPipe) -> pa.Schema:
+    """Write the point layer sent through ``pipe`` a batch at a time, as it comes (this process holds one batch,
+    not the table: 1.45 GB at 4,000,000 customers); OutputError when fewer or more rows came than were sent."""
+    got = 0
+    # a buffered Python file: its reads return all the bytes asked for (a pipe's may return fewer), and it needs no
+    # seek (Arrow's own file does one); opening waits for the sender to open its end
+    with open(pipe.path, "rb", buffering=PIPE_BYTES) as source:
+        reader = pa.ipc.open_stream(source)
+
+        def counted():
+            nonlocal got
+            for batch in reader:
+                got += batch.num_rows
+                yield batch
+
+        _write_arrow_points(path, name, pa.RecordBatchReader.from_batches(reader.schema, counted()), pipe.geometry,
+                            pipe.crs)
+    if got != pipe.rows:
+        raise OutputError(f"the {name} layer reached the writer incomplete ({got:,} of {pipe.rows:,} rows); "
+                          "run again", path=path)
+    return reader.schema
+
+
 def _write_arrow_points(path: Path, name: str, table: pa.Table | pa.RecordBatchReader, geometry: str,
                         crs: str | None) -> None:
     pyogrio.write_arrow(table, path, layer=name, driver="GPKG", geometry_name=geometry, geometry_type="Point",
@@ -428,7 +484,7 @@ def _write_arrow_points(path: Path, name: str, table: pa.Table | pa.RecordBatchR
 def _write_point_layer(path: Path, name: str, layer) -> None:
     """A point layer, typed "Point" even when empty or all null (else GDAL would type it "Unknown"),
     with its spatial index."""
-    if isinstance(layer, tuple):  # an Arrow table from an ArrowFile, with its geometry column and CRS
+    if isinstance(layer, tuple):  # an empty Arrow table of an ArrowPipe's schema, its geometry column and CRS
         _write_arrow_points(path, name, *layer)
     elif isinstance(layer, Encoded):
         _write_arrow_points(path, name, *_point_table(layer))
