@@ -80,6 +80,15 @@ class Points:
 
 
 @dataclass
+class ReportDrawing:
+    """The report's parts (:func:`geopress.planning.report_parts`) and the job drawing their figures
+    (``report.draw``) in the service band's process, idle once the band is done, while the run goes on."""
+
+    parts: planning.ReportParts
+    job: runner.Job
+
+
+@dataclass
 class Result:
     """What a run computed.
 
@@ -116,6 +125,9 @@ class Result:
     new_mailing: dict[str, pd.DataFrame] = field(default_factory=dict)
     #: the target areas (geopress.targets), polygons in the customers' CRS; set by summarise
     areas: gpd.GeoDataFrame | None = None
+    #: the report's figures and maps, and the job that draws the figures in a child process; set by summarise
+    #: when the run writes its report
+    report: ReportDrawing | None = None
 
     def located(self) -> gpd.GeoDataFrame:
         """:attr:`customers` with their points as a GeoDataFrame (shapely builds a geometry per customer: about
@@ -473,14 +485,27 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
                              band=band)
 
 
-def summarise(result: Result, s: Screening, clock: _Clock) -> None:
+def summarise(result: Result, s: Screening, clock: _Clock, *, draw: bool = False) -> None:
     """Add to ``result`` (from :func:`screen`) what is made from its customers: the target areas' layer, the zone
     summary with the best control ranges, the mailing lists, the field check and what run.json records. Reads only the field
-    readings; leaves the customers as they are."""
+    readings; leaves the customers as they are. With ``draw`` (a run that writes its report), the report's
+    figures are drawn meanwhile in the service band's process (:attr:`Result.report`)."""
     cfg, customers, cust, p, levels, sigma = result.config, result.customers, s.customers, s.pressures, s.levels, s.sigma
     crit, id_field, zones, shift, terrain = cfg.criteria, cfg.customers.id_field, s.zones, s.shift, s.terrain
     with clock.step("target areas' addresses"):
         result.areas = _area_layer(cfg, cust, s.areas, s.area_crs)
+    with clock.step("wait for the service band"):  # computed since the zones were read, beside all of the above
+        plan, clock.timings["service band (child process)"] = s.band.result()
+    result.plan = plan
+    if draw and cfg.output.report and report_missing() is None:
+        from . import report  # the report extra, here; it imports matplotlib only where a figure is drawn
+
+        with clock.step("report's figures"):  # their data here; drawn in the band's process, now idle
+            parts = planning.report_parts(cfg, customers, result.points, plan, result.areas)
+            result.report = ReportDrawing(parts, s.band.worker.submit(report.draw, parts.figures,
+                                                                      what="report figures", path=report_path(cfg)))
+    else:
+        s.band.worker.close()  # its one job is done: its memory goes back before the summaries'
     with clock.step("summarise"):
         summary = zone_summary(customers, cfg.zones.sources, crit.psi_per_ft)
         units = units_for(cfg.output.units)
@@ -502,10 +527,6 @@ def summarise(result: Result, s: Screening, clock: _Clock) -> None:
     if cfg.readings is not None:  # read after the customers' results: they never depend on the readings
         with clock.step("check field readings"):
             readings, by_zone = field_check(cfg, zones, shift)
-    with clock.step("wait for the service band"):  # computed since the zones were read, beside all of the above
-        plan, clock.timings["service band (child process)"] = s.band.result()
-        s.band.worker.close()  # its one job is done: its memory goes back before the report's
-    result.plan = plan
     info = {
         "geopress_version": __version__,
         "versions": {"gdal": rasterio.__gdal_version__, "proj": pyproj.proj_version_str, "pyogrio": pyogrio.__version__},
@@ -754,9 +775,9 @@ HAND_OFF_THREAD = "hand the customers to the writer (thread)"
 class HandOff:
     """The thread that hands the customers to the writer process (see :func:`start_writing`); use as a context
     manager, inside the run's ``Worker`` and ``Staging``: leaving the block tells the thread to submit no job and
-    waits (at most ``timeout_s``) for it to end, so a run that stops early never leaves it writing a file beside
-    the outputs after the staging is cleared, nor starts the writer then. The thread is a daemon: the
-    interpreter's exit never waits for it."""
+    to stop sending, and waits (at most ``timeout_s``) for it to end, so a run that stops early never leaves it
+    making a pipe beside the outputs after the staging is cleared, nor starts the writer then. The thread is a
+    daemon: the interpreter's exit never waits for it."""
 
     def __init__(self, timeout_s: float):
         self.timeout_s = timeout_s
@@ -990,8 +1011,14 @@ def _stage_report(result: Result, info: dict[str, Any], stage: write_io.Staging)
     path = report_path(cfg)
     info["report"] = {"written": True, "path": str(path), "units": cfg.output.units}
     info["outputs"].append(str(path))
+    drawing = result.report
+    drawn = None
+    if drawing is not None:
+        drawn = stage.wait(path, drawing.job.result)
+        drawing.job.worker.close()  # the band's process has done its last job
     html = planning.report_html(cfg, result.customers, result.points, result.zone_summary, result.plan, info,
-                                result.areas, result.field_check, result.field_check_by_zone)
+                                result.areas, result.field_check, result.field_check_by_zone,
+                                parts=None if drawing is None else drawing.parts, drawn=drawn)
     stage.write(path, lambda tmp: tmp.write_text(html, encoding="utf-8"))
 
 
@@ -1060,7 +1087,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
         writing = start_writing(result, clock, stage, worker, hand_off) if write else None
         if writing is not None and writing.hand_off is not None:
             behind_the_writer()  # the writer process sets the run's end from here (a command's process only: _compat)
-        summarise(result, screening, clock)
+        summarise(result, screening, clock, draw=write)
         nightly.check_unchanged(inputs)
         with clock.step("new mailing lists"):
             nightly.new_lists(result, newly)

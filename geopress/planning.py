@@ -310,11 +310,25 @@ def _xy(x: np.ndarray, y: np.ndarray, src: CRS, dst: CRS) -> tuple[np.ndarray, n
     return Transformer.from_crs(src, dst, always_xy=True).transform(x, y)
 
 
-def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.DataFrame, plan: Plan | None,
-                info: dict[str, Any], areas: gpd.GeoDataFrame | None = None,
-                readings: gpd.GeoDataFrame | None = None, readings_by_zone: pd.DataFrame | None = None) -> str:
-    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`); ``points``: the
-    customers' ``x``, ``y`` and ``crs`` (a pipeline Points).
+@dataclass
+class ReportParts:
+    """What the report takes from a run's customers (:func:`report_parts`): its figures as data, to draw in any
+    process (``report.draw``), the interactive map, and the CRS, frame, terrain and zone outlines of the maps of
+    all zones, which a field check's map shares."""
+
+    figures: "report.Figures"
+    interactive: "report.InteractiveMap"
+    crs: CRS
+    frame: "report.Frame"
+    background: list["report.Terrain"]
+    outlines: dict[str, shapely.Geometry]
+
+
+def report_parts(cfg: Config, customers: pd.DataFrame, points: Any, plan: Plan | None,
+                 areas: gpd.GeoDataFrame | None = None) -> ReportParts:
+    """The report's figures and maps for a run (needs the ``report`` extra; see :mod:`geopress._compat`), from
+    its customers; ``points``: their ``x``, ``y`` and ``crs`` (a pipeline Points); ``areas``: the target areas'
+    layer. Draws nothing.
 
     Each zone map is drawn in the CRS of its zone's first raster; the maps of
     all zones (overview and interactive) in that of the first zone map, with
@@ -332,10 +346,10 @@ def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.D
     status_names = np.asarray(status_names, dtype=object)
     psi_min = customers["psi_min"].to_numpy(dtype=np.float64)
     psi_max = customers["psi_max"].to_numpy(dtype=np.float64)
-    pressures = {}
-    for z in summary["zone"].tolist():
+    histograms = {}
+    for z in (src.zone for src in cfg.zones.sources):  # the zone summary's zones, in its order
         sel = zone_code == code_of.get(z, -2)
-        pressures[z] = (psi_min[sel], psi_max[sel])
+        histograms[z] = report.histogram_data(psi_min[sel], psi_max[sel], cfg.criteria, units)
 
     def counts_at(sel: np.ndarray) -> dict[str, int]:
         per = np.bincount(status_code[sel], minlength=len(status_names))
@@ -384,23 +398,46 @@ def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.D
         ground_ft=customers["ground_ft"].to_numpy(dtype=np.float64)[pick], psi_min=psi_min[pick],
         psi_max=psi_max[pick], status=status_names[status_code[pick]], reason=picked("reason"), counts=counts,
     )
-    bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     areas_drawn = None
     if areas is not None:
         shapes = areas.geometry.to_numpy() if areas.crs is None or areas.crs.equals(crs) else areas.to_crs(crs).geometry.to_numpy()
         areas_drawn = report.AreasMap(background=overview, areas=list(zip(areas["area"], areas["finding"], shapes)))
+    figures = report.Figures(histograms=histograms, maps=maps, overview=overview, areas=areas_drawn, units=units)
+    return ReportParts(figures=figures, interactive=interactive, crs=crs, frame=frame, background=background,
+                       outlines=outlines)
+
+
+def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.DataFrame, plan: Plan | None,
+                info: dict[str, Any], areas: gpd.GeoDataFrame | None = None,
+                readings: gpd.GeoDataFrame | None = None, readings_by_zone: pd.DataFrame | None = None, *,
+                parts: ReportParts | None = None, drawn: "report.Drawn | None" = None) -> str:
+    """The report page for a run (needs the ``report`` extra; see :mod:`geopress._compat`); ``points``: the
+    customers' ``x``, ``y`` and ``crs`` (a pipeline Points).
+
+    ``parts`` (:func:`report_parts` of the same run) and ``drawn`` (their figures, drawn by ``report.draw``,
+    perhaps in another process) are made here when not given.
+    """
+    from . import report
+    from .units import units_for
+
+    units = units_for(cfg.output.units)
+    if parts is None:
+        parts = report_parts(cfg, customers, points, plan, areas)
+    if drawn is None:
+        drawn = report.draw(parts.figures)
+    bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     field = None
     if readings is not None:
         from . import report_field
 
         located = readings.geometry.notna().to_numpy()
-        drawn = readings.geometry.to_numpy()[located]
-        rx, ry = _xy(shapely.get_x(drawn), shapely.get_y(drawn), readings.crs, crs)
-        fmap = report_field.FieldMap(terrain=background, frame=frame, outlines=outlines, x=rx, y=ry,
+        shown = readings.geometry.to_numpy()[located]
+        rx, ry = _xy(shapely.get_x(shown), shapely.get_y(shown), readings.crs, parts.crs)
+        fmap = report_field.FieldMap(terrain=parts.background, frame=parts.frame, outlines=parts.outlines, x=rx, y=ry,
                                      residual_psi=readings["residual_psi"].to_numpy(dtype=np.float64)[located],
                                      check=readings["check"].to_numpy(dtype=object)[located])
         field = report_field.section(readings, readings_by_zone, fmap, info.get("field_check", {}), units)
-    return report.render(info=info, summary=summary, bands=bands, maps=maps, pressures=pressures,
-                         criteria=cfg.criteria, units=units, overview=overview, interactive=interactive,
+    return report.render(info=info, summary=summary, bands=bands, drawn=drawn, criteria=cfg.criteria, units=units,
+                         interactive=parts.interactive,
                          areas=None if areas is None else pd.DataFrame(areas.drop(columns=areas.geometry.name)),
-                         areas_drawn=areas_drawn, field=field)
+                         field=field)

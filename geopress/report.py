@@ -23,18 +23,16 @@ import io
 import json
 import math
 from dataclasses import dataclass
-from typing import Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import jinja2
 import markupsafe
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
-from matplotlib.lines import Line2D
-from matplotlib.patches import Patch
-from matplotlib.ticker import MaxNLocator
-from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+if TYPE_CHECKING:  # matplotlib is imported where a figure is drawn: a run draws them in another process
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
 
 from .classify import Criteria
 from .findings import FINDING_COLUMNS, FLAGGED_LAYERS, OKABE_ITO, STATUS_STYLE as _STATUS_STYLE, Style
@@ -64,6 +62,9 @@ FONT_PT = 9.0
 def _figure(figsize: tuple[float, float]) -> Figure:
     """A figure on an Agg canvas from the start, at the PNG's resolution, so layout and savefig share one renderer
     and its text metrics."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
     fig = Figure(figsize=figsize, dpi=DPI)
     FigureCanvasAgg(fig)
     return fig
@@ -99,40 +100,61 @@ def bin_counts(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
     return np.histogram(values, bins=edges.size - 1, range=(edges[0], edges[-1]))[0]
 
 
-def histogram(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> str:
+@dataclass(frozen=True)
+class Histogram:
+    """A zone's static pressures binned for its histogram, in the display unit (:func:`histogram_data`): the bin
+    ``edges`` and the customers in each bin, at the zone's one HGL (``one``: PRV, pump, or a tank whose two
+    pressures are the same) or at its low and high HGL (``low``, ``high``; None without a pressure), and the
+    ``minimum`` and ``maximum`` static pressure."""
+
+    edges: np.ndarray
+    one: np.ndarray | None
+    low: np.ndarray | None
+    high: np.ndarray | None
+    minimum: float
+    maximum: float
+
+
+def histogram_data(psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> Histogram:
+    """Bin a zone's ``psi_min`` and ``psi_max`` (NaN left out) into 40 equal bins over both and both limits."""
+    pmin = units.pressure_from_psi(psi_min)
+    pmax = units.pressure_from_psi(psi_max)
+    pmin, pmax = pmin[np.isfinite(pmin)], pmax[np.isfinite(pmax)]
+    lo_t = float(units.pressure_from_psi(criteria.min_static_psi))
+    hi_t = float(units.pressure_from_psi(criteria.max_static_psi))
+    bins = np.histogram_bin_edges(np.concatenate([pmin, pmax, [lo_t, hi_t]]), bins=40)
+    if pmin.size and np.array_equal(pmin, pmax):  # one HGL (PRV, pump): the two histograms coincide
+        return Histogram(bins, bin_counts(pmin, bins), None, None, lo_t, hi_t)
+    return Histogram(bins, None, bin_counts(pmin, bins) if pmin.size else None,
+                     bin_counts(pmax, bins) if pmax.size else None, lo_t, hi_t)
+
+
+def histogram(zone: str, h: Histogram, units: Units) -> str:
     """PNG data URI of :func:`histogram_figure`."""
-    return _png(histogram_figure(zone, psi_min, psi_max, criteria, units))
+    return _png(histogram_figure(zone, h, units))
 
 
-def histogram_figure(zone: str, psi_min: np.ndarray, psi_max: np.ndarray, criteria: Criteria, units: Units) -> Figure:
+def histogram_figure(zone: str, h: Histogram, units: Units) -> Figure:
     """Histograms of the zone's psi_min and psi_max with both thresholds drawn.
 
     A zone with one HGL (PRV, pump) has one pressure per customer and one
     histogram. Counts are whole customers on the y axis; the legend sits
     below the plot, clear of the threshold lines.
     """
+    from matplotlib.ticker import MaxNLocator
+
     fig = _figure((6.0, 3.9))
     ax = fig.add_subplot()
-    pmin = units.pressure_from_psi(psi_min)
-    pmax = units.pressure_from_psi(psi_max)
-    pmin, pmax = pmin[np.isfinite(pmin)], pmax[np.isfinite(pmax)]
-    lo_t = float(units.pressure_from_psi(criteria.min_static_psi))
-    hi_t = float(units.pressure_from_psi(criteria.max_static_psi))
-    both = np.concatenate([pmin, pmax, [lo_t, hi_t]])
-    bins = np.histogram_bin_edges(both, bins=40)
-    # binned here (no sort) and drawn as one outline per histogram: the same bars as ax.hist(values, bins=bins)
-    if pmin.size and np.array_equal(pmin, pmax):  # one HGL (PRV, pump): the two histograms coincide
-        ax.stairs(bin_counts(pmin, bins), bins, fill=True, color=OKABE_ITO["bluish_green"],
-                  label="pressure at the zone's HGL")
-    else:
-        if pmin.size:
-            ax.stairs(bin_counts(pmin, bins), bins, fill=True, color=OKABE_ITO["blue"], alpha=0.5,
-                      label="at the low HGL (psi_min), filled")
-        if pmax.size:
-            ax.stairs(bin_counts(pmax, bins), bins, color=OKABE_ITO["vermillion"], linewidth=1.8,
-                      label="at the high HGL (psi_max), outline")
-    ax.axvline(lo_t, color="black", linestyle="--", label=f"minimum {lo_t:.4g} {units.pressure}")
-    ax.axvline(hi_t, color="black", linestyle=":", linewidth=2, label=f"maximum {hi_t:.4g} {units.pressure}")
+    # binned already (no sort) and drawn as one outline per histogram: the same bars as ax.hist(values, bins=edges)
+    if h.one is not None:
+        ax.stairs(h.one, h.edges, fill=True, color=OKABE_ITO["bluish_green"], label="pressure at the zone's HGL")
+    if h.low is not None:
+        ax.stairs(h.low, h.edges, fill=True, color=OKABE_ITO["blue"], alpha=0.5, label="at the low HGL (psi_min), filled")
+    if h.high is not None:
+        ax.stairs(h.high, h.edges, color=OKABE_ITO["vermillion"], linewidth=1.8,
+                  label="at the high HGL (psi_max), outline")
+    ax.axvline(h.minimum, color="black", linestyle="--", label=f"minimum {h.minimum:.4g} {units.pressure}")
+    ax.axvline(h.maximum, color="black", linestyle=":", linewidth=2, label=f"maximum {h.maximum:.4g} {units.pressure}")
     ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_ylim(bottom=0)
     ax.set_xlabel(f"static pressure at ground, {units.pressure}", fontsize=FONT_PT)
@@ -276,6 +298,8 @@ def scale_bar_length(max_ft: float, units: Units) -> tuple[float, str]:
 
 def _furniture(ax, frame: Frame, units: Units, width_map: float) -> None:
     """No coordinate ticks; a scale bar bottom left and a north arrow top right."""
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
     ax.set_xticks([])
     ax.set_yticks([])
     length_ft, label = scale_bar_length(0.25 * width_map * frame.ft_per_x, units)
@@ -337,6 +361,8 @@ def _shade_under(ax, terrain: Sequence[Terrain], frame: Frame) -> None:
 def _customers(ax, x: np.ndarray, y: np.ndarray, status: np.ndarray,
                counts: Mapping[str, int]) -> list[Line2D]:
     """Scatter the customers by status, flagged above ok; the legend handles with the counts of every customer."""
+    from matplotlib.lines import Line2D
+
     handles = []
     for z, (name, st) in enumerate(STATUS_STYLE.items()):
         sel = status == name
@@ -417,6 +443,9 @@ def zone_map(m: ZoneMap, units: Units) -> str:
 
 def zone_map_figure(m: ZoneMap, units: Units) -> Figure:
     """Customers by status over a hillshade, with zone outline, band and limit lines."""
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
     bounds = m.zone_geom.bounds
     counts = _counts_of(m.status) if m.counts is None else m.counts
     fig, ax = _map_figure(bounds, m.frame)
@@ -481,6 +510,8 @@ def overview_figure(m: OverviewMap, units: Units) -> Figure:
     """Every zone outlined and named, its customers by status, the flagged above the ok."""
     import matplotlib.patheffects as pe
     import shapely
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
 
     bounds = _bounds(m.outlines, m.x, m.y)
     fig, ax = _map_figure(bounds, m.frame)
@@ -533,6 +564,8 @@ def areas_figure(m: AreasMap, units: Units) -> Figure:
     """Every zone outlined, and every target area filled in its finding's colour, the largest named."""
     import matplotlib.patheffects as pe
     import shapely
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
 
     bg = m.background
     bounds = _bounds(bg.outlines, np.array([]), np.array([]))
@@ -918,35 +951,59 @@ def _plain(value: Any) -> Any:
     return value
 
 
-def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFrame | None, maps: Sequence[ZoneMap],
-           pressures: Mapping[str, tuple[np.ndarray, np.ndarray]], criteria: Criteria, units: Units,
-           overview: OverviewMap | None = None, interactive: InteractiveMap | None = None,
-           areas: pd.DataFrame | None = None, areas_drawn: AreasMap | None = None,
-           field: Mapping[str, Any] | None = None, title: str = "geopress static pressure screening") -> str:
+@dataclass
+class Figures:
+    """The report's figures as data, to draw in any process (:func:`draw`): each zone's histogram, by zone in the
+    page's order, each map of a zone with terrain, the overview and the target areas' map (None when left out)."""
+
+    histograms: Mapping[str, Histogram]
+    maps: Sequence[ZoneMap]
+    overview: OverviewMap | None
+    areas: AreasMap | None
+    units: Units
+
+
+@dataclass(frozen=True)
+class Drawn:
+    """The report's figures as PNG data URIs (:func:`draw`): by zone, its histogram and its map (the zones with
+    terrain); the overview and the target areas' map, None when left out."""
+
+    histograms: Mapping[str, str]
+    maps: Mapping[str, str]
+    overview: str | None
+    areas: str | None
+
+
+def draw(figures: Figures) -> Drawn:
+    """Draw every figure of ``figures`` (matplotlib, Agg)."""
+    u = figures.units
+    return Drawn(histograms={z: histogram(z, h, u) for z, h in figures.histograms.items()},
+                 maps={m.zone: zone_map(m, u) for m in figures.maps},
+                 overview=None if figures.overview is None else overview_map(figures.overview, u),
+                 areas=None if figures.areas is None else areas_map(figures.areas, u))
+
+
+def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFrame | None, drawn: Drawn,
+           criteria: Criteria, units: Units, interactive: InteractiveMap | None = None,
+           areas: pd.DataFrame | None = None, field: Mapping[str, Any] | None = None,
+           title: str = "geopress static pressure screening") -> str:
     """The report page as HTML text.
 
-    ``pressures`` maps zone -> (psi_min, psi_max) arrays in psi; ``maps``
-    holds one :class:`ZoneMap` per zone that has terrain; ``overview`` and
-    ``interactive`` are the maps of all zones (each left out when None);
-    ``info`` is what run.json records (its ``changes`` section is shown when
-    there was an earlier run to compare with); ``areas`` the target areas'
-    table (geopress.targets) and ``areas_drawn`` their map (each left out when None).
+    ``drawn`` holds the figures (:func:`draw`): each zone of ``summary`` has a
+    histogram there, and a map when it has terrain; the overview and the target
+    areas' map are left out when None there. ``interactive`` is the interactive
+    map of all zones (left out when None); ``info`` is what run.json records
+    (its ``changes`` section is shown when there was an earlier run to compare
+    with); ``areas`` the target areas' table (geopress.targets; left out when None).
     ``field`` is the field-check section (:func:`geopress.report_field.section`),
     left out when None.
     """
     env = jinja2.Environment(loader=jinja2.PackageLoader("geopress", "templates"),
                              autoescape=jinja2.select_autoescape(["html", "j2"]), undefined=jinja2.StrictUndefined)
-    by_zone = {m.zone: m for m in maps}
     rows = summary_rows(summary, bands, units, criteria)
     row_of = {r["zone"]: r for r in rows}
-    zones = []
-    for zone in summary["zone"].tolist():
-        pmin, pmax = pressures.get(zone, (np.array([]), np.array([])))
-        zones.append({
-            "zone": zone, "row": row_of[str(zone)],
-            "histogram": histogram(zone, pmin, pmax, criteria, units),
-            "map": zone_map(by_zone[zone], units) if zone in by_zone else None,
-        })
+    zones = [{"zone": zone, "row": row_of[str(zone)], "histogram": drawn.histograms[zone], "map": drawn.maps.get(zone)}
+             for zone in summary["zone"].tolist()]
     counts = info.get("counts", {})
     per_ft = criteria.psi_per_ft
     k_display = (f"{float(units.pressure_from_psi(per_ft)) / M_PER_FT:.4g} kPa per m" if units.system == "si"
@@ -970,7 +1027,7 @@ def render(*, info: Mapping[str, Any], summary: pd.DataFrame, bands: pd.DataFram
         finding_counts=info.get("counts_by_finding", {}), lists=FLAGGED_LAYERS,
         areas=None if areas is None else {"rows": area_rows(areas, units), "total": len(areas),
                                           "settings": (info.get("target_areas") or {}),
-                                          "map": areas_map(areas_drawn, units) if areas_drawn is not None else None},
-        overview=overview_map(overview, units) if overview is not None else None, imap=imap,
+                                          "map": drawn.areas},
+        overview=drawn.overview, imap=imap,
         sources=source_rows(sources, summary, units), field=field,
     )

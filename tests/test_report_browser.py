@@ -13,7 +13,7 @@ import geopress
 from geopress import pipeline
 from geopress.classify import STATUSES, Criteria
 from geopress.findings import FLAGGED_STATUSES
-from geopress.report import OKABE_ITO, STATUS_STYLE, render
+from geopress.report import OKABE_ITO, STATUS_STYLE, Figures, draw, histogram_data, render
 from geopress.scenario import load_scenario
 from geopress.units import SI, US
 from plotly.offline import get_plotlyjs
@@ -154,16 +154,18 @@ def test_changes_section_and_si_units():
             "changes": {"baseline": "/runs/2026-01-01/pressure.gpkg",
                         "counts": {"unchanged": 1, "newly_flagged": 1, "cleared": 0},
                         "newly_in_status": {"high": 1, "low": 0}, "newly_in_finding": {"high": 1, "low": 0}}}
-    pressures = {"Z": (np.array([40.0, 50.0]), np.array([60.0, 70.0]))}
-    html = render(info=info, summary=_summary(), bands=None, maps=[], pressures=pressures, criteria=Criteria(),
-                  units=SI)
+    def drawn(units):
+        h = {"Z": histogram_data(np.array([40.0, 50.0]), np.array([60.0, 70.0]), Criteria(), units)}
+        return draw(Figures(histograms=h, maps=[], overview=None, areas=None, units=units))
+
+    html = render(info=info, summary=_summary(), bands=None, drawn=drawn(SI), criteria=Criteria(), units=SI)
     assert "Changes since the last run" in html and "/runs/2026-01-01/pressure.gpkg" in html
     assert "<td>newly_flagged</td><td class=\"num\">1</td>" in html
     assert "<code>new_high_pressure</code></td><td class=\"num\">1</td>" in html  # the new list per finding
     # 1150 ft * 0.3048 = 350.52 m; 80 psi * 6.894757 = 551.6 kPa (NIST SP 811 factor, secondary)
     assert "high water 350.5 to 353.6 m" in html
     assert "551.6 kPa" in html
-    us = render(info=info, summary=_summary(), bands=None, maps=[], pressures=pressures, criteria=Criteria(), units=US)
+    us = render(info=info, summary=_summary(), bands=None, drawn=drawn(US), criteria=Criteria(), units=US)
     assert "high water 1,150.0 to 1,160.0 ft" in us and "80 psi" in us
 
 

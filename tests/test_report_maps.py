@@ -151,7 +151,7 @@ def test_histogram_counts_whole_customers_and_its_legend_stays_off_the_plot():
     for pmin, pmax, first in ((np.array([40.0, 50.0, 50.5]),) * 2 + ("pressure at the zone's HGL",),
                               (np.array([30.0, 40.0, 50.0]), np.array([45.0, 55.0, 85.0]),
                                "at the low HGL (psi_min), filled")):
-        fig = report.histogram_figure("Z", pmin, pmax, Criteria(), US)
+        fig = report.histogram_figure("Z", report.histogram_data(pmin, pmax, Criteria(), US), US)
         ax = fig.axes[0]
         fig.canvas.draw()
         ticks = ax.get_yticks()
