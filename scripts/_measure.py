@@ -4,14 +4,18 @@ geopress runs child processes (the service band, the GeoPackage writer)
 beside a fork server, and a process tree's pages may be shared, so the
 resident set size of one process says too little and the sum over processes
 too much. :func:`measure` reports both the
-peak RSS of the largest process (``wait4``) and the peak proportional set
-size of the whole process tree (a page shared by n processes counts 1/n in
-each, so the sum is the memory the tree really holds), sampled every 50 ms.
+peak RSS of the command's process (``wait4``: the largest of it and the
+children it waited for, not those of geopress's fork server) and the peak
+proportional set size of the whole process tree (a page shared by n processes
+counts 1/n in each, so the sum is the memory the tree really holds), sampled
+every 50 ms. Linux starts a child's peak RSS at its parent's resident set when
+it starts (it survives ``exec``), so the caller must be small for the peak RSS
+to be the command's: bench.py makes its data in a process of its own.
 
 Sampling is not free: each read of ``/proc/PID/smaps_rollup`` walks that process's
 page tables, and it slowed a run of ``geopress`` (four processes) at 1,000,000
 customers by about 3 s of 8 (scripts/README.md). So a timed run is measured with
-``sample=False`` (wall time and the largest process's peak RSS from ``wait4``,
+``sample=False`` (wall time and the process's peak RSS from ``wait4``,
 which cost nothing), and the PSS comes from runs of its own.
 """
 
@@ -31,7 +35,7 @@ GB = 1024 * 1024  # KiB per GiB
 @dataclass
 class Measured:
     wall_s: float
-    rss_gb: float  # the largest process's peak resident set size
+    rss_gb: float  # the command's process's peak resident set size (see above)
     pss_gb: float  # the process tree's peak proportional set size, sampled (NaN when not sampled)
     exit_code: int
     stdout: str = ""

@@ -20,7 +20,7 @@ geopress and the script both sample the containing pixel (``method =
 "nearest"``, which is what ``sample()`` does), so their statuses must agree;
 the bench checks they do. It prints, per N, the median wall time of each
 variant, their ratios to the floor, the time per customer, peak memory two
-ways (see _measure.py: the resident set size of the largest process, and the
+ways (see _measure.py: the resident set size of the command's own process, and the
 proportional set size of all its processes together, sampled in runs of its
 own before the timed ones, since sampling slows what it measures), geopress's
 time per step, and the in-process throughput of the bilinear kernel.
@@ -368,6 +368,13 @@ def run_child(variant: str, work: Path, *, sample: bool = False) -> Measured:
     return m
 
 
+def in_child(what: str, work: Path, n: int) -> None:
+    """``--child what`` for ``n`` customers under ``work`` in a fresh process; exits when it fails."""
+    done = subprocess.run([sys.executable, __file__, "--child", what, "--work", str(work), "--n", str(n)])
+    if done.returncode != 0:
+        sys.exit(f"{what} failed with exit code {done.returncode}")
+
+
 def compare_statuses(work: Path) -> int:
     import pyogrio
 
@@ -408,7 +415,9 @@ def bench_one(work: Path, n: int, repeat: int, with_script: bool) -> dict[str, f
     """geopress's first run and re-run and the floor once each for their peak PSS only, then every variant at ``n``
     customers, alternating, timed without sampling memory. Prints and returns the medians (s) and geopress's peak
     PSS (GB)."""
-    prepare(work, n)
+    # the data made, and the statuses compared below, in processes of their own: the timed runs are this
+    # process's children, and a child's peak RSS as wait4 gives it starts from its parent's at its start
+    in_child("prepare", work, n)
     variants = [v for v in VARIANTS if v != "script" or with_script]
     pss = {}
     for variant in ("first", "rerun", "floor"):  # the first run leaves the outputs the re-run and the floor need
@@ -423,7 +432,7 @@ def bench_one(work: Path, n: int, repeat: int, with_script: bool) -> dict[str, f
             runs[variant].append(m)
             print(f"N={n:,} run {i + 1} {variant:7s} {m.wall_s:8.2f} s  peak RSS {m.rss_gb:5.2f} GB", flush=True)
     if with_script:
-        compare_statuses(work)
+        in_child("compare", work, n)
     med = {v: statistics.median(m.wall_s for m in r) for v, r in runs.items()}
     rss = {v: max(m.rss_gb for m in r) for v, r in runs.items()}
     steps = json.loads((work / "out-geopress" / "run.json").read_text())["timings_s"]
@@ -454,14 +463,15 @@ def main() -> None:
     ap.add_argument("--work", type=Path, default=Path("bench-out"), help="folder for data and outputs")
     ap.add_argument("--postgis", metavar="DSN", help="also time reading and publishing with this PostgreSQL/PostGIS "
                     "database (libpq connection string; the role creates the schema geopress_bench)")
-    ap.add_argument("--child", choices=["geopress", "baseline", "floor", "read", "read-db", "publish-db"],
-                    help=argparse.SUPPRESS)
+    ap.add_argument("--child", choices=["geopress", "baseline", "floor", "read", "read-db", "publish-db", "prepare",
+                                        "compare"], help=argparse.SUPPRESS)
     args = ap.parse_args()
     work = args.work.resolve()
     if args.child:
         children = {"geopress": geopress_run, "baseline": baseline, "floor": floor,
                     "read": lambda w: read_child(w, None), "read-db": lambda w: read_child(w, args.postgis),
-                    "publish-db": lambda w: publish_child(w, args.postgis)}
+                    "publish-db": lambda w: publish_child(w, args.postgis), "prepare": lambda w: prepare(w, args.n[0]),
+                    "compare": compare_statuses}
         children[args.child](work)
         return
     results = {}
