@@ -17,8 +17,18 @@ import rasterio
 import shapely
 from affine import Affine
 
+from geopress import runner
+
 PROJECTED = "EPSG:32631"  # UTM 31N; test worlds sit near (500000, 10000), open ocean
 ORIGIN = (500_000.0, 11_000.0)  # top-left corner of the test DEMs
+
+
+# The fork server of this test process also imports the report's drawing modules, once: each run's band process
+# draws its report's figures, and would otherwise import matplotlib again in every one of the suite's runs. A
+# command's fork server does not: there the import would delay the band, for one run only.
+runner.PRELOAD = [*runner.PRELOAD, "geopress.report", "matplotlib.backends.backend_agg", "matplotlib.figure",
+                  "matplotlib.lines", "matplotlib.patches", "matplotlib.patheffects", "matplotlib.ticker",
+                  "mpl_toolkits.axes_grid1.anchored_artists"]
 
 
 def pytest_report_header(config):
