@@ -418,13 +418,12 @@ def report_html(cfg: Config, customers: pd.DataFrame, points: Any, summary: pd.D
     perhaps in another process) are made here when not given.
     """
     from . import report
-    from .units import units_for
 
-    units = units_for(cfg.output.units)
     if parts is None:
         parts = report_parts(cfg, customers, points, plan, areas)
     if drawn is None:
         drawn = report.draw(parts.figures)
+    units = parts.figures.units
     bands = None if plan is None else pd.DataFrame(plan.bands.drop(columns=plan.bands.geometry.name))
     field = None
     if readings is not None:
