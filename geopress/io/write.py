@@ -15,6 +15,13 @@ the renames puts the backups back at once; a process killed during them
 leaves the journal, and :func:`recover` (called by the next run before it
 writes anything) puts them back then. Renames need no free space, so a full
 disk cannot stop a rollback.
+
+Nothing but the journal is synced to disk: the promise is against a run that
+fails or is killed, not against the machine losing power right after a run
+(then run again). SQLite's own syncs are off while a GeoPackage is written
+(:func:`write_geopackage`): the file is a temporary until its rename, and the
+first commit after the customers layer made the run wait for the whole file
+to reach the disk (0.7 s at 4,000,000 customers).
 """
 
 from __future__ import annotations
@@ -31,10 +38,11 @@ import sqlite3
 import tempfile
 import threading
 import time
+from contextlib import contextmanager
 from glob import escape as glob_escape
 from pathlib import Path
 from dataclasses import dataclass
-from typing import Any, Callable, Mapping
+from typing import Any, Callable, Iterator, Mapping
 
 import geopandas as gpd
 import numpy as np
@@ -52,6 +60,8 @@ from ..tables import neutralise_frame
 log = logging.getLogger(__name__)
 
 TMP_MARK = ".geopress-tmp-"
+#: the GDAL configuration option that sets SQLite's ``PRAGMA synchronous`` (GDAL's SQLite and GPKG drivers)
+SYNC_OPTION = "OGR_SQLITE_SYNCHRONOUS"
 
 
 def ensure_dir(path: Path, key: str) -> None:
@@ -400,7 +410,8 @@ def write_geopackage(path: Path, layers: Mapping[str, Layer]) -> dict[str, float
     system's (a full disk, permissions) and those GDAL and SQLite report.
     """
     try:
-        return _write_layers(path, layers)
+        with _unsynced():
+            return _write_layers(path, layers)
     except OSError as exc:
         raise OutputError(f"cannot write ({exc.strerror or exc}); check free space and permissions", path=path) from exc
     except (sqlite3.Error, pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError, pyogrio.errors.FieldError,
@@ -415,6 +426,25 @@ def write_in_child(path: Path, layers: Mapping[str, Layer]) -> dict[str, float]:
     SQLite page cache (:data:`GPKG_CACHE_MB`) in that process only."""
     pyogrio.set_gdal_config_options({"OGR_SQLITE_CACHE": str(GPKG_CACHE_MB)})
     return write_geopackage(path, layers)
+
+
+@contextmanager
+def _unsynced() -> Iterator[None]:
+    """GDAL's SQLite connections without syncs (``PRAGMA synchronous = OFF``) in this block; see the module's
+    docstring. A GDAL configuration option is global to the process: the block restores the earlier value."""
+    before = pyogrio.get_gdal_config_option(SYNC_OPTION)
+    pyogrio.set_gdal_config_options({SYNC_OPTION: "OFF"})
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options({SYNC_OPTION: before})
+
+
+def _connect(path: Path) -> sqlite3.Connection:
+    """An SQLite connection to the GeoPackage being written, without syncs, like GDAL's (:func:`_unsynced`)."""
+    con = sqlite3.connect(path)
+    con.execute("PRAGMA synchronous = OFF")
+    return con
 
 
 #: shapely.get_type_id of a missing geometry and of a Point
@@ -517,7 +547,7 @@ def _text(value: str | bool) -> str:
 
 def _create_view(path: Path, name: str, view: View) -> None:
     """Create ``view`` as layer ``name`` of the GeoPackage at ``path``."""
-    con = sqlite3.connect(path)
+    con = _connect(path)
     try:
         with con:  # one transaction: the view is registered whole or not at all
             # every column as it is, the fid (the primary key) too: GDAL then takes it as the view's
@@ -548,7 +578,7 @@ LAYER_STYLES_COLUMNS = (
 def _write_layer_styles(path: Path, name: str, styles: Styles) -> None:
     """Create table ``name`` holding ``styles``, registered as an attributes table of the GeoPackage;
     each row names its layer's geometry column as ``gpkg_geometry_columns`` has it."""
-    con = sqlite3.connect(path)
+    con = _connect(path)
     try:
         with con:  # one transaction: the table is there whole or not at all
             con.execute(f"CREATE TABLE {_quoted(name)} (id INTEGER PRIMARY KEY AUTOINCREMENT, "
