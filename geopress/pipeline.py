@@ -262,6 +262,28 @@ def _timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
     return value, round(time.perf_counter() - t0, 4)
 
 
+def _beside(fn: Callable[..., Any], *args: Any) -> Future:
+    """``fn(*args)`` (pure computation: no I/O, no lock) started in a thread of its own: the future of its value
+    and its seconds (:func:`_timed`). The thread ends with the computation; a run that fails before it waits for
+    the value leaves it to finish, and the interpreter's exit waits for it."""
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="geopress-beside")
+    try:
+        return pool.submit(_timed, fn, *args)
+    finally:
+        pool.shutdown(wait=False)
+
+
+def with_areas(result: Result, s: Screening, clock: _Clock) -> None:
+    """Wait for the target areas that :func:`screen` started, keep them in ``s``, and add their columns to the
+    customers, after the findings' columns. Their seconds go in the timings as "target areas (thread)"."""
+    with clock.step("wait for the target areas"):
+        (s.areas, s.area_crs, s.area_info), clock.timings["target areas (thread)"] = s.areas_job.result()
+        customers = result.customers
+        at = customers.columns.get_loc(cls.FINDING_COLUMNS[cls.FINDINGS[-1]]) + 1
+        for i, name in enumerate(cls.FINDINGS):
+            customers.insert(at + i, AREA_COLUMNS[name], s.areas.member[name])
+
+
 def _zones_beside_terrain(cfg: Config, clock: _Clock, cust: vector_io.Customers, zones: vector_io.Zones,
                           shift: datum_io.DatumShift) -> tuple[np.ndarray, raster_io.TerrainResult]:
     """Each customer's zone polygon (:func:`geopress.zones.assign_xy`) and ground (``sample_terrain``), the zone
@@ -292,11 +314,14 @@ class Screening:
     levels: dict[str, np.ndarray]
     sigma: np.ndarray
     finding_counts: dict[str, int]
-    areas: targets_mod.Areas
-    area_crs: pyproj.CRS
-    area_info: dict[str, Any]
     #: the service band's job in its own process (see :func:`screen`)
     band: runner.Job
+    #: the target areas, the CRS they were clustered in and what run.json records of them (:func:`_target_areas`),
+    #: as a thread computes them, and the seconds it took; :func:`with_areas` waits for them
+    areas_job: Future[tuple[tuple[targets_mod.Areas, pyproj.CRS, dict[str, Any]], float]]
+    areas: targets_mod.Areas | None = None
+    area_crs: pyproj.CRS | None = None
+    area_info: dict[str, Any] | None = None
 
 
 def screen(config: Config, clock: _Clock, band_worker: runner.Worker, *, engine: str = "local",
@@ -444,12 +469,13 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
         levels = storage.level_columns(ground, zi, zones.zone_ids, crit, cfg.zones.sources)
         codes, found = cls.screen(has_geometry=cust.has_geometry, ground_ft=ground, zoned=zoned,
                                   psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit, levels=levels)
+        # the target areas from here on, in a thread beside the rest of the customer table and the baseline
+        # comparison (see with_areas): pure computation on arrays nothing changes
+        areas_job = _beside(_target_areas, cfg, cust, zone_code, ground, floors, p, codes, found)
         reason = cls.reasons(codes, ground_ft=ground, hgl_low_ft=hgl_low, psi_min=p.psi_min, psi_max=p.psi_max,
                              psi_top=p.psi_top, floors=floors, criteria=crit, findings=found, levels=levels)
         margin = confidence.margins(codes, psi_min=p.psi_min, psi_max=p.psi_max, psi_top=p.psi_top, criteria=crit)
         sigma = confidence.sigmas(terrain.rmse_ft, hgl_unc, crit.psi_per_ft)
-    with clock.step("target areas"):
-        areas, area_crs, area_info = _target_areas(cfg, cust, zone_code, ground, floors, p, codes, found)
     with clock.step("customer table"):
         frame = cust.frame
         id_field = cfg.customers.id_field
@@ -470,8 +496,7 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
             "sigma_psi": sigma,
             "confidence": confidence.classes(codes, margin, sigma),
             **{cls.FINDING_COLUMNS[name]: found[name] for name in cls.FINDINGS},
-            **{AREA_COLUMNS[name]: areas.member[name] for name in cls.FINDINGS},
-        }
+        }  # the target areas' columns come next (with_areas)
         for c in extra:
             data[c] = _values(frame[c])
         customers = pd.DataFrame(data)
@@ -481,8 +506,7 @@ def _screen(cfg: Config, clock: _Clock, zones: vector_io.Zones, overlap_info: li
                     zone_summary=pd.DataFrame(), counts=counts, mailing={}, info={})
     return result, Screening(customers=cust, zones=zones, overlap_info=overlap_info, shift=shift, terrain=terrain,
                              ground_table=ground_table, pressures=p, levels=levels, sigma=sigma,
-                             finding_counts=finding_counts, areas=areas, area_crs=area_crs, area_info=area_info,
-                             band=band)
+                             finding_counts=finding_counts, band=band, areas_job=areas_job)
 
 
 def summarise(result: Result, s: Screening, clock: _Clock, *, draw: bool = False) -> None:
@@ -1083,6 +1107,7 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
                                    partitions=partitions)
         with clock.step("compare with baseline"):
             newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
+        with_areas(result, screening, clock)
         # the customers are final: the writer process writes them while their summaries and lists are made here
         writing = start_writing(result, clock, stage, worker, hand_off) if write else None
         if writing is not None and writing.hand_off is not None:

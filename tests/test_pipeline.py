@@ -30,7 +30,8 @@ from geopress import pipeline
 from geopress.cli import cli
 from geopress.errors import GeometryWarning, InputError, OutputError
 from geopress.io import write as write_io
-from geopress.findings import FLAGGED_LAYERS
+from geopress.classify import RESULT_COLUMNS
+from geopress.findings import AREA_COLUMNS, FLAGGED_LAYERS
 from geopress.pressure import M_PER_FT, M_PER_US_FT
 
 from conftest import (
@@ -926,6 +927,48 @@ def test_the_writer_starts_while_the_service_band_is_computed(world, monkeypatch
     alone = geopress.run(world.config_path, write=False)
     assert res.info["service_band"] == alone.info["service_band"]
     assert res.plan.bands.geometry.geom_equals_exact(alone.plan.bands.geometry, 0).all()
+
+
+def test_the_target_areas_are_computed_beside_the_baseline_comparison(world, monkeypatch):
+    # each waits for the other to have started: one after the other, the first would time out
+    clustering, comparing = threading.Event(), threading.Event()
+    real_areas, real_track = pipeline._target_areas, pipeline.nightly.track
+
+    def areas(*args):
+        clustering.set()
+        assert comparing.wait(timeout=30), "the baseline comparison never started beside the target areas"
+        return real_areas(*args)
+
+    def track(*args, **kwargs):
+        comparing.set()
+        assert clustering.wait(timeout=30), "the target areas never started beside the baseline comparison"
+        return real_track(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "_target_areas", areas)
+    monkeypatch.setattr(pipeline.nightly, "track", track)
+    res = geopress.run(world.config_path)
+    monkeypatch.undo()
+    alone = geopress.run(world.config_path, write=False)
+    screened = [c for c in res.customers.columns if c not in ("previous_status", "change")]  # the second run has a baseline
+    assert screened == [c for c in alone.customers.columns if c not in ("previous_status", "change")]
+    pd.testing.assert_frame_equal(res.customers[screened], alone.customers[screened])
+    # the areas' columns where the customers layer has always had them: after the findings', in the documented order
+    assert set(AREA_COLUMNS.values()) <= set(res.customers.columns)
+    assert [c for c in res.customers.columns if c in RESULT_COLUMNS] == [
+        c for c in RESULT_COLUMNS if c in res.customers.columns]
+    written = pyogrio.read_dataframe(world.out, layer="customers", read_geometry=False, max_features=1)
+    assert list(written.columns) == list(res.customers.columns)
+    assert "target areas (thread)" in res.info["timings_s"]
+
+
+def test_an_error_in_the_target_areas_is_the_runs(world, monkeypatch):
+    def areas(*args):
+        raise RuntimeError("broken target areas")
+
+    monkeypatch.setattr(pipeline, "_target_areas", areas)
+    with pytest.raises(RuntimeError, match="broken target areas"):
+        geopress.run(world.config_path)
+    assert not world.out.exists()
 
 
 @pytest.mark.parametrize("failing", ["join", "sample"])
