@@ -732,12 +732,17 @@ def _r(value: float) -> float | None:
 CHANGED = tuple(c for c in CHANGES if c not in ("unchanged", "removed"))
 
 
-def customer_layers(result: Result, table: write_io.ArrowPipe | None = None) -> dict[str, write_io.Layer]:
-    """The GeoPackage's first layers: ``customers`` (``table`` when given, its rows sent through a pipe;
-    else the frame with its points' WKB: see write_io.Encoded), then the flagged layers and ``changes``,
-    views of it (see write_io.View)."""
+def customer_layers(result: Result) -> dict[str, write_io.Layer]:
+    """The GeoPackage's first layers: ``customers``, the frame with its points' WKB (see write_io.Encoded; a run
+    sends its rows through a pipe instead: :func:`start_writing`), then its views (:func:`customer_views`)."""
+    return {"customers": _layer_frame(result), **customer_views(result)}
+
+
+def customer_views(result: Result) -> dict[str, write_io.View]:
+    """The flagged layers and ``changes``, views of the customers layer (see write_io.View); they read no target
+    area."""
     customers, x, y = result.customers, result.points.x, result.points.y
-    layers: dict[str, write_io.Layer] = {"customers": table or _layer_frame(result)}
+    layers: dict[str, write_io.View] = {}
     for finding, name in cls.FLAGGED_LAYERS.items():
         layers[name] = write_io.view_of("customers", customers, cls.FINDING_COLUMNS[finding], (True,), x, y)
     if "change" in customers.columns:
@@ -853,24 +858,32 @@ class Writing:
     first_layers: dict[str, write_io.Layer]
 
 
-def start_writing(result: Result, clock: _Clock, stage: write_io.Staging, worker: runner.Worker,
+def start_writing(result: Result, s: Screening, clock: _Clock, stage: write_io.Staging, worker: runner.Worker,
                   hand_off: HandOff) -> Writing:
     """Start writing the GeoPackage's customer layers in ``worker``'s process, from ``result``'s customers as
-    they are now (after the baseline comparison's columns): the rest of the run goes on meanwhile.
+    they are now (after the baseline comparison's columns), with their target areas (:func:`with_areas`): the rest
+    of the run goes on meanwhile.
 
     The customers travel to the writer as an Arrow stream through a named pipe in the staging folder, which it
     reads a batch at a time as GDAL takes them: not pickled, not inherited, not written to disk. Their Arrow
-    table is made here; ``hand_off``'s thread makes the pipe, submits the writer's job and sends the table while
-    the summaries are made (it waits on the writer without the GIL). The thread touches no pandas object;
-    :meth:`HandOff.job` waits for it."""
+    table is made here, all but the target areas' columns while their thread may still run; ``hand_off``'s
+    thread makes the pipe, submits the writer's job and sends the table while the summaries are made (it waits
+    on the writer without the GIL). The thread touches no pandas object; :meth:`HandOff.job` waits for it."""
     out = result.config.output
+    if not out.geopackage:
+        with_areas(result, s, clock)
+        with clock.step("hand the customers to the writer"):
+            write_io.ensure_dir(out.path.parent, "output.path")
+            return Writing(hand_off=None, gpkg=None, first_layers=customer_layers(result))
+    with clock.step("the customers as Arrow"):
+        made = write_io.point_table(_layer_frame(result))
+        views = customer_views(result)
+    with_areas(result, s, clock)
     with clock.step("hand the customers to the writer"):
         write_io.ensure_dir(out.path.parent, "output.path")
-        if not out.geopackage:
-            return Writing(hand_off=None, gpkg=None, first_layers=customer_layers(result))
         gpkg = stage.temp_for(out.path)
-        pipe, table = write_io.arrow_pipe(stage.scratch(out.path, ".arrows"), _layer_frame(result))
-        first_layers = customer_layers(result, pipe)
+        pipe, table = write_io.arrow_pipe(stage.scratch(out.path, ".arrows"), _layer_frame(result), made=made)
+        first_layers: dict[str, write_io.Layer] = {"customers": pipe, **views}
 
         def hand(h: HandOff) -> runner.Job | None:
             t0 = time.perf_counter()
@@ -1107,9 +1120,13 @@ def run(config: Config | str | os.PathLike, *, write: bool = True, progress: Pro
                                    partitions=partitions)
         with clock.step("compare with baseline"):
             newly = nightly.track(result, baseline, accept_drop=accept_drop, published=publication)
-        with_areas(result, screening, clock)
-        # the customers are final: the writer process writes them while their summaries and lists are made here
-        writing = start_writing(result, clock, stage, worker, hand_off) if write else None
+        # the customers are final once their target areas are in: the writer process writes them while their
+        # summaries and lists are made here
+        writing = None
+        if write:
+            writing = start_writing(result, screening, clock, stage, worker, hand_off)
+        else:
+            with_areas(result, screening, clock)
         if writing is not None and writing.hand_off is not None:
             behind_the_writer()  # the writer process sets the run's end from here (a command's process only: _compat)
         summarise(result, screening, clock, draw=write)

@@ -155,6 +155,20 @@ def test_a_layer_sent_through_a_pipe_is_the_frame(tmp_path, frame):
     assert list(info["fields"]) == list(pyogrio.read_info(direct, layer="customers")["fields"])
 
 
+def test_a_table_made_in_two_goes_has_the_columns_in_the_frames_order(tmp_path, frame):
+    # the run makes the customers' table before their target areas are in, then adds those columns where the frame
+    # has them; a column with no value at all is text, as in a table made at once
+    frame = frame.assign(empty=pd.array([None] * len(frame), dtype=object))
+    whole = _encoded(frame)
+    early = write_io.point_table(write_io.Encoded(whole.frame[["account", "psi_max", "reason"]], whole.wkb, whole.crs))
+    _, at_once = write_io.arrow_pipe(tmp_path / "a.arrows", whole)
+    pipe, in_two = write_io.arrow_pipe(tmp_path / "b.arrows", whole, made=early)
+    assert in_two.column_names == [*frame.columns.drop("geometry"), "geometry"]
+    assert in_two.equals(at_once)
+    assert in_two.schema.field("empty").type == pa.large_string()
+    assert pipe.rows == len(frame) and pipe.geometry == "geometry" and pipe.crs == "EPSG:32631"
+
+
 def test_a_stream_cut_short_is_an_output_error_not_a_shorter_layer(tmp_path, frame, monkeypatch):
     # the sender stops after the first batch and ends the stream cleanly: the writer counts the rows
     monkeypatch.setattr(write_io, "ARROW_BATCH_ROWS", 2)

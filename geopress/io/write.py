@@ -349,10 +349,19 @@ _F_SETPIPE_SZ = 1031  # linux/fcntl.h: F_LINUX_SPECIFIC_BASE + 7
 _OPEN_POLL_S = 0.005
 
 
-def arrow_pipe(path: Path, layer: Encoded) -> tuple[ArrowPipe, pa.Table]:
-    """The point layer ``layer`` as an Arrow table, and the :class:`ArrowPipe` at ``path`` it is sent through."""
-    table, geometry, crs = _point_table(layer)
-    return ArrowPipe(path=path, geometry=geometry, crs=crs, rows=table.num_rows), table
+def arrow_pipe(path: Path, layer: Encoded, *, made: pa.Table | None = None) -> tuple[ArrowPipe, pa.Table]:
+    """The point layer ``layer`` as an Arrow table, and the :class:`ArrowPipe` at ``path`` it is sent through.
+    ``made``: its table as :func:`point_table` made it earlier, from some of the frame's columns; only the others
+    are converted now, each put where it is in the frame."""
+    if made is None:
+        table = point_table(layer)
+    else:
+        table = made
+        for i, name in enumerate(layer.frame.columns):
+            if name not in made.column_names:
+                column = _arrow_columns(layer.frame[[name]])
+                table = table.add_column(i, column.field(0), column.column(0))
+    return ArrowPipe(path=path, geometry=GEOMETRY, crs=_crs_text(layer.crs), rows=table.num_rows), table
 
 
 def make_pipe(pipe: ArrowPipe) -> None:
@@ -596,16 +605,26 @@ def _write_layer_styles(path: Path, name: str, styles: Styles) -> None:
         con.close()
 
 
-def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
-    """An encoded point layer as an Arrow table with WKB geometries, its geometry column and its CRS."""
-    frame = layer.frame
+def point_table(layer: Encoded) -> pa.Table:
+    """An encoded point layer as an Arrow table, its WKB geometries last, in column :data:`GEOMETRY`."""
+    return pa.Table.from_arrays([*_arrow_columns(layer.frame).columns, layer.wkb],
+                                names=[*map(str, layer.frame.columns), GEOMETRY])
+
+
+def _arrow_columns(frame: pd.DataFrame) -> pa.Table:
+    """``frame``'s columns as Arrow, as GDAL can make fields of them."""
     attributes = pa.Table.from_pandas(frame, preserve_index=False)
     # a text column with no value at all (e.g. previous_status on a first run) comes as Arrow's null type,
     # which GDAL cannot make a field of: it is text
     for i, f in enumerate(attributes.schema):
         if pa.types.is_null(f.type):
             attributes = attributes.set_column(i, f.name, attributes.column(i).cast(pa.large_string()))
-    return attributes.append_column(GEOMETRY, layer.wkb), GEOMETRY, _crs_text(layer.crs)
+    return attributes
+
+
+def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
+    """An encoded point layer as an Arrow table (:func:`point_table`), its geometry column and its CRS."""
+    return point_table(layer), GEOMETRY, _crs_text(layer.crs)
 
 
 def _all_points(df: gpd.GeoDataFrame) -> bool:
