@@ -438,15 +438,18 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     """
     k_to_units = 1.0 / ft_per_unit
     rows = []
-    members = {finding: np.full(x.size, -1, dtype=np.intp) for finding in FINDINGS}
     ok_rows = np.flatnonzero(ok & (zone >= 0))
     ok_by_x: dict[int, tuple[NDArray[np.intp], NDArray[np.float64]]] = {}  # per zone: its ok customers by x
     # a storage level's shortfall (a finding that is no status) is fixed at the tank, not by a zone-level PRV or
     # booster over an area: it gets none
-    groups = [] if not targets.enabled else [
-        (finding, z, sel) for finding in FINDINGS if finding in FLAGGED_STATUSES for z in range(len(zone_names))
-        if (sel := np.flatnonzero(found[finding] & (zone == z) & np.isfinite(x) & np.isfinite(y))).size
-        >= targets.min_customers]
+    groups = []
+    finite = np.isfinite(x) & np.isfinite(y)
+    for finding in FINDINGS if targets.enabled else ():
+        if finding in FLAGGED_STATUSES:
+            found_here = np.flatnonzero(found[finding] & finite)
+            zone_here = zone[found_here]
+            groups.extend((finding, z, sel) for z in range(len(zone_names))
+                          if (sel := found_here[zone_here == z]).size >= targets.min_customers)
     clustered = _cluster_all([(x[sel] * ft_per_unit, y[sel] * ft_per_unit) for _, _, sel in groups],
                              targets.distance_ft)
     for (finding, z, sel), labels in zip(groups, clustered):
@@ -459,7 +462,7 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
             continue
         if z not in ok_by_x:
             zone_ok = ok_rows[zone[ok_rows] == z]
-            order = np.argsort(x[zone_ok], kind="stable")
+            order = np.argsort(x[zone_ok])  # ties in any order: only the count, min and max of those inside are read
             ok_by_x[z] = zone_ok[order], x[zone_ok][order]
         ok_sorted, ok_x = ok_by_x[z]
         taken = np.flatnonzero(np.isin(labels, keep))
@@ -501,12 +504,15 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     # most customers served first; ties in the registry's order of findings, then zone, then first customer
     rank = {f: i for i, f in enumerate(FINDINGS)}
     rows.sort(key=lambda r: (-r["customers"], rank[r["finding"]], r["zone"], r["_first"]))
+    members: dict[str, NDArray[np.intp]] = {}  # of the findings with areas
     for n, r in enumerate(rows, start=1):
         r["area"] = f"T{n}"
-        members[r["finding"]][r["_rows"]] = n - 1
+        members.setdefault(r["finding"], np.full(x.size, -1, dtype=np.intp))[r["_rows"]] = n - 1
         del r["_first"]
     ids = [r["area"] for r in rows]
-    member = {f: names_at(ids or [""], np.maximum(m, 0), m >= 0) for f, m in members.items()}
+    nobody = names_at(ids or [""], np.zeros(x.size, dtype=np.intp), np.zeros(x.size, dtype=bool))
+    member = {f: names_at(ids, np.maximum(members[f], 0), members[f] >= 0) if f in members else nobody.copy()
+              for f in FINDINGS}
     area_rows = [r.pop("_rows") for r in rows]
     table = pd.DataFrame(rows, columns=[c for c in COLUMNS if c != "addresses"])
     return Areas(table=table, member=member, rows=area_rows)
