@@ -892,29 +892,25 @@ def test_a_run_pauses_the_cycle_collector_and_restores_it(world, monkeypatch):
         gc.enable()
 
 
-def test_the_zone_join_runs_while_the_terrain_is_sampled(world, monkeypatch):
-    # each waits for the other to have started: one after the other, the first would time out
-    joining, sampling = threading.Event(), threading.Event()
-    real_join, real_sample = pipeline.assign_xy, pipeline.raster_io.sample_terrain
+def _each_waits_for_the_other(monkeypatch, first: tuple[object, str], second: tuple[object, str]) -> None:
+    """Patch two functions (an owner and an attribute name each) so that each waits, 30 s at most, for the other to
+    have started: run one after the other, the first would time out."""
+    started = {first: threading.Event(), second: threading.Event()}
+    for mine, other in ((first, second), (second, first)):
+        owner, name = mine
+        real = getattr(owner, name)
 
-    def join(*args):
-        joining.set()
-        assert sampling.wait(timeout=30), "the sampling never started beside the zone join"
-        return real_join(*args)
+        def patched(*args, _real=real, _mine=started[mine], _other=started[other], _names=(name, other[1]), **kwargs):
+            _mine.set()
+            assert _other.wait(timeout=30), "%s never started beside %s" % tuple(reversed(_names))
+            return _real(*args, **kwargs)
 
-    def sample(*args, **kwargs):
-        sampling.set()
-        assert joining.wait(timeout=30), "the zone join never started beside the sampling"
-        return real_sample(*args, **kwargs)
+        monkeypatch.setattr(owner, name, patched)
 
-    monkeypatch.setattr(pipeline, "assign_xy", join)
-    monkeypatch.setattr(pipeline.raster_io, "sample_terrain", sample)
-    res = geopress.run(world.config_path)
-    monkeypatch.undo()
-    alone = geopress.run(world.config_path, write=False)
-    screened = [c for c in res.customers.columns if c not in ("previous_status", "change")]  # the second run has a baseline
-    pd.testing.assert_frame_equal(res.customers[screened], alone.customers[screened])
-    assert "assign zones (thread)" in res.info["timings_s"]
+
+def _screened(res: pipeline.Result) -> pd.DataFrame:
+    """The customers' columns of a run but those of the baseline comparison (a second run has a baseline)."""
+    return res.customers[[c for c in res.customers.columns if c not in ("previous_status", "change")]]
 
 
 def test_the_writer_starts_while_the_service_band_is_computed(world, monkeypatch):
@@ -929,36 +925,24 @@ def test_the_writer_starts_while_the_service_band_is_computed(world, monkeypatch
     assert res.plan.bands.geometry.geom_equals_exact(alone.plan.bands.geometry, 0).all()
 
 
-def test_the_target_areas_are_computed_beside_the_baseline_comparison(world, monkeypatch):
-    # each waits for the other to have started: one after the other, the first would time out
-    clustering, comparing = threading.Event(), threading.Event()
-    real_areas, real_track = pipeline._target_areas, pipeline.nightly.track
-
-    def areas(*args):
-        clustering.set()
-        assert comparing.wait(timeout=30), "the baseline comparison never started beside the target areas"
-        return real_areas(*args)
-
-    def track(*args, **kwargs):
-        comparing.set()
-        assert clustering.wait(timeout=30), "the target areas never started beside the baseline comparison"
-        return real_track(*args, **kwargs)
-
-    monkeypatch.setattr(pipeline, "_target_areas", areas)
-    monkeypatch.setattr(pipeline.nightly, "track", track)
+@pytest.mark.parametrize("first, second, timing", [
+    ((pipeline, "assign_xy"), (pipeline.raster_io, "sample_terrain"), "assign zones (thread)"),
+    ((pipeline, "_target_areas"), (pipeline.nightly, "track"), "target areas (thread)"),
+], ids=["zone-join-beside-sampling", "target-areas-beside-baseline-comparison"])
+def test_a_thread_works_beside_the_runs_own(world, monkeypatch, first, second, timing):
+    _each_waits_for_the_other(monkeypatch, first, second)
     res = geopress.run(world.config_path)
     monkeypatch.undo()
     alone = geopress.run(world.config_path, write=False)
-    screened = [c for c in res.customers.columns if c not in ("previous_status", "change")]  # the second run has a baseline
-    assert screened == [c for c in alone.customers.columns if c not in ("previous_status", "change")]
-    pd.testing.assert_frame_equal(res.customers[screened], alone.customers[screened])
-    # the areas' columns where the customers layer has always had them: after the findings', in the documented order
+    pd.testing.assert_frame_equal(_screened(res), _screened(alone))
+    assert timing in res.info["timings_s"]
+    # the target areas' columns where the customers layer has always had them: after the findings', in the
+    # documented order, in the frame and in the layer
     assert set(AREA_COLUMNS.values()) <= set(res.customers.columns)
     assert [c for c in res.customers.columns if c in RESULT_COLUMNS] == [
         c for c in RESULT_COLUMNS if c in res.customers.columns]
     written = pyogrio.read_dataframe(world.out, layer="customers", read_geometry=False, max_features=1)
     assert list(written.columns) == list(res.customers.columns)
-    assert "target areas (thread)" in res.info["timings_s"]
 
 
 def test_an_error_in_the_target_areas_is_the_runs(world, monkeypatch):
