@@ -210,6 +210,34 @@ def test_a_sender_whose_writer_goes_away_stops_without_an_error(tmp_path, frame,
     assert sent == [False]
 
 
+@pytest.mark.parametrize("before", [None, "NORMAL"])
+def test_a_geopackage_is_written_without_syncs_and_the_setting_restored(tmp_path, frame, monkeypatch, before):
+    # SQLite's syncs made the first commit after the customers wait for the whole file to reach the disk; the
+    # option is global to the process, so whatever it was is put back
+    pyogrio.set_gdal_config_options({write_io.SYNC_OPTION: before})
+    seen = []
+    real = pyogrio.write_dataframe
+
+    def write(*args, **kwargs):
+        seen.append(pyogrio.get_gdal_config_option(write_io.SYNC_OPTION))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pyogrio, "write_dataframe", write)
+    try:
+        write_io.write_geopackage(tmp_path / "out.gpkg", {"customers": frame, "high": _view(frame, ("high",)),
+                                                           "table": pd.DataFrame({"a": [1]})})
+        assert seen and set(seen) == {False}  # pyogrio reads "OFF" back as False
+        assert pyogrio.get_gdal_config_option(write_io.SYNC_OPTION) == before
+    finally:
+        pyogrio.set_gdal_config_options({write_io.SYNC_OPTION: None})
+    # the run's own SQLite connections (views, layer styles) do the same
+    con = write_io._connect(tmp_path / "out.gpkg")
+    try:
+        assert con.execute("PRAGMA synchronous").fetchone()[0] == 0  # 0 is OFF (SQLite's PRAGMA docs, from memory)
+    finally:
+        con.close()
+
+
 def test_sqlite_and_gdal_failures_are_output_errors(tmp_path, frame, monkeypatch):
     def full(*args):
         raise sqlite3.OperationalError("database or disk is full")
