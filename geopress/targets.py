@@ -507,7 +507,9 @@ def target_areas(*, x: NDArray[np.float64], y: NDArray[np.float64], ft_per_unit:
     members: dict[str, NDArray[np.intp]] = {}  # of the findings with areas
     for n, r in enumerate(rows, start=1):
         r["area"] = f"T{n}"
-        members.setdefault(r["finding"], np.full(x.size, -1, dtype=np.intp))[r["_rows"]] = n - 1
+        if r["finding"] not in members:  # one array per finding, not one per area
+            members[r["finding"]] = np.full(x.size, -1, dtype=np.intp)
+        members[r["finding"]][r["_rows"]] = n - 1
         del r["_first"]
     ids = [r["area"] for r in rows]
     nobody = names_at(ids or [""], np.zeros(x.size, dtype=np.intp), np.zeros(x.size, dtype=bool))
