@@ -526,7 +526,7 @@ def _write_point_layer(path: Path, name: str, layer) -> None:
     if isinstance(layer, tuple):  # an empty Arrow table of an ArrowPipe's schema, its geometry column and CRS
         _write_arrow_points(path, name, *layer)
     elif isinstance(layer, Encoded):
-        _write_arrow_points(path, name, *_point_table(layer))
+        _write_arrow_points(path, name, point_table(layer), GEOMETRY, _crs_text(layer.crs))
     else:
         pyogrio.write_dataframe(layer, path, layer=name, driver="GPKG", use_arrow=True, geometry_type="Point",
                                 layer_options={"SPATIAL_INDEX": "YES"})
@@ -620,11 +620,6 @@ def _arrow_columns(frame: pd.DataFrame) -> pa.Table:
         if pa.types.is_null(f.type):
             attributes = attributes.set_column(i, f.name, attributes.column(i).cast(pa.large_string()))
     return attributes
-
-
-def _point_table(layer: Encoded) -> tuple[pa.Table, str, str | None]:
-    """An encoded point layer as an Arrow table (:func:`point_table`), its geometry column and its CRS."""
-    return point_table(layer), GEOMETRY, _crs_text(layer.crs)
 
 
 def _all_points(df: gpd.GeoDataFrame) -> bool:
